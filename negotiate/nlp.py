@@ -1,0 +1,474 @@
+"""One agent's parametric NLP: built once, solved many times, each solve certified.
+
+``ParametricNLP`` wraps the problem ::
+
+    V(p) = min_x f(x, p)   s.t.  lbg <= g(x, p) <= ubg,   lbx <= x <= ubx
+
+written with CasADi symbols. Construction builds and compiles, once, the IPOPT solver (a cold and a
+warm-started instance) and the functions that evaluate the Lagrangian's gradient, Jacobian and Hessian.
+Each :meth:`ParametricNLP.solve` then returns a :class:`LocalResult`: the value, the primal point, all
+multipliers, the value gradient ``dV/dp = partial_p L`` at the KKT point (one solve, no finite
+differences) and a :class:`~negotiate.kkt.Certificate` saying whether that gradient can be trusted. See
+:mod:`negotiate.kkt` for the sign convention (``L = f + lam_g^T g + lam_x^T x``, CasADi's).
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import casadi as ca
+import numpy as np
+
+from negotiate.kkt import Bounds, Certificate, Point, Tolerances, active_rows, certify, polish
+from negotiate.sensitivity import Sensitivity, solve_sensitivity
+from negotiate.status import SOLUTION_PRESENT, Status, from_ipopt
+
+__all__ = ["LocalResult", "ParametricNLP"]
+
+_IPOPT_QUIET = {"ipopt.print_level": 0, "ipopt.sb": "yes", "print_time": False}
+_IPOPT_WARM = {
+    "ipopt.warm_start_init_point": "yes",
+    "ipopt.warm_start_bound_push": 1e-8,
+    "ipopt.warm_start_bound_frac": 1e-8,
+    "ipopt.warm_start_slack_bound_push": 1e-8,
+    "ipopt.warm_start_slack_bound_frac": 1e-8,
+    "ipopt.warm_start_mult_bound_push": 1e-8,
+    "ipopt.mu_init": 1e-5,
+}
+
+
+@dataclass(frozen=True)
+class LocalResult:
+    """Outcome of one agent solve at parameter ``p``.
+
+    Attributes
+    ----------
+    p : numpy.ndarray
+        The parameter vector solved for.
+    value : float
+        Optimal value ``V(p)`` (``nan`` when no point was found).
+    gradient : numpy.ndarray or None
+        ``dV/dp = partial_p L`` at the KKT point, so that ``V(p + d) ~ V(p) + gradient @ d``. ``None``
+        unless ``status`` is ``converged``: a failed solve never yields a number.
+    x : numpy.ndarray
+        Primal point (polished when the polish was accepted).
+    lam_g, lam_x : numpy.ndarray
+        Multipliers of the rows of g and of the simple bounds (positive: upper bound active).
+    g : numpy.ndarray
+        Constraint values at ``x``.
+    status : Status
+        Mapped outcome; ``message`` keeps the solver's own words (and our re-check's, if it downgraded).
+    iterations : int
+        Solver iterations.
+    solve_time : float
+        Wall time of the solver call, s.
+    certify_time : float
+        Wall time of polishing, certificate and gradient, s.
+    certificate : Certificate or None
+        The KKT certificate (``None`` when the solver found no point worth certifying).
+    """
+
+    p: np.ndarray
+    value: float
+    gradient: np.ndarray | None
+    x: np.ndarray
+    lam_g: np.ndarray
+    lam_x: np.ndarray
+    g: np.ndarray
+    status: Status
+    message: str
+    iterations: int
+    solve_time: float
+    certify_time: float
+    certificate: Certificate | None
+    _problem: ParametricNLP | None = field(default=None, repr=False, compare=False)
+
+    @property
+    def success(self) -> bool:
+        """Whether the point is a certified-converged KKT point (a gradient is present)."""
+        return self.status in SOLUTION_PRESENT
+
+    def sensitivity(self) -> Sensitivity:
+        """dx*/dp, multiplier derivatives and the Hessian of V, where the certificate allows them."""
+        if self._problem is None:
+            return Sensitivity(False, "this result is not attached to its problem")
+        return self._problem.sensitivity(self)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-ready dictionary (arrays as lists, the certificate as its summary fields)."""
+        cert = self.certificate
+        return {
+            "p": self.p.tolist(),
+            "value": None if not np.isfinite(self.value) else float(self.value),
+            "gradient": None if self.gradient is None else self.gradient.tolist(),
+            "x": self.x.tolist(),
+            "lam_g": self.lam_g.tolist(),
+            "lam_x": self.lam_x.tolist(),
+            "status": str(self.status),
+            "message": self.message,
+            "iterations": self.iterations,
+            "solve_time": self.solve_time,
+            "certify_time": self.certify_time,
+            "certificate": None
+            if cert is None
+            else {
+                "verdict": cert.verdict,
+                "reason": cert.reason,
+                "licq": cert.licq,
+                "sosc": cert.sosc,
+                "sosc_eigenvalue": cert.sosc_eigenvalue,
+                "weakly_active": [str(r) for r in cert.weakly_active],
+                "active": [str(r) for r in cert.active],
+                "stationarity": cert.stationarity,
+                "feasibility": cert.feasibility,
+                "complementarity": cert.complementarity,
+            },
+        }
+
+
+def _vector(name: str, value: Any, size: int, default: float) -> np.ndarray:
+    if value is None:
+        return np.full(size, default, dtype=float)
+    arr = np.asarray(ca.DM(value).full() if isinstance(value, ca.DM) else value, dtype=float).ravel()
+    if arr.size == 1 and size != 1:
+        arr = np.full(size, float(arr[0]))
+    if arr.shape != (size,):
+        raise ValueError(f"'{name}' must have shape ({size},) or be a scalar, got shape {arr.shape}")
+    if np.isnan(arr).any():
+        raise ValueError(f"'{name}' must not contain NaN")
+    return arr
+
+
+def _names(name: str, given: Sequence[str] | None, size: int, stem: str) -> tuple[str, ...]:
+    if given is None:
+        return tuple(f"{stem}[{i}]" for i in range(size))
+    names = tuple(str(s) for s in given)
+    if len(names) != size:
+        raise ValueError(f"'{name}' must have {size} entries, got {len(names)}")
+    return names
+
+
+def _column(name: str, expr: Any) -> Any:
+    if not isinstance(expr, ca.SX | ca.MX):
+        raise TypeError(f"'{name}' must be a CasADi SX or MX expression, got {type(expr).__name__}")
+    if expr.numel() > 0 and expr.size2() != 1:
+        raise ValueError(f"'{name}' must be a column vector, got shape {expr.shape}")
+    return expr
+
+
+class ParametricNLP:
+    """A parametric NLP built once and solved for many parameter values, with certified value gradients.
+
+    Parameters
+    ----------
+    nlp : mapping
+        ``{"x": x, "p": p, "f": f, "g": g}`` with CasADi SX or MX symbols ``x`` (decision variables,
+        column) and ``p`` (shared parameters, column), scalar expression ``f`` and column expression
+        ``g`` (optional), exactly as for ``casadi.nlpsol``.
+    lbx, ubx, lbg, ubg : array_like, optional
+        Numeric bounds (scalars broadcast); unbounded where omitted. Bounds cannot depend on ``p``:
+        **a parameter that should move a bound must be written into g** (e.g. ``g = x_T - p`` with
+        ``lbg = ubg = 0`` instead of ``lbx = p``), so that its price shows up in ``dV/dp``.
+    x0 : array_like, optional
+        Default initial guess for cold solves (zeros when omitted).
+    x_names, g_names, p_names : sequence of str, optional
+        Names of the entries, used in certificates and error messages.
+    solver_options : mapping, optional
+        Extra options for ``casadi.nlpsol(..., "ipopt", options)``, e.g. ``{"ipopt.tol": 1e-10}``.
+    tolerances : Tolerances, optional
+        Thresholds used to read the KKT point (see :class:`negotiate.kkt.Tolerances`).
+    name : str
+        Name of the problem (solver and function names).
+
+    Examples
+    --------
+    >>> import casadi as ca
+    >>> x, p = ca.SX.sym("x"), ca.SX.sym("p")
+    >>> prob = ParametricNLP({"x": x, "p": p, "f": (x - p) ** 2 + x, "g": x}, ubg=0)
+    >>> res = prob.solve([1.0])
+    >>> round(res.value, 6), res.gradient.round(6).tolist(), res.certificate.verdict
+    (1.0, [2.0], 'smooth')
+    """
+
+    def __init__(
+        self,
+        nlp: Mapping[str, Any],
+        lbx: Any = None,
+        ubx: Any = None,
+        lbg: Any = None,
+        ubg: Any = None,
+        *,
+        x0: Any = None,
+        x_names: Sequence[str] | None = None,
+        g_names: Sequence[str] | None = None,
+        p_names: Sequence[str] | None = None,
+        solver_options: Mapping[str, Any] | None = None,
+        tolerances: Tolerances | None = None,
+        name: str = "nlp",
+    ) -> None:
+        if not isinstance(nlp, Mapping):
+            raise TypeError(f"'nlp' must be a dict with keys 'x', 'p', 'f', 'g', got {type(nlp).__name__}")
+        unknown = set(nlp) - {"x", "p", "f", "g"}
+        if unknown:
+            raise ValueError(f"'nlp' has unknown keys {sorted(unknown)}; expected 'x', 'p', 'f', 'g'")
+        for key in ("x", "p", "f"):
+            if key not in nlp:
+                raise ValueError(f"'nlp' must have key '{key}'")
+        x = _column("x", nlp["x"])
+        p = _column("p", nlp["p"])
+        f = nlp["f"]
+        sym = type(x)
+        if type(p) is not sym:
+            raise TypeError(f"'x' and 'p' must be of the same CasADi type, got {sym.__name__} and {type(p).__name__}")
+        if not x.is_valid_input() or not p.is_valid_input():
+            raise ValueError("'x' and 'p' must be purely symbolic (made with SX.sym / MX.sym and vertcat)")
+        f = sym(f) if not isinstance(f, ca.SX | ca.MX) else f
+        if f.numel() != 1:
+            raise ValueError(f"'f' must be scalar, got shape {f.shape}")
+        g = nlp.get("g")
+        g = sym(0, 1) if g is None else _column("g", sym(g) if not isinstance(g, ca.SX | ca.MX) else g)
+
+        self.name = str(name)
+        self.n_x, self.n_p, self.n_g = int(x.numel()), int(p.numel()), int(g.numel())
+        self.lbx = _vector("lbx", lbx, self.n_x, -np.inf)
+        self.ubx = _vector("ubx", ubx, self.n_x, np.inf)
+        self.lbg = _vector("lbg", lbg, self.n_g, -np.inf)
+        self.ubg = _vector("ubg", ubg, self.n_g, np.inf)
+        for lo, up, what in ((self.lbx, self.ubx, "x"), (self.lbg, self.ubg, "g")):
+            bad = np.flatnonzero(lo > up)
+            if bad.size:
+                i = int(bad[0])
+                raise ValueError(f"lb{what}[{i}] = {lo[i]} exceeds ub{what}[{i}] = {up[i]}")
+        self.x0 = _vector("x0", x0, self.n_x, 0.0)
+        self.x_names = _names("x_names", x_names, self.n_x, "x")
+        self.g_names = _names("g_names", g_names, self.n_g, "g")
+        self.p_names = _names("p_names", p_names, self.n_p, "p")
+        self.tolerances = tolerances or Tolerances()
+        self._bounds = Bounds(
+            np.concatenate([self.lbg, self.lbx]),
+            np.concatenate([self.ubg, self.ubx]),
+            self.g_names + self.x_names,
+            self.n_g,
+        )
+
+        options = dict(_IPOPT_QUIET)
+        options.update(solver_options or {})
+        problem = {"x": x, "p": p, "f": f, "g": g}
+        expand = sym is ca.MX and "expand" not in options
+        self._solver = self._nlpsol(problem, options, expand)
+        self._warm_solver: Any = None
+        self._warm_options = {**_IPOPT_WARM, **options}
+        self._problem_expr = problem
+        self._expand = expand
+
+        lam = sym.sym("lam_g", self.n_g)
+        L = f + ca.dot(lam, g) if self.n_g else f
+        grad_f = ca.gradient(f, x)
+        J = ca.jacobian(g, x)
+        H = ca.hessian(L, x)[0]
+        grad_p = ca.gradient(L, p) if self.n_p else sym(0, 1)
+        dense = ca.densify
+        self._eval = self._function(
+            "kkt", [x, p, lam], [f, g, grad_f, dense(J), dense(H), grad_p], expand=sym is ca.MX
+        )
+        self._hess = self._function("hess", [x, p, lam], [dense(H)], expand=sym is ca.MX)
+        L_px = ca.jacobian(grad_p, x)
+        G_p = ca.jacobian(g, p)
+        L_pp = ca.jacobian(grad_p, p)
+        self._cross = self._function(
+            "cross", [x, p, lam], [dense(L_px), dense(G_p), dense(L_pp)], expand=sym is ca.MX
+        )
+
+    def _nlpsol(self, problem: dict[str, Any], options: dict[str, Any], expand: bool) -> Any:
+        if expand:
+            try:
+                return ca.nlpsol(self.name, "ipopt", problem, {**options, "expand": True})
+            except RuntimeError:
+                pass  # not expandable to SX (e.g. it calls external functions): keep MX
+        return ca.nlpsol(self.name, "ipopt", problem, options)
+
+    def _function(self, tag: str, ins: list[Any], outs: list[Any], expand: bool) -> ca.Function:
+        fn = ca.Function(f"{self.name}_{tag}", ins, outs)
+        if expand:
+            try:
+                fn = fn.expand()
+            except RuntimeError:
+                pass
+        return fn
+
+    # ----------------------------------------------------------------------------------------------
+    @classmethod
+    def from_opti(cls, opti: ca.Opti, **kwargs: Any) -> ParametricNLP:
+        """Build from a ``casadi.Opti`` problem whose ``opti.parameter()``s are the shared parameters.
+
+        Opti keeps parameter-dependent bounds (``opti.subject_to(x <= p)``) in ``lbg``/``ubg``; those rows
+        are rewritten into ``g`` (``g - bound``, bounded by 0) so that the parameter's price appears in
+        dV/dp. A two-sided row whose bounds depend on ``p`` becomes two rows. The initial guess comes
+        from ``opti.set_initial``. Keyword arguments go to :class:`ParametricNLP`.
+        """
+        x, p, f, g = opti.x, opti.p, opti.f, opti.g
+        lbg, ubg = opti.lbg, opti.ubg
+        rows, lo, up = [], [], []
+        for i in range(g.numel()):
+            gi, li, ui = g[i], lbg[i], ubg[i]
+            l_const, u_const = not ca.depends_on(li, p), not ca.depends_on(ui, p)
+            lv = float(ca.evalf(li)) if l_const else None
+            uv = float(ca.evalf(ui)) if u_const else None
+            if l_const and u_const:
+                rows.append(gi)
+                lo.append(lv)
+                up.append(uv)
+            elif not l_const and not u_const and ca.is_equal(li, ui, 10):
+                rows.append(gi - li)
+                lo.append(0.0)
+                up.append(0.0)
+            else:
+                if l_const and lv is not None and np.isfinite(lv):
+                    rows.append(gi)
+                    lo.append(lv)
+                    up.append(np.inf)
+                elif not l_const:
+                    rows.append(gi - li)
+                    lo.append(0.0)
+                    up.append(np.inf)
+                if u_const and uv is not None and np.isfinite(uv):
+                    rows.append(gi)
+                    lo.append(-np.inf)
+                    up.append(uv)
+                elif not u_const:
+                    rows.append(gi - ui)
+                    lo.append(-np.inf)
+                    up.append(0.0)
+        g_new = ca.vertcat(*rows) if rows else ca.MX(0, 1)
+        x0 = np.asarray(opti.value(x, opti.initial()), dtype=float).ravel() if x.numel() else None
+        kwargs.setdefault("x0", x0)
+        return cls({"x": x, "p": p, "f": f, "g": g_new}, lbg=lo, ubg=up, **kwargs)
+
+    # ----------------------------------------------------------------------------------------------
+    def _check_p(self, p: Any) -> np.ndarray:
+        arr = np.asarray(p, dtype=float)
+        if arr.ndim > 1 or arr.size != self.n_p:
+            raise ValueError(f"'p' must have shape ({self.n_p},), got {arr.shape}")
+        arr = arr.ravel()
+        if not np.all(np.isfinite(arr)):
+            bad = [self.p_names[i] for i in np.flatnonzero(~np.isfinite(arr))]
+            raise ValueError(f"'p' must be finite, got non-finite entries {bad}")
+        return arr
+
+    def _point(self, x: np.ndarray, p: np.ndarray, lam_g: np.ndarray, lam_x: np.ndarray) -> Point:
+        f, g, gf, J, H, gp = self._eval(x, p, lam_g)
+        return Point(
+            x=np.asarray(x, dtype=float),
+            lam_g=np.asarray(lam_g, dtype=float),
+            lam_x=np.asarray(lam_x, dtype=float),
+            f=float(f),
+            g=np.asarray(g).ravel(),
+            grad_f=np.asarray(gf).ravel(),
+            J=np.asarray(J).reshape(self.n_g, self.n_x),
+            H=np.asarray(H).reshape(self.n_x, self.n_x),
+            grad_p=np.asarray(gp).ravel(),
+        )
+
+    def solve(self, p: Any, warm: LocalResult | None = None) -> LocalResult:
+        """Solve at parameter ``p`` and certify the result.
+
+        Parameters
+        ----------
+        p : array_like, shape (n_p,)
+            Parameter values (finite).
+        warm : LocalResult, optional
+            A previous result (usually at a nearby ``p``) whose primal point and multipliers start the
+            solver (IPOPT warm start).
+
+        Returns
+        -------
+        LocalResult
+            ``gradient`` is ``None`` unless the status is ``converged``.
+        """
+        p = self._check_p(p)
+        if warm is not None:
+            if self._warm_solver is None:
+                self._warm_solver = self._nlpsol(self._problem_expr, self._warm_options, self._expand)
+            solver = self._warm_solver
+            start = {"x0": warm.x, "lam_x0": warm.lam_x, "lam_g0": warm.lam_g}
+        else:
+            solver, start = self._solver, {"x0": self.x0}
+        t0 = time.perf_counter()
+        try:
+            out = solver(p=p, lbx=self.lbx, ubx=self.ubx, lbg=self.lbg, ubg=self.ubg, **start)
+            stats = solver.stats()
+            raw = str(stats.get("return_status", "unknown"))
+        except RuntimeError as exc:  # evaluation errors surface as exceptions in some CasADi paths
+            elapsed = time.perf_counter() - t0
+            nan_x = np.full(self.n_x, np.nan)
+            return LocalResult(
+                p, np.nan, None, nan_x, np.full(self.n_g, np.nan), nan_x.copy(), np.full(self.n_g, np.nan),
+                Status.FAILED, f"solver raised: {exc}", 0, elapsed, 0.0, None, self,
+            )
+        solve_time = time.perf_counter() - t0
+        status = from_ipopt(raw)
+        iterations = int(stats.get("iter_count", 0))
+        x = np.asarray(out["x"]).ravel()
+        lam_g = np.asarray(out["lam_g"]).ravel()
+        lam_x = np.asarray(out["lam_x"]).ravel()
+        if status not in (Status.CONVERGED, Status.INACCURATE) or not np.all(np.isfinite(x)):
+            g = np.asarray(out["g"]).ravel()
+            value = float(out["f"])
+            return LocalResult(
+                p, value, None, x, lam_g, lam_x, g, status, raw, iterations, solve_time, 0.0, None, self
+            )
+
+        t1 = time.perf_counter()
+        tol = self.tolerances
+        pt = self._point(x, p, lam_g, lam_x)
+
+        def evaluate(xx: np.ndarray, lg: np.ndarray, lx: np.ndarray) -> Point:
+            return self._point(xx, p, lg, lx)
+
+        pt, accepted = polish(pt, self._bounds, evaluate, tol)
+        cert = certify(
+            pt,
+            self._bounds,
+            tol,
+            polished=accepted,
+            hessian_at=lambda xx: np.asarray(self._hess(xx, p, pt.lam_g)).reshape(self.n_x, self.n_x),
+            cross_derivative=lambda: np.asarray(self._cross(pt.x, p, pt.lam_g)[0]).reshape(self.n_p, self.n_x),
+        )
+        message = raw
+        if status is Status.CONVERGED and (cert.stationarity > tol.stationarity or cert.feasibility > tol.feasibility):
+            status = Status.INACCURATE
+            message = (
+                f"{raw}; re-check failed: stationarity {cert.stationarity:.2e} (tolerance {tol.stationarity:.0e}), "
+                f"feasibility {cert.feasibility:.2e} (tolerance {tol.feasibility:.0e})"
+            )
+        gradient = pt.grad_p.copy() if status is Status.CONVERGED else None
+        certify_time = time.perf_counter() - t1
+        return LocalResult(
+            p, pt.f, gradient, pt.x, pt.lam_g, pt.lam_x, pt.g, status, message, iterations,
+            solve_time, certify_time, cert, self,
+        )
+
+    def sensitivity(self, result: LocalResult) -> Sensitivity:
+        """Sensitivities of ``result`` (see :mod:`negotiate.sensitivity`), or why they are not available."""
+        cert = result.certificate
+        if not result.success or cert is None:
+            return Sensitivity(False, f"the solve did not converge (status {result.status})")
+        if cert.verdict != "smooth":
+            return Sensitivity(False, f"certificate is {cert.verdict}: {cert.reason}")
+        pt = self._point(result.x, result.p, result.lam_g, result.lam_x)
+        L_px, G_p, L_pp = (np.asarray(a) for a in self._cross(result.x, result.p, result.lam_g))
+        rows, _ = active_rows(cert, self.n_g)
+        return solve_sensitivity(
+            pt.H,
+            pt.J,
+            rows,
+            L_px.reshape(self.n_p, self.n_x),
+            G_p.reshape(self.n_g, self.n_p),
+            L_pp.reshape(self.n_p, self.n_p),
+        )
+
+    def __repr__(self) -> str:
+        return f"ParametricNLP(name={self.name!r}, n_x={self.n_x}, n_p={self.n_p}, n_g={self.n_g})"
