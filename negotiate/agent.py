@@ -87,9 +87,7 @@ class ReachableSet:
         """Whether ``p`` lies in the set, up to ``tol`` (in the parameters' units)."""
         p = np.asarray(p, dtype=float).ravel()
         return bool(
-            np.all(p >= self.lower - tol)
-            and np.all(p <= self.upper + tol)
-            and np.all(self.A @ p <= self.b + tol)
+            np.all(p >= self.lower - tol) and np.all(p <= self.upper + tol) and np.all(self.A @ p <= self.b + tol)
         )
 
 

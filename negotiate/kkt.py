@@ -257,14 +257,19 @@ def _classify(pt: Point, bnd: Bounds, tol: Tolerances) -> _Classes:
     return _Classes(side, slack, mult, active, strict, weak, wrong)
 
 
+def _violation(c: np.ndarray, bnd: Bounds) -> np.ndarray:
+    """Relative bound violation of every row (negative when satisfied)."""
+    lo, up = np.nan_to_num(bnd.lo), np.nan_to_num(bnd.up)
+    with np.errstate(invalid="ignore"):
+        v_lo = np.where(np.isfinite(bnd.lo), (lo - c) / np.maximum(1.0, np.abs(lo)), -np.inf)
+        v_up = np.where(np.isfinite(bnd.up), (c - up) / np.maximum(1.0, np.abs(up)), -np.inf)
+    return np.maximum(v_lo, v_up)
+
+
 def _residuals(pt: Point, bnd: Bounds, cl: _Classes) -> tuple[float, float, float, float]:
     gscale = max(1.0, float(np.max(np.abs(pt.grad_f), initial=0.0)))
     stat = float(np.max(np.abs(pt.grad_lagrangian()), initial=0.0)) / gscale
-    c = pt.values
-    with np.errstate(invalid="ignore"):
-        v_lo = np.where(np.isfinite(bnd.lo), (bnd.lo - c) / np.maximum(1.0, np.abs(np.nan_to_num(bnd.lo))), 0.0)
-        v_up = np.where(np.isfinite(bnd.up), (c - bnd.up) / np.maximum(1.0, np.abs(np.nan_to_num(bnd.up))), 0.0)
-    feas = float(np.max(np.maximum(np.maximum(v_lo, v_up), 0.0), initial=0.0))
+    feas = float(np.max(np.maximum(_violation(pt.values, bnd), 0.0), initial=0.0))
     ineq = (cl.side == 1) | (cl.side == -1)
     comp = float(np.max(np.where(ineq, cl.mult * np.minimum(np.maximum(cl.slack, 0.0), 1.0), 0.0), initial=0.0))
     sign = float(np.max(np.where(cl.active, cl.wrong_sign, 0.0), initial=0.0))
@@ -292,9 +297,7 @@ def _solve_kkt(K: np.ndarray, rhs: np.ndarray) -> np.ndarray:
 Evaluate = Callable[[np.ndarray, np.ndarray, np.ndarray], Point]
 
 
-def polish(
-    pt: Point, bnd: Bounds, evaluate: Evaluate, tol: Tolerances, max_newton: int = 4
-) -> tuple[Point, bool]:
+def polish(pt: Point, bnd: Bounds, evaluate: Evaluate, tol: Tolerances, max_newton: int = 4) -> tuple[Point, bool]:
     """Sharpen a solver's KKT point on its active set; return ``(point, accepted)``.
 
     The active set is guessed by complementarity (a row whose relative slack is below its relative
@@ -326,12 +329,7 @@ def polish(
             lam[A] = lam[A] + step[n:]
             cur = evaluate(x, lam[:m], lam[m:])
         new = _classify(cur, bnd, tol)
-        c = cur.values
-        with np.errstate(invalid="ignore"):
-            viol = np.maximum(
-                np.where(np.isfinite(bnd.lo), (bnd.lo - c) / np.maximum(1.0, np.abs(np.nan_to_num(bnd.lo))), 0.0),
-                np.where(np.isfinite(bnd.up), (c - bnd.up) / np.maximum(1.0, np.abs(np.nan_to_num(bnd.up))), 0.0),
-            )
+        viol = _violation(cur.values, bnd)
         violated = ~guess & (viol > tol.active)
         wrong = guess & (new.wrong_sign > tol.multiplier)
         if not violated.any() and not wrong.any():

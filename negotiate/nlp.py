@@ -271,16 +271,12 @@ class ParametricNLP:
         H = ca.hessian(L, x)[0]
         grad_p = ca.gradient(L, p) if self.n_p else sym(0, 1)
         dense = ca.densify
-        self._eval = self._function(
-            "kkt", [x, p, lam], [f, g, grad_f, dense(J), dense(H), grad_p], expand=sym is ca.MX
-        )
+        self._eval = self._function("kkt", [x, p, lam], [f, g, grad_f, dense(J), dense(H), grad_p], expand=sym is ca.MX)
         self._hess = self._function("hess", [x, p, lam], [dense(H)], expand=sym is ca.MX)
         L_px = ca.jacobian(grad_p, x)
         G_p = ca.jacobian(g, p)
         L_pp = ca.jacobian(grad_p, p)
-        self._cross = self._function(
-            "cross", [x, p, lam], [dense(L_px), dense(G_p), dense(L_pp)], expand=sym is ca.MX
-        )
+        self._cross = self._function("cross", [x, p, lam], [dense(L_px), dense(G_p), dense(L_pp)], expand=sym is ca.MX)
 
     def _nlpsol(self, problem: dict[str, Any], options: dict[str, Any], expand: bool) -> Any:
         if expand:
@@ -405,8 +401,20 @@ class ParametricNLP:
             elapsed = time.perf_counter() - t0
             nan_x = np.full(self.n_x, np.nan)
             return LocalResult(
-                p, np.nan, None, nan_x, np.full(self.n_g, np.nan), nan_x.copy(), np.full(self.n_g, np.nan),
-                Status.FAILED, f"solver raised: {exc}", 0, elapsed, 0.0, None, self,
+                p,
+                np.nan,
+                None,
+                nan_x,
+                np.full(self.n_g, np.nan),
+                nan_x.copy(),
+                np.full(self.n_g, np.nan),
+                Status.FAILED,
+                f"solver raised: {exc}",
+                0,
+                elapsed,
+                0.0,
+                None,
+                self,
             )
         solve_time = time.perf_counter() - t0
         status = from_ipopt(raw)
@@ -417,9 +425,7 @@ class ParametricNLP:
         if status not in (Status.CONVERGED, Status.INACCURATE) or not np.all(np.isfinite(x)):
             g = np.asarray(out["g"]).ravel()
             value = float(out["f"])
-            return LocalResult(
-                p, value, None, x, lam_g, lam_x, g, status, raw, iterations, solve_time, 0.0, None, self
-            )
+            return LocalResult(p, value, None, x, lam_g, lam_x, g, status, raw, iterations, solve_time, 0.0, None, self)
 
         t1 = time.perf_counter()
         tol = self.tolerances
@@ -447,8 +453,20 @@ class ParametricNLP:
         gradient = pt.grad_p.copy() if status is Status.CONVERGED else None
         certify_time = time.perf_counter() - t1
         return LocalResult(
-            p, pt.f, gradient, pt.x, pt.lam_g, pt.lam_x, pt.g, status, message, iterations,
-            solve_time, certify_time, cert, self,
+            p,
+            pt.f,
+            gradient,
+            pt.x,
+            pt.lam_g,
+            pt.lam_x,
+            pt.g,
+            status,
+            message,
+            iterations,
+            solve_time,
+            certify_time,
+            cert,
+            self,
         )
 
     def sensitivity(self, result: LocalResult) -> Sensitivity:
