@@ -147,8 +147,8 @@ def shrink_rows(A: np.ndarray, b: np.ndarray, center: np.ndarray, factor: float)
 def polytope_vertices(A: np.ndarray, b: np.ndarray, interior: np.ndarray) -> np.ndarray:
     """Vertices of the bounded polytope ``A q <= b`` that has ``interior`` strictly inside it."""
     if A.shape[1] == 1:
-        lo = max((bi / ai for ai, bi in zip(A[:, 0], b) if ai < 0), default=-np.inf)
-        hi = min((bi / ai for ai, bi in zip(A[:, 0], b) if ai > 0), default=np.inf)
+        lo = max((bi / ai for ai, bi in zip(A[:, 0], b, strict=True) if ai < 0), default=-np.inf)
+        hi = min((bi / ai for ai, bi in zip(A[:, 0], b, strict=True) if ai > 0), default=np.inf)
         return np.array([[lo], [hi]])
     hs = HalfspaceIntersection(np.hstack([A, -b[:, None]]), np.asarray(interior, dtype=float))
     verts = hs.intersections
@@ -173,7 +173,7 @@ def chebyshev_center(A: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, float]:
 
 def box_corners(lower: np.ndarray, upper: np.ndarray) -> np.ndarray:
     """All ``2^n`` corners of a box."""
-    return np.array(list(itertools.product(*zip(lower, upper))), dtype=float)
+    return np.array(list(itertools.product(*zip(lower, upper, strict=True))), dtype=float)
 
 
 def joint_optimum(spec: NLPSpec, A: np.ndarray, b: np.ndarray, p_start: np.ndarray,

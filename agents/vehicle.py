@@ -89,7 +89,7 @@ def vehicle_grid(prm: VehicleParams) -> tuple[np.ndarray, list[tuple[int, int]]]
         marks.add(float(z.exit + prm.length))
     ordered = sorted(marks)
     nodes = [0.0]
-    for lo, hi in zip(ordered[:-1], ordered[1:]):
+    for lo, hi in zip(ordered[:-1], ordered[1:], strict=True):
         n = max(1, int(round(prm.stages * (hi - lo) / L)))
         nodes.extend(np.linspace(lo, hi, n + 1)[1:].tolist())
     s = np.array(nodes)
@@ -225,7 +225,7 @@ class VehicleModel:
             if len(pts) < 3:
                 raise RuntimeError(f"vehicle: support solves for zone {self.p_names[2 * k]!r} failed")
             A2, b2 = hull_rows(np.array(pts))
-            for row, bi in zip(A2, b2):
+            for row, bi in zip(A2, b2, strict=True):
                 full = np.zeros(n_p)
                 full[2 * k: 2 * k + 2] = row
                 rows.append(full)
