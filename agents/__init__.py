@@ -22,6 +22,8 @@ Parameter records (frozen dataclasses, no CasADi, SI units in the field metadata
 
 from __future__ import annotations
 
+from agents.capacity import build_capacity
+from agents.machine import build_machine
 from agents.params import CapacityParams, MachineParams, StationParams, VehicleParams, ZoneParams
 from agents.vehicle import build_vehicle
 
@@ -32,7 +34,9 @@ __all__ = [
     "StationParams",
     "VehicleParams",
     "ZoneParams",
+    "build_capacity",
+    "build_machine",
     "build_vehicle",
 ]
 
-MODELS = {"vehicle": build_vehicle}
+MODELS = {"vehicle": build_vehicle, "machine": build_machine, "capacity": build_capacity}
