@@ -209,7 +209,13 @@ def build_machine(name: str, prm: MachineParams | None = None, weight: float = 1
     joint = joint_optimum(spec, A_box, b_box, start, np.r_[model.x0[:-1], start[0] - prm.stations[0].transfer])
     if not joint.success:
         raise RuntimeError(f"machine {name!r}: free-optimum solve failed ({joint.status})")
-    p_free = joint.x[spec.x.numel():]
+    # The joint solve meets the rows to solver accuracy; push onto the set exactly (the rows are chains of
+    # shortest durations and transfers, so raising each later time to its lower limit in turn suffices).
+    p_free = np.clip(joint.x[spec.x.numel():], lower, upper)
+    for j, st in enumerate(prm.stations):
+        if j > 0:
+            p_free[2 * j] = max(p_free[2 * j], p_free[2 * j - 1] + st.transfer)
+        p_free[2 * j + 1] = max(p_free[2 * j + 1], p_free[2 * j] + st.duration)
     params = []
     for s_ in prm.stations:
         params += [SlotParam(f"{s_.resource}.enter", s_.resource, "enter"),

@@ -47,7 +47,11 @@ Free optimum. The vehicle alone (no coupling rows) chooses its trajectory; its t
 the free optimum. At that ``p`` the coupling equalities have zero multipliers and the NLP's solution is the
 same, so the certificate there is that of the unconstrained problem (strict second-order sufficiency from the
 convex comfort and arrival terms). If those times fell outside the verified polytope, the free optimum is the
-minimiser of the value over it, found by one joint solve over trajectory and parameters.
+minimiser of the value over it, found by one joint solve over trajectory and parameters. That happens when
+the preferred times lie on the boundary of the reachable pairs, e.g. when a zone speed limit binds all
+through the zone so that the dwell is as short as it can be: there LICQ fails (every speed in the zone is at
+its bound and the dwell is fixed), and the minimiser over the shrunk polytope keeps the margin from that
+boundary, where the certificate is strict again.
 """
 
 from __future__ import annotations
@@ -245,20 +249,17 @@ class VehicleModel:
                 rhs.append(-sign * value)
         A = np.array(rows)
         b = np.array(rhs)
-        inside = bool(np.all(A @ center < b))
-        anchor = center if inside else chebyshev_center(A, b)[0]
+        # Shrink towards the preferred times when they lie inside the hull (then they stay inside), else
+        # towards the hull's Chebyshev centre.
+        anchor = center if bool(np.all(A @ center < b)) else chebyshev_center(A, b)[0]
         factor = 1.0 - _MARGIN
         for _ in range(6):
             bs = shrink_rows(A, b, anchor, factor)
-            verts = polytope_vertices(A, bs, anchor)
-            ok = all(spec.solve_plain(v, self._guess(v)).success for v in verts)
-            if ok:
+            verts = polytope_vertices(A, bs, chebyshev_center(A, bs)[0])
+            if all(spec.solve_plain(v).success for v in verts):
                 return A, bs
             factor *= 0.7
         raise RuntimeError("vehicle: could not verify a reachable polytope for the zone times")
-
-    def _guess(self, p: np.ndarray) -> np.ndarray:
-        return self.x0
 
     def trajectory(self, result: Any) -> Mapping[str, np.ndarray]:
         """Node time series of a solve: time, position, speed, force (zero-order hold per stage), energy."""
@@ -306,7 +307,7 @@ def build_vehicle(name: str, prm: VehicleParams | None = None, weight: float = 1
         raise RuntimeError(f"vehicle {name!r}: the unconstrained trip does not solve ({free.status})")
     center = np.asarray(model.zone_times(free.x)).ravel()
     A, b = model.reachable(center, spec)
-    verts = polytope_vertices(A, b, center if np.all(A @ center < b) else chebyshev_center(A, b)[0])
+    verts = polytope_vertices(A, b, chebyshev_center(A, b)[0])
     lower, upper = verts.min(axis=0), verts.max(axis=0)
     if np.all(A @ center <= b):
         p_free = center
@@ -315,7 +316,10 @@ def build_vehicle(name: str, prm: VehicleParams | None = None, weight: float = 1
         if not joint.success:
             raise RuntimeError(f"vehicle {name!r}: free-optimum solve over the reachable set failed "
                                f"({joint.status})")
-        p_free = joint.x[spec.x.numel():]
+        # The joint solve meets the rows to solver accuracy; step a hair towards the centre so that the
+        # free optimum lies in the reported set exactly.
+        mid = chebyshev_center(A, b)[0]
+        p_free = np.clip(mid + (1 - 1e-7) * (joint.x[spec.x.numel():] - mid), lower, upper)
     params = []
     for z in prm.zones:
         params += [SlotParam(f"{z.resource}.enter", z.resource, "enter"),
