@@ -16,8 +16,12 @@ Parameter records (frozen dataclasses, no CasADi, SI units in the field metadata
 :mod:`agents.params`: :class:`VehicleParams`, :class:`ZoneParams`, :class:`MachineParams`,
 :class:`StationParams`, :class:`CapacityParams`.
 
-``MODELS`` maps a family name to its builder; every builder is called as
-``builder(name, params=None, weight=1.0, solver_options=None)``.
+``MODELS`` maps a family name to its builder, ``PARAMETERS`` to its parameter record; every builder is
+called as ``builder(name, prm=None, weight=1.0, solver_options=None)`` with ``prm`` an instance of the
+family's record (its invented demo defaults when omitted).
+
+:mod:`agents.checks` holds checks for any model, built-in or user-written: central finite differences of
+the value and vertices / random points of a reachable set.
 """
 
 from __future__ import annotations
@@ -29,6 +33,7 @@ from agents.vehicle import build_vehicle
 
 __all__ = [
     "MODELS",
+    "PARAMETERS",
     "CapacityParams",
     "MachineParams",
     "StationParams",
@@ -40,3 +45,4 @@ __all__ = [
 ]
 
 MODELS = {"vehicle": build_vehicle, "machine": build_machine, "capacity": build_capacity}
+PARAMETERS = {"vehicle": VehicleParams, "machine": MachineParams, "capacity": CapacityParams}

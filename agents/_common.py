@@ -17,6 +17,8 @@ import numpy as np
 from scipy.optimize import linprog
 from scipy.spatial import ConvexHull, HalfspaceIntersection
 
+from negotiate.nlp import ParametricNLP
+
 __all__ = ["NLPSpec", "PlainResult", "smooth_pos"]
 
 # Quiet IPOPT for the builders' auxiliary solves; tolerances a little tighter than IPOPT's defaults so that
@@ -70,10 +72,8 @@ class NLPSpec:
     p_names: list[str]
     _solvers: dict[str, Any] = field(default_factory=dict, repr=False)
 
-    def to_problem(self, solver_options: dict[str, Any] | None = None) -> Any:
+    def to_problem(self, solver_options: dict[str, Any] | None = None) -> ParametricNLP:
         """The agent's :class:`~negotiate.nlp.ParametricNLP` built from this spec."""
-        from negotiate.nlp import ParametricNLP
-
         return ParametricNLP(
             {"x": self.x, "p": self.p, "f": self.f, "g": self.g},
             lbx=self.lbx, ubx=self.ubx, lbg=self.lbg, ubg=self.ubg, x0=self.x0,

@@ -42,6 +42,7 @@ import numpy as np
 
 from agents._common import NLPSpec
 from agents.params import CapacityParams
+from negotiate.agent import AgentModel, ReachableSet, SlotParam
 
 __all__ = ["CapacityModel", "build_capacity"]
 
@@ -121,7 +122,7 @@ class CapacityModel:
 
 
 def build_capacity(name: str, prm: CapacityParams | None = None, weight: float = 1.0,
-                   solver_options: dict[str, Any] | None = None) -> Any:
+                   solver_options: dict[str, Any] | None = None) -> AgentModel:
     """Build a capacity-user (charging) agent.
 
     Parameters
@@ -141,8 +142,6 @@ def build_capacity(name: str, prm: CapacityParams | None = None, weight: float =
         Parameters ``<resource>.share[k]`` in W, reachable box ``[0, charger_power]`` and the free optimum of
         the module docstring.
     """
-    from negotiate.agent import AgentModel, ReachableSet, SlotParam
-
     prm = CapacityParams() if prm is None else prm
     model = CapacityModel(prm)
     spec = model.spec()

@@ -49,6 +49,7 @@ import numpy as np
 
 from agents._common import NLPSpec, joint_optimum, smooth_pos
 from agents.params import MachineParams
+from negotiate.agent import AgentModel, ReachableSet, SlotParam
 
 __all__ = ["MachineModel", "build_machine"]
 
@@ -176,7 +177,7 @@ class MachineModel:
 
 
 def build_machine(name: str, prm: MachineParams | None = None, weight: float = 1.0,
-                  solver_options: dict[str, Any] | None = None) -> Any:
+                  solver_options: dict[str, Any] | None = None) -> AgentModel:
     """Build a machine-job agent.
 
     Parameters
@@ -196,8 +197,6 @@ def build_machine(name: str, prm: MachineParams | None = None, weight: float = 1
         Parameters ``(<station>.enter, <station>.leave)`` per station in s, the closed-form reachable set
         and the free optimum of the module docstring.
     """
-    from negotiate.agent import AgentModel, ReachableSet, SlotParam
-
     prm = MachineParams() if prm is None else prm
     model = MachineModel(prm)
     spec = model.spec()

@@ -73,6 +73,7 @@ from agents._common import (
     solve_aux,
 )
 from agents.params import STANDARD_GRAVITY, VehicleParams
+from negotiate.agent import AgentModel, ReachableSet, SlotParam
 
 __all__ = ["VehicleModel", "build_vehicle", "vehicle_grid"]
 
@@ -277,7 +278,7 @@ class VehicleModel:
 
 
 def build_vehicle(name: str, prm: VehicleParams | None = None, weight: float = 1.0,
-                  solver_options: dict[str, Any] | None = None) -> Any:
+                  solver_options: dict[str, Any] | None = None) -> AgentModel:
     """Build a vehicle agent.
 
     Parameters
@@ -297,8 +298,6 @@ def build_vehicle(name: str, prm: VehicleParams | None = None, weight: float = 1
         Parameters ``(<zone>.enter, <zone>.leave)`` per zone in s, the verified reachable polytope and the
         free optimum described in the module docstring.
     """
-    from negotiate.agent import AgentModel, ReachableSet, SlotParam
-
     prm = VehicleParams() if prm is None else prm
     model = VehicleModel(prm)
     spec = model.spec()
