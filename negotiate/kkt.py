@@ -33,6 +33,9 @@ from dataclasses import dataclass
 from typing import Literal
 
 import numpy as np
+import scipy.linalg
+import scipy.sparse
+import scipy.sparse.linalg
 
 __all__ = ["Certificate", "ConstraintRef", "Tolerances", "certify", "polish"]
 
@@ -280,15 +283,22 @@ def _kkt_error(pt: Point, bnd: Bounds, tol: Tolerances) -> float:
     return max(_residuals(pt, bnd, _classify(pt, bnd, tol)))
 
 
-def _solve_kkt(K: np.ndarray, rhs: np.ndarray) -> np.ndarray:
-    """Solve a KKT system; fall back to the least-squares solution when it is singular (LICQ failure)."""
+def _solve_kkt(H: np.ndarray, C: np.ndarray, rhs: np.ndarray) -> np.ndarray:
+    """Solve ``[[H, C^T], [C, 0]] z = rhs`` with a sparse LU; least squares when singular (LICQ failure)."""
+    k = C.shape[0]
+    K = scipy.sparse.bmat(
+        [[scipy.sparse.csc_matrix(H), scipy.sparse.csc_matrix(C.T)], [scipy.sparse.csc_matrix(C), None]],
+        format="csc",
+    )
+    if K.shape[0] != H.shape[0] + k:  # bmat drops nothing, but keep the shape honest for empty blocks
+        K = scipy.sparse.csc_matrix(np.block([[H, C.T], [C, np.zeros((k, k))]]))
     try:
-        sol = np.linalg.solve(K, rhs)
+        sol = scipy.sparse.linalg.splu(K).solve(rhs)
         if np.all(np.isfinite(sol)) and np.allclose(K @ sol, rhs, rtol=1e-8, atol=1e-10 * max(1.0, np.abs(rhs).max())):
             return sol
-    except np.linalg.LinAlgError:
+    except RuntimeError:  # exactly singular
         pass
-    return np.linalg.lstsq(K, rhs, rcond=None)[0]
+    return np.linalg.lstsq(K.toarray(), rhs, rcond=None)[0]
 
 
 # --------------------------------------------------------------------------------------------------------
@@ -321,10 +331,9 @@ def polish(pt: Point, bnd: Bounds, evaluate: Evaluate, tol: Tolerances, max_newt
         for _ in range(max_newton):
             C = cur.rows()[A]
             r = np.concatenate([cur.grad_lagrangian(), cur.values[A] - target])
-            if np.max(np.abs(r), initial=0.0) <= 1e-14 * max(1.0, float(np.max(np.abs(cur.grad_f), initial=0))):
+            if np.max(np.abs(r), initial=0.0) <= 1e-13 * max(1.0, float(np.max(np.abs(cur.grad_f), initial=0))):
                 break
-            K = np.block([[cur.H, C.T], [C, np.zeros((A.size, A.size))]])
-            step = _solve_kkt(K, -r)
+            step = _solve_kkt(cur.H, C, -r)
             x = x + step[:n]
             lam[A] = lam[A] + step[n:]
             cur = evaluate(x, lam[:m], lam[m:])
@@ -345,16 +354,12 @@ def polish(pt: Point, bnd: Bounds, evaluate: Evaluate, tol: Tolerances, max_newt
 # The certificate.
 
 
-def _svd_rows(C: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    norms = np.linalg.norm(C, axis=1)
-    Cn = C / np.where(norms > 0, norms, 1.0)[:, None]
-    return np.linalg.svd(Cn, full_matrices=True)
-
-
 def _null_space(C: np.ndarray, n: int, rcond: float) -> np.ndarray:
+    """Orthonormal basis of the null space of C (rows scaled to unit length), by SVD."""
     if C.shape[0] == 0:
         return np.eye(n)
-    _U, s, Vt = _svd_rows(C)
+    norms = np.linalg.norm(C, axis=1)
+    _U, s, Vt = np.linalg.svd(C / np.where(norms > 0, norms, 1.0)[:, None], full_matrices=True)
     rank = int(np.sum(s > rcond))
     return Vt[rank:].T
 
@@ -395,25 +400,39 @@ def certify(
     strictly = tuple(refs[int(i)] for i in strict_idx)
     weakly = tuple(refs[int(i)] for i in weak_idx)
 
-    # LICQ on all active rows (equalities, strictly and weakly active), rows scaled to unit length.
+    # One QR of the active Jacobian (rows scaled to unit length), strictly active rows first, serves LICQ
+    # and both faces of the second-order test: Q[:, |S|:] spans null(C_S), Q[:, |S|+|W|:] spans null(C_A).
+    order = np.concatenate([strict_idx, weak_idx])
+    C = C_all[order]
+    norms = np.linalg.norm(C, axis=1)
+    C = C / np.where(norms > 0, norms, 1.0)[:, None]
+    k_s, k_a = strict_idx.size, order.size
     dependent: tuple[ConstraintRef, ...] = ()
-    if act.size == 0:
+    if k_a == 0:
         licq, rank, smin = True, 0, None
+        Q = np.eye(n)
     else:
-        U, s, _Vt = _svd_rows(C_all[act])
+        Q, R = scipy.linalg.qr(C.T, mode="full", check_finite=False)
+        if k_a <= n:
+            s = scipy.linalg.svdvals(R[:k_a, :k_a], check_finite=False)
+        else:
+            s = scipy.linalg.svdvals(C, check_finite=False)
         rank = int(np.sum(s > tol.licq))
-        smin = float(s[-1]) if act.size <= n else 0.0
-        licq = act.size <= n and smin > tol.licq
+        smin = float(s[-1]) if k_a <= n else 0.0
+        licq = k_a <= n and smin > tol.licq
         if not licq:
-            left = U[:, rank:]
-            involved = np.flatnonzero(np.max(np.abs(left), axis=1) > 0.1)
-            dependent = tuple(refs[int(act[i])] for i in involved)
+            U, _s, _Vt = np.linalg.svd(C, full_matrices=True)
+            involved = np.flatnonzero(np.max(np.abs(U[:, rank:]), axis=1) > 0.1)
+            dependent = tuple(refs[int(order[i])] for i in involved)
 
     # Second-order test on the released face (null space of equalities + strictly active rows) and,
     # with weakly active rows, on the held face (their gradients added).
     Hscale = max(1.0, float(np.max(np.abs(pt.H), initial=0.0)))
     floor = tol.sosc_floor * Hscale
-    Z = _null_space(C_all[strict_idx], n, tol.licq)
+    if licq:
+        Z = Q[:, k_s:]
+    else:  # rank-deficient: the QR's trailing columns miss null directions, use the SVD
+        Z = _null_space(C_all[strict_idx], n, tol.licq)
     evals, evecs = _face(pt.H, Z)
     threshold = floor
     if evals.size:
@@ -431,7 +450,7 @@ def certify(
     released = grade(evals)
     held_ev: float | None = None
     if weak_idx.size:
-        Zh = _null_space(C_all[np.concatenate([strict_idx, weak_idx])], n, tol.licq)
+        Zh = Q[:, k_a:] if licq else _null_space(C_all[order], n, tol.licq)
         ev_h, _ = _face(pt.H, Zh)
         held = grade(ev_h)
         held_ev = float(ev_h[0]) if ev_h.size else None

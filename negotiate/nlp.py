@@ -21,6 +21,7 @@ from typing import Any
 
 import casadi as ca
 import numpy as np
+from threadpoolctl import ThreadpoolController
 
 from negotiate.kkt import Bounds, Certificate, Point, Tolerances, active_rows, certify, polish
 from negotiate.sensitivity import Sensitivity, solve_sensitivity
@@ -127,6 +128,59 @@ class LocalResult:
                 "complementarity": cert.complementarity,
             },
         }
+
+
+_THREADS: ThreadpoolController | None = None
+
+
+def _one_blas_thread() -> Any:
+    """Run the small dense linear algebra of a certificate on one BLAS thread.
+
+    These matrices have a few hundred rows; a multi-threaded BLAS spends more time waking threads than
+    computing, and on a 2-core machine shared with IPOPT it can be ten times slower.
+    """
+    global _THREADS
+    if _THREADS is None:
+        _THREADS = ThreadpoolController()
+    return _THREADS.limit(limits=1, user_api="blas")
+
+
+class _Evaluator:
+    """Fast repeated evaluation of a CasADi Function into NumPy arrays (zero-copy buffers).
+
+    Matrix outputs come back dense; their nonzeros are scattered through index arrays computed once.
+    """
+
+    def __init__(self, fn: ca.Function, vectors: Sequence[int] = ()) -> None:
+        self.fn = fn
+        self._vectors = set(vectors)
+        self._ins = [np.zeros(fn.nnz_in(i)) for i in range(fn.n_in())]
+        self._nz = [np.zeros(fn.nnz_out(i)) for i in range(fn.n_out())]
+        self._buf, self._trigger = fn.buffer()
+        for i, a in enumerate(self._ins):
+            self._buf.set_arg(i, memoryview(a))
+        for i, o in enumerate(self._nz):
+            self._buf.set_res(i, memoryview(o))
+        self._layout = []
+        for i in range(fn.n_out()):
+            sp = fn.sparsity_out(i)
+            colind, row = (np.asarray(v, dtype=int) for v in sp.get_ccs())
+            col = np.repeat(np.arange(sp.size2()), np.diff(colind))
+            self._layout.append((sp.shape, sp.is_dense(), row, col))
+
+    def __call__(self, *args: np.ndarray) -> list[np.ndarray]:
+        for buf, a in zip(self._ins, args, strict=True):
+            buf[:] = np.ravel(a)
+        self._trigger()
+        out = []
+        for i, (nz, (shape, dense, row, col)) in enumerate(zip(self._nz, self._layout, strict=True)):
+            if dense:
+                full = nz.reshape(shape[1], shape[0]).T.copy()
+            else:
+                full = np.zeros(shape)
+                full[row, col] = nz
+            out.append(full.ravel() if i in self._vectors else full)
+        return out
 
 
 def _vector(name: str, value: Any, size: int, default: float) -> np.ndarray:
@@ -270,13 +324,13 @@ class ParametricNLP:
         J = ca.jacobian(g, x)
         H = ca.hessian(L, x)[0]
         grad_p = ca.gradient(L, p) if self.n_p else sym(0, 1)
-        dense = ca.densify
-        self._eval = self._function("kkt", [x, p, lam], [f, g, grad_f, dense(J), dense(H), grad_p], expand=sym is ca.MX)
-        self._hess = self._function("hess", [x, p, lam], [dense(H)], expand=sym is ca.MX)
+        mx = sym is ca.MX
+        self._eval = _Evaluator(self._function("kkt", [x, p, lam], [f, g, grad_f, J, H, grad_p], mx), (0, 1, 2, 5))
+        self._hess = _Evaluator(self._function("hess", [x, p, lam], [H], mx))
         L_px = ca.jacobian(grad_p, x)
         G_p = ca.jacobian(g, p)
         L_pp = ca.jacobian(grad_p, p)
-        self._cross = self._function("cross", [x, p, lam], [dense(L_px), dense(G_p), dense(L_pp)], expand=sym is ca.MX)
+        self._cross = _Evaluator(self._function("cross", [x, p, lam], [L_px, G_p, L_pp], mx))
 
     def _nlpsol(self, problem: dict[str, Any], options: dict[str, Any], expand: bool) -> Any:
         if expand:
@@ -360,12 +414,12 @@ class ParametricNLP:
             x=np.asarray(x, dtype=float),
             lam_g=np.asarray(lam_g, dtype=float),
             lam_x=np.asarray(lam_x, dtype=float),
-            f=float(f),
-            g=np.asarray(g).ravel(),
-            grad_f=np.asarray(gf).ravel(),
-            J=np.asarray(J).reshape(self.n_g, self.n_x),
-            H=np.asarray(H).reshape(self.n_x, self.n_x),
-            grad_p=np.asarray(gp).ravel(),
+            f=float(f[0]),
+            g=g,
+            grad_f=gf,
+            J=J,
+            H=H,
+            grad_p=gp,
         )
 
     def solve(self, p: Any, warm: LocalResult | None = None) -> LocalResult:
@@ -434,15 +488,16 @@ class ParametricNLP:
         def evaluate(xx: np.ndarray, lg: np.ndarray, lx: np.ndarray) -> Point:
             return self._point(xx, p, lg, lx)
 
-        pt, accepted = polish(pt, self._bounds, evaluate, tol)
-        cert = certify(
-            pt,
-            self._bounds,
-            tol,
-            polished=accepted,
-            hessian_at=lambda xx: np.asarray(self._hess(xx, p, pt.lam_g)).reshape(self.n_x, self.n_x),
-            cross_derivative=lambda: np.asarray(self._cross(pt.x, p, pt.lam_g)[0]).reshape(self.n_p, self.n_x),
-        )
+        with _one_blas_thread():
+            pt, accepted = polish(pt, self._bounds, evaluate, tol)
+            cert = certify(
+                pt,
+                self._bounds,
+                tol,
+                polished=accepted,
+                hessian_at=lambda xx: self._hess(xx, p, pt.lam_g)[0],
+                cross_derivative=lambda: self._cross(pt.x, p, pt.lam_g)[0],
+            )
         message = raw
         if status is Status.CONVERGED and (cert.stationarity > tol.stationarity or cert.feasibility > tol.feasibility):
             status = Status.INACCURATE
@@ -477,16 +532,17 @@ class ParametricNLP:
         if cert.verdict != "smooth":
             return Sensitivity(False, f"certificate is {cert.verdict}: {cert.reason}")
         pt = self._point(result.x, result.p, result.lam_g, result.lam_x)
-        L_px, G_p, L_pp = (np.asarray(a) for a in self._cross(result.x, result.p, result.lam_g))
+        L_px, G_p, L_pp = self._cross(result.x, result.p, result.lam_g)
         rows, _ = active_rows(cert, self.n_g)
-        return solve_sensitivity(
-            pt.H,
-            pt.J,
-            rows,
-            L_px.reshape(self.n_p, self.n_x),
-            G_p.reshape(self.n_g, self.n_p),
-            L_pp.reshape(self.n_p, self.n_p),
-        )
+        with _one_blas_thread():
+            return solve_sensitivity(
+                pt.H,
+                pt.J,
+                rows,
+                L_px.reshape(self.n_p, self.n_x),
+                G_p.reshape(self.n_g, self.n_p),
+                L_pp.reshape(self.n_p, self.n_p),
+            )
 
     def __repr__(self) -> str:
         return f"ParametricNLP(name={self.name!r}, n_x={self.n_x}, n_p={self.n_p}, n_g={self.n_g})"

@@ -1,0 +1,100 @@
+"""Cost of certification: our solve (polish + certificate + gradient) and sensitivities vs a bare IPOPT solve.
+
+Run:  python benchmarks/bench_core.py [--stages 60] [--repeats 15]
+
+The NLP is vehicle-like: a space-discretised longitudinal model with states time t and kinetic energy per
+unit mass e = v^2/2 at every node, a force control per stage, rolling resistance and drag, a speed limit,
+and a slot on one zone whose entry and exit times are the parameters (equality rows in g). Each repeat
+solves at a slightly different slot, cold, so the bare solve and ours do the same IPOPT work. Targets:
+certificate + gradient add at most 25 % to a solve; the sensitivity step costs at most half a solve.
+"""
+
+from __future__ import annotations
+
+import argparse
+import statistics
+import time
+
+import casadi as ca
+import numpy as np
+
+from negotiate import ParametricNLP
+
+
+def vehicle_like(stages: int) -> tuple[dict, dict, np.ndarray, np.ndarray]:
+    """Build the benchmark NLP; return (nlp, bounds, x0, p0)."""
+    length, mass, crr, cda, rho, grav = 600.0, 20e3, 0.008, 6.0, 1.2, 9.81
+    ds = length / stages
+    t = ca.SX.sym("t", stages + 1)
+    e = ca.SX.sym("e", stages + 1)  # kinetic energy per unit mass, m^2/s^2
+    u = ca.SX.sym("u", stages)  # traction acceleration (force per unit mass), m/s^2
+    p = ca.SX.sym("p", 2)  # zone entry and exit time, s
+    x = ca.vertcat(t, e, u)
+    g, lbg, ubg = [], [], []
+    energy, comfort = 0, 0
+    for k in range(stages):
+        v0, v1 = ca.sqrt(2 * e[k]), ca.sqrt(2 * e[k + 1])
+        resist = crr * grav + rho * cda * (e[k] + e[k + 1]) / 2 / mass  # m/s^2
+        g += [e[k + 1] - e[k] - ds * (u[k] - resist), t[k + 1] - t[k] - 2 * ds / (v0 + v1)]
+        lbg += [0, 0]
+        ubg += [0, 0]
+        work = mass * u[k] * ds / 1e3  # traction work of the stage, kJ
+        energy += 0.5 * (work + ca.sqrt(work**2 + 100.0))  # smooth positive part (10 kJ scale), kJ
+        if k:
+            comfort += (u[k] - u[k - 1]) ** 2
+    enter, leave = stages // 3, 2 * stages // 3
+    g += [t[enter] - p[0], t[leave] - p[1]]
+    lbg += [0, 0]
+    ubg += [0, 0]
+    f = energy / 100 + 10 * comfort + (t[-1] - 60.0) ** 2
+    lbx = np.concatenate([[0.0], np.zeros(stages), [50.0], np.full(stages, 2.0), np.full(stages, -3.0)])
+    ubx = np.concatenate([[0.0], np.full(stages, 200.0), [50.0], np.full(stages, 200.0), np.full(stages, 2.0)])
+    x0 = np.concatenate([np.linspace(0, 60, stages + 1), np.full(stages + 1, 50.0), np.zeros(stages)])
+    bounds = {"lbx": lbx, "ubx": ubx, "lbg": np.array(lbg, float), "ubg": np.array(ubg, float)}
+    return {"x": x, "p": p, "f": f, "g": ca.vertcat(*g)}, bounds, x0, np.array([20.0, 40.0])
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--stages", type=int, default=60)
+    ap.add_argument("--repeats", type=int, default=15)
+    args = ap.parse_args()
+
+    nlp, bounds, x0, p0 = vehicle_like(args.stages)
+    prob = ParametricNLP(nlp, **bounds, x0=x0)
+    bare = ca.nlpsol("bare", "ipopt", nlp, {"ipopt.print_level": 0, "ipopt.sb": "yes", "print_time": False})
+    rng = np.random.default_rng(0)
+    shifts = rng.uniform(-2.0, 2.0, size=(args.repeats, 2))
+
+    t_bare, t_ours, t_cert, t_sens, verdicts = [], [], [], [], []
+    for d in shifts:
+        p = p0 + d
+        t0 = time.perf_counter()
+        bare(x0=x0, p=p, **bounds)
+        t_bare.append(time.perf_counter() - t0)
+        t0 = time.perf_counter()
+        res = prob.solve(p)
+        t_ours.append(time.perf_counter() - t0)
+        t_cert.append(res.certify_time)
+        verdicts.append(res.certificate.verdict if res.certificate else str(res.status))
+        t0 = time.perf_counter()
+        sens = res.sensitivity()
+        t_sens.append(time.perf_counter() - t0)
+        assert sens.available, sens.reason
+
+    med = statistics.median
+    print(f"vehicle-like NLP: {args.stages} stages, n_x={prob.n_x}, n_g={prob.n_g}, n_p={prob.n_p}")
+    print(f"verdicts: {sorted(set(verdicts))}; repeats: {args.repeats}")
+    print(f"{'measure':<44}{'median ms':>12}")
+    print(f"{'bare IPOPT solve (nlpsol call)':<44}{1e3 * med(t_bare):>12.2f}")
+    print(f"{'our solve (IPOPT + polish + certificate)':<44}{1e3 * med(t_ours):>12.2f}")
+    print(f"{'  of which polish + certificate + gradient':<44}{1e3 * med(t_cert):>12.2f}")
+    print(f"{'sensitivity step (dx/dp, value Hessian)':<44}{1e3 * med(t_sens):>12.2f}")
+    over = med(t_ours) / med(t_bare) - 1.0
+    sens_ratio = med(t_sens) / med(t_bare)
+    print(f"overhead of certificate + gradient: {100 * over:+.1f} % of a bare solve (target <= +25 %)")
+    print(f"sensitivity step: {sens_ratio:.2f} of a bare solve (target <= 0.50)")
+
+
+if __name__ == "__main__":
+    main()
