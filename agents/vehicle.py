@@ -196,23 +196,36 @@ class VehicleModel:
         return solve_aux("free", self._cache, self.x, self.cost, self.g_base, self.lbx, self.ubx,
                          self.lbg_base, self.ubg_base, self.x0)
 
-    def solve_extreme(self, objective: ca.SX, key: str) -> Any:
-        """Minimise ``objective(x)`` (a time in s, say) under the vehicle's constraints, with a small
-        regulariser on the force so the solution is unique."""
-        reg = 1e-4 * ca.sumsqr(self.x[self.n_stages:])
-        return solve_aux(key, self._cache, self.x, objective + reg, self.g_base, self.lbx, self.ubx,
-                         self.lbg_base, self.ubg_base, self.x0)
+    def solve_linear(self, weights: np.ndarray) -> Any:
+        """Minimise ``weights . (zone times)`` (s) under the vehicle's constraints, without coupling.
+
+        One solver serves every direction (the weights are its parameter); a small regulariser on the force
+        makes the solution unique.
+        """
+        if "linear" not in self._cache:
+            d = ca.SX.sym("d", self.zone_times_expr.numel())
+            obj = ca.dot(d, self.zone_times_expr) + 1e-4 * ca.sumsqr(self.x[self.n_stages:])
+            self._cache["linear"] = (d, obj)
+        d, obj = self._cache["linear"]
+        return solve_aux("linear_solver", self._cache, self.x, obj, self.g_base, self.lbx, self.ubx,
+                         self.lbg_base, self.ubg_base, self.x0, p=d, p_val=np.asarray(weights, dtype=float))
 
     def fastest_arrival(self) -> float:
         """Earliest possible arrival time at the route end, in s (auxiliary solve)."""
-        res = self.solve_extreme(self.arrival, "fastest")
+        obj = self.arrival + 1e-4 * ca.sumsqr(self.x[self.n_stages:])
+        res = solve_aux("fastest", self._cache, self.x, obj, self.g_base, self.lbx, self.ubx, self.lbg_base,
+                        self.ubg_base, self.x0)
         if not res.success:
             raise RuntimeError(f"vehicle: fastest-traversal solve failed ({res.status})")
         return float(self.times(res.x)[-1])
 
     # ----------------------------------------------------------------------------------------------------
-    def reachable(self, center: np.ndarray, spec: NLPSpec) -> tuple[np.ndarray, np.ndarray]:
-        """Rows ``A p <= b`` of a verified inner approximation of the reachable zone times (see module doc)."""
+    def reachable(self, center: np.ndarray, spec: NLPSpec,
+                  x_start: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """Rows ``A p <= b`` of a verified inner approximation of the reachable zone times (see module doc).
+
+        ``center`` are the preferred zone times (s), ``x_start`` an initial guess for the vertex solves.
+        """
         Z = len(self.zone_nodes)
         n_p = 2 * Z
         rows: list[np.ndarray] = []
@@ -220,10 +233,10 @@ class VehicleModel:
         angles = 2 * np.pi * (np.arange(_DIRECTIONS) + 0.5) / _DIRECTIONS
         for k in range(Z):
             pts = []
-            for j, th in enumerate(angles):
-                d = np.array([np.cos(th), np.sin(th)])
-                obj = d[0] * self.zone_times_expr[2 * k] + d[1] * self.zone_times_expr[2 * k + 1]
-                res = self.solve_extreme(obj, f"support_{k}_{j}")
+            for th in angles:
+                d = np.zeros(n_p)
+                d[2 * k: 2 * k + 2] = np.cos(th), np.sin(th)
+                res = self.solve_linear(d)
                 if res.success:
                     zt = np.asarray(self.zone_times(res.x)).ravel()
                     pts.append(zt[2 * k: 2 * k + 2])
@@ -236,11 +249,10 @@ class VehicleModel:
                 rows.append(full)
                 rhs.append(bi)
         for k in range(Z - 1):
-            gap = self.zone_times_expr[2 * k + 2] - self.zone_times_expr[2 * k + 1]
             full = np.zeros(n_p)
-            full[2 * k + 2], full[2 * k + 1] = 1.0, -1.0
-            for sign, key in ((1.0, "min"), (-1.0, "max")):
-                res = self.solve_extreme(sign * gap, f"gap_{k}_{key}")
+            full[2 * k + 2], full[2 * k + 1] = 1.0, -1.0  # gap enter_{k+1} - leave_k
+            for sign in (1.0, -1.0):
+                res = self.solve_linear(sign * full)
                 if not res.success:
                     raise RuntimeError(f"vehicle: gap solve between zones {k} and {k + 1} failed")
                 zt = np.asarray(self.zone_times(res.x)).ravel()
@@ -257,7 +269,7 @@ class VehicleModel:
         for _ in range(6):
             bs = shrink_rows(A, b, anchor, factor)
             verts = polytope_vertices(A, bs, chebyshev_center(A, bs)[0])
-            if all(spec.solve_plain(v).success for v in verts):
+            if all(spec.solve_plain(v, x_start).success for v in verts):
                 return A, bs
             factor *= 0.7
         raise RuntimeError("vehicle: could not verify a reachable polytope for the zone times")
