@@ -336,6 +336,32 @@ class UpperBoundActive(RefProblem):
         return {"x": x, "p": p, "f": (x - p) ** 2, "g": ca.SX(0, 1)}
 
 
+class FixedVariable(RefProblem):
+    """``min (x1 - p)^2 + (x2 - 1)^2 + p x1 x2`` with x2 fixed at 0 by ``lbx = ubx``: an equality bound row.
+
+    By hand: x* = (p, 0), V = 1, lam_x2 = 2 - p x1 = 2 - p^2 (from 2 (x2 - 1) + p x1 + lam_x2 = 0); at
+    p = 1/2: lam_x = (0, 7/4), dV/dp = 0, dx/dp = (1, 0), dlam_x/dp = (0, -2p) = (0, -1), d2V/dp2 = 0.
+    """
+
+    source = "derived by hand, common practice"
+    p0 = (0.5,)
+    x0 = (0.0, 0.0)
+    lbx = (-INF, 0.0)
+    ubx = (INF, 0.0)
+    x_star = (0.5, 0.0)
+    f_star = 1.0
+    lam_x_star = (0.0, 1.75)
+    gradient_star = (0.0,)
+    dx_dp_star = ((1.0,), (0.0,))
+    dlam_x_dp_star = ((0.0,), (-1.0,))
+    hessian_star = ((0.0,),)
+
+    def symbols(self) -> dict[str, Any]:
+        x, p = ca.SX.sym("x", 2), ca.SX.sym("p")
+        f = (x[0] - p) ** 2 + (x[1] - 1) ** 2 + p * x[0] * x[1]
+        return {"x": x, "p": p, "f": f, "g": ca.SX(0, 1)}
+
+
 class ParametricLP:
     """A small LP ``min c^T x`` s.t. ``A_ub x <= b_ub(p)``, ``A_eq x = b_eq(p)``, ``x >= 0``, b affine in p.
 
@@ -433,6 +459,8 @@ CASADI_REFERENCE: list[tuple[str, str]] = [
     ("ExpHalfPlane", "sqpmethod"),
     ("BoxInterior", "sqpmethod"),
     ("UpperBoundActive", "sqpmethod"),
+    ("FixedVariable", "sqpmethod"),
+    ("FixedVariable", "ipopt"),
 ]
 PLUGIN_OPTIONS: dict[str, dict[str, Any]] = {"sqpmethod": SQP_QUIET, "ipopt": IPOPT_QUIET}
 
@@ -446,6 +474,7 @@ REFERENCE_PROBLEMS: tuple[RefProblem, ...] = (
     ExpHalfPlane(),
     BoxInterior(),
     UpperBoundActive(),
+    FixedVariable(),
 )
 """All nonlinear reference problems, one instance each (their ``nlp`` is built once and shared)."""
 

@@ -39,10 +39,10 @@ WITH_MULTIPLIERS = [prob for prob in PROBLEMS if prob.lam_g_star is not None or 
 CASADI_REFERENCE = ref.CASADI_REFERENCE
 PLUGIN_OPTIONS = ref.PLUGIN_OPTIONS
 
-# The reference solver stops at its own tolerance: sqpmethod's default tol_du / tol_pr of 1e-6 on the
-# step, but its final step is a full Newton step, so its x and multipliers are accurate to about 1e-10
-# (measured 6e-11 on HS071); IPOPT's default tol = 1e-8 leaves its x and multipliers about 1e-8 from
-# the exact KKT point (measured 9.5e-9). 1e-7 covers both with a decade of margin.
+# The reference solver stops at its own tolerance: sqpmethod stops at tol_pr = tol_du = 1e-6 (defaults) but
+# converges quadratically with the exact Hessian, so the iterate it stops at is far more accurate (measured
+# 6e-11 on HS071); IPOPT's default tol = 1e-8 leaves its x and multipliers about 1e-8 from the exact KKT
+# point (measured 9.5e-9). 1e-7 covers both with a decade of margin.
 CASADI_ATOL = 1e-7
 
 
@@ -52,6 +52,24 @@ def _casadi(name: str, plugin: str) -> tuple[ref.RefProblem, list[np.ndarray]]:
     assert stats["success"], f"reference solver {plugin} failed on {name}: {stats['return_status']}"
     outs = prob.casadi_derivatives(plugin, PLUGIN_OPTIONS[plugin])(list(prob.p0))
     return prob, [np.asarray(o, dtype=float) for o in outs]
+
+
+def _random_qp(seed: int) -> tuple[ParametricNLP, np.ndarray]:
+    """A strictly convex QP with parametric linear term and parametric right-hand sides, feasible at p0."""
+    rng = np.random.default_rng(seed)
+    n, m, k = 3, 3, 2
+    M = rng.normal(size=(n, n))
+    Q = M @ M.T + 0.5 * np.eye(n)  # eigenvalues >= 0.5: strictly convex, unique minimiser
+    c = 3.0 * rng.normal(size=n)  # large enough that some rows are usually active
+    C = rng.normal(size=(n, k))
+    A = rng.normal(size=(m, n))
+    B = rng.normal(size=(m, k))
+    p0 = rng.uniform(-1.0, 1.0, size=k)
+    b = rng.uniform(0.1, 1.0, size=m) - B @ p0  # x = 0 strictly feasible at p0
+    x, p = ca.SX.sym("x", n), ca.SX.sym("p", k)
+    f = 0.5 * ca.bilin(ca.DM(Q), x, x) + ca.dot(ca.DM(c) + ca.mtimes(ca.DM(C), p), x)
+    g = ca.mtimes(ca.DM(A), x) - ca.mtimes(ca.DM(B), p) - ca.DM(b)
+    return ParametricNLP({"x": x, "p": p, "f": f, "g": g}, ubg=0.0, name=f"qp{seed}"), p0
 
 
 class TestSolve:
@@ -150,6 +168,15 @@ class TestSolve:
         # IPOPT stops within its tol = 1e-8 of the KKT point; negotiate's gradient is the polished one.
         np.testing.assert_allclose(out["lam_p"].ravel(), -res.gradient, rtol=0, atol=CASADI_ATOL)
 
+    def test_objective_scaling_scales_gradient(self) -> None:
+        """Scaling the objective of HalfPlaneNorm by 1e-7 scales V and its gradient by 1e-7 (by hand)."""
+        x, p = ca.SX.sym("x", 2), ca.SX.sym("p")
+        prob = ParametricNLP({"x": x, "p": p, "f": 1e-7 * ca.sumsqr(x), "g": x[0] + x[1] - p}, lbg=0.0)
+        res = ref.solved(prob, [1.0])
+        # V = 1e-7 p^2 / 2 and lam = -1e-7 p exactly after the polish; 1e-17 is round-off of 1e-7-sized numbers.
+        np.testing.assert_allclose(res.gradient, [1e-7], rtol=1e-9, atol=1e-17)
+        np.testing.assert_allclose(res.lam_g, [-1e-7], rtol=1e-9, atol=1e-17)
+
     def test_ipopt_lam_x_positive_at_active_upper_bound(self) -> None:
         """Pin of CasADi 3.8.2 + IPOPT: lam_x > 0 at an active upper bound (UpperBoundActive, lam_x = 2 by hand)."""
         prob = ref.UpperBoundActive()
@@ -173,28 +200,6 @@ class TestSolve:
         np.testing.assert_allclose(res.lam_x[index], lam_ipopt, rtol=0, atol=CASADI_ATOL)
         np.testing.assert_allclose(res.lam_x[index], prob.lam_x_star[index], rtol=0, atol=5e-7)
 
-
-def _random_qp(seed: int) -> tuple[ParametricNLP, np.ndarray]:
-    """A strictly convex QP with parametric linear term and parametric right-hand sides, feasible at p0."""
-    rng = np.random.default_rng(seed)
-    n, m, k = 3, 3, 2
-    M = rng.normal(size=(n, n))
-    Q = M @ M.T + 0.5 * np.eye(n)  # eigenvalues >= 0.5: strictly convex, unique minimiser
-    c = 3.0 * rng.normal(size=n)  # large enough that some rows are usually active
-    C = rng.normal(size=(n, k))
-    A = rng.normal(size=(m, n))
-    B = rng.normal(size=(m, k))
-    p0 = rng.uniform(-1.0, 1.0, size=k)
-    b = rng.uniform(0.1, 1.0, size=m) - B @ p0  # x = 0 strictly feasible at p0
-    x, p = ca.SX.sym("x", n), ca.SX.sym("p", k)
-    f = 0.5 * ca.bilin(ca.DM(Q), x, x) + ca.dot(ca.DM(c) + ca.mtimes(ca.DM(C), p), x)
-    g = ca.mtimes(ca.DM(A), x) - ca.mtimes(ca.DM(B), p) - ca.DM(b)
-    return ParametricNLP({"x": x, "p": p, "f": f, "g": g}, ubg=0.0, name=f"qp{seed}"), p0
-
-
-class TestSolveRandomQP:
-    """``ParametricNLP.solve`` on random strictly convex parametric QPs (property test)."""
-
     @settings(
         max_examples=25,
         deadline=None,
@@ -203,8 +208,8 @@ class TestSolveRandomQP:
         suppress_health_check=[HealthCheck.filter_too_much],
     )
     @given(seed=st.integers(min_value=0, max_value=2**32 - 1))
-    def test_gradient_matches_central_difference(self, seed: int) -> None:
-        """Wherever the certificate is smooth, the value gradient equals a central difference of V."""
+    def test_random_qp_gradient_matches_central_difference(self, seed: int) -> None:
+        """On random strictly convex parametric QPs with a smooth verdict, the gradient equals a central FD of V."""
         prob, p0 = _random_qp(seed)
         res = prob.solve(p0)
         assume(res.success and res.certificate.verdict == "smooth")
