@@ -13,9 +13,11 @@ Every constraint side is one *row*: the ``m`` rows of ``g`` first, then the ``n`
 A row is
 
 * an **equality** when its two bounds coincide (always active);
-* **active** when its relative slack ``slack / max(1, |bound|)`` is at most ``Tolerances.active``;
-* **strictly active** when also its relative multiplier ``|lam| * ||grad c|| / max(1, ||grad f||)`` exceeds
-  ``Tolerances.multiplier`` with the sign of its side;
+* **active** when its relative slack ``slack / max(1, |bound|)`` is at most ``Tolerances.active``
+  (``Tolerances.active_polished`` at a polished point);
+* **strictly active** when also its relative multiplier ``|lam| * ||grad c|| / scale`` exceeds
+  ``Tolerances.multiplier`` with the sign of its side, ``scale`` being the multipliers' own scale (the
+  largest of ``||grad f||``, ``max_i |lam_i| ||grad c_i||`` and ``1e-8 max|H|``);
 * **weakly active** when it is active but not strictly active (zero multiplier, or one of the wrong sign
   too small to count): the solution map has a kink there and ``V`` may have one.
 
@@ -51,9 +53,13 @@ class Tolerances:
     Attributes
     ----------
     active : float
-        A row is active when ``slack / max(1, |bound|) <= active``.
+        A row is active when ``slack / max(1, |bound|) <= active`` at a point the polish did not sharpen.
+    active_polished : float
+        The same threshold at a polished point, where active slacks are at round-off level (so that a
+        bound of 1e6 with a slack of 0.5 is not mistaken for active).
     multiplier : float
-        An active row is strictly active when ``|lam| * ||grad c|| / max(1, ||grad f||_inf) > multiplier``.
+        An active row is strictly active when ``|lam| * ||grad c|| / scale > multiplier`` (``scale``: the
+        largest of ``||grad f||_inf``, ``max_i |lam_i| ||grad c_i||`` and ``1e-8 max|H|``).
     licq : float
         LICQ holds when the smallest singular value of the active Jacobian, rows scaled to unit length,
         exceeds ``licq``.
@@ -70,6 +76,7 @@ class Tolerances:
     """
 
     active: float = 1e-6
+    active_polished: float = 1e-10
     multiplier: float = 1e-6
     licq: float = 1e-8
     sosc_floor: float = 1e-10
@@ -235,12 +242,21 @@ class _Classes:
     wrong_sign: np.ndarray  # relative size of a wrong-signed multiplier
 
 
-def _classify(pt: Point, bnd: Bounds, tol: Tolerances) -> _Classes:
+def _classify(pt: Point, bnd: Bounds, tol: Tolerances, polished: bool = False) -> _Classes:
     c, lam = pt.values, pt.lam
     lo, up = bnd.lo, bnd.up
     rownorm = np.concatenate([np.linalg.norm(pt.J, axis=1), np.ones(pt.x.size)])
-    gscale = max(1.0, float(np.max(np.abs(pt.grad_f), initial=0.0)))
-    mult = np.abs(lam) * rownorm / gscale
+    weighted = np.abs(lam) * rownorm
+    # The multipliers' own scale: the cost gradient and the largest multiplier term (they balance at a KKT
+    # point), with a floor at the curvature level so that round-off multipliers of a problem whose gradient
+    # vanishes stay "zero". No absolute 1: a cost scaled by 1e-7 keeps its strict activity.
+    gscale = max(
+        float(np.max(np.abs(pt.grad_f), initial=0.0)),
+        float(np.max(weighted, initial=0.0)),
+        1e-8 * float(np.max(np.abs(pt.H), initial=0.0)),
+        1e-300,
+    )
+    mult = weighted / gscale
     has_lo, has_up = np.isfinite(lo), np.isfinite(up)
     with np.errstate(invalid="ignore"):
         s_lo = np.where(has_lo, (c - lo) / np.maximum(1.0, np.abs(np.where(has_lo, lo, 0.0))), np.inf)
@@ -252,7 +268,7 @@ def _classify(pt: Point, bnd: Bounds, tol: Tolerances) -> _Classes:
     side = np.where(use_up, 1, np.where(has_lo, -1, 0))
     side = np.where(equal, 2, side)
     slack = np.where(side == 1, s_up, np.where(side == -1, s_lo, np.where(equal, 0.0, np.inf)))
-    active = (side != 0) & (np.maximum(slack, 0.0) <= tol.active)
+    active = (side != 0) & (np.maximum(slack, 0.0) <= (tol.active_polished if polished else tol.active))
     right_sign = np.where(side == 1, lam >= 0, np.where(side == -1, lam <= 0, True))
     strict = equal | (active & right_sign & (mult > tol.multiplier))
     weak = active & ~strict
@@ -388,7 +404,7 @@ def certify(
     see whether dV/dp changes along the flat directions).
     """
     n = pt.x.size
-    cl = _classify(pt, bnd, tol)
+    cl = _classify(pt, bnd, tol, polished)
     stat, feas, comp, sign = _residuals(pt, bnd, cl)
     C_all = pt.rows()
     side_name = {1: "upper", -1: "lower", 2: "equal"}

@@ -237,6 +237,11 @@ class ParametricNLP:
     name : str
         Name of the problem (solver and function names).
 
+    Notes
+    -----
+    An instance is not thread-safe (neither is the CasADi solver inside it): give each thread or worker
+    process its own instance.
+
     Examples
     --------
     >>> import casadi as ca

@@ -6,12 +6,12 @@ always kept beside the mapped status (``LocalResult.message``) so nothing is los
 
 from __future__ import annotations
 
-from enum import Enum
+from enum import StrEnum
 
 __all__ = ["IPOPT_STATUS", "SOLUTION_PRESENT", "Status", "from_ipopt"]
 
 
-class Status(str, Enum):
+class Status(StrEnum):
     """Outcome of one agent solve."""
 
     CONVERGED = "converged"

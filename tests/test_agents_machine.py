@@ -19,8 +19,9 @@ def press():
 @pytest.fixture(scope="module")
 def flat():
     """A machine with a flat tariff and one station, no holding cost: a case with a closed-form value."""
-    prm = MachineParams(peak_price=1.0, stations=(StationParams("furnace", duration=1800.0, transfer=120.0,
-                                                                holding_cost=0.0),))
+    prm = MachineParams(
+        peak_price=1.0, stations=(StationParams("furnace", duration=1800.0, transfer=120.0, holding_cost=0.0),)
+    )
     return prm, build_machine("flat", prm)
 
 

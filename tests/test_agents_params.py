@@ -38,8 +38,11 @@ class TestRecords:
 
     def test_keyword_construction(self):
         """A record is built from plain keyword data, nested zones included (as a fleet file would)."""
-        table = {"route_length": 1500.0, "mass": 12000.0, "zones": [{"resource": "gate", "entry": 400.0,
-                                                                       "exit": 420.0}]}
+        table = {
+            "route_length": 1500.0,
+            "mass": 12000.0,
+            "zones": [{"resource": "gate", "entry": 400.0, "exit": 420.0}],
+        }
         prm = VehicleParams(**{**table, "zones": tuple(ZoneParams(**z) for z in table["zones"])})
         assert prm.zones[0].resource == "gate" and prm.total_mass == 12000.0
 

@@ -20,8 +20,9 @@ def truck():
 @pytest.fixture(scope="module")
 def two_zone_truck():
     """A vehicle crossing a speed-limited bridge and then a tunnel (invented numbers)."""
-    prm = VehicleParams(zones=(ZoneParams("bridge", 500.0, 600.0, speed_limit=12.0),
-                               ZoneParams("tunnel", 1200.0, 1400.0)))
+    prm = VehicleParams(
+        zones=(ZoneParams("bridge", 500.0, 600.0, speed_limit=12.0), ZoneParams("tunnel", 1200.0, 1400.0))
+    )
     return build_vehicle("truck2", prm)
 
 
@@ -40,9 +41,18 @@ class TestGrid:
 class TestPhysics:
     def test_fastest_traversal_closed_form(self):
         """Fastest trip without resistance = accelerate at a_max to v_max, then cruise (kinematics)."""
-        prm = VehicleParams(route_length=600.0, zones=(ZoneParams("z", 300.0, 400.0),), rolling_coeff=0.0,
-                            drag_area=0.0, initial_speed=2.0, speed_limit=15.0, max_accel=1.0,
-                            desired_arrival=60.0, latest_arrival=200.0, stages=40)
+        prm = VehicleParams(
+            route_length=600.0,
+            zones=(ZoneParams("z", 300.0, 400.0),),
+            rolling_coeff=0.0,
+            drag_area=0.0,
+            initial_speed=2.0,
+            speed_limit=15.0,
+            max_accel=1.0,
+            desired_arrival=60.0,
+            latest_arrival=200.0,
+            stages=40,
+        )
         model = VehicleModel(prm)
         v0, vmax, a = prm.initial_speed, prm.speed_limit, prm.max_accel
         # Constant-acceleration kinematics (any mechanics textbook): t = (v1 - v0)/a, s = (v1^2 - v0^2)/(2a).
@@ -61,8 +71,9 @@ class TestPhysics:
     def test_resistance_forces_hand_values(self):
         """Steady-speed drive force = C_rr m g + rho C_dA v^2 / 2 (rolling and aerodynamic resistance)."""
         # Typical truck tyre on paved road C_rr ~ 0.006-0.01 (recalled from vehicle handbooks); we use 0.007.
-        prm = VehicleParams(rolling_coeff=0.007, mass=18000.0, payload=2000.0, drag_area=6.0, air_density=1.2,
-                            initial_speed=10.0)
+        prm = VehicleParams(
+            rolling_coeff=0.007, mass=18000.0, payload=2000.0, drag_area=6.0, air_density=1.2, initial_speed=10.0
+        )
         model = VehicleModel(prm)
         m, v = prm.total_mass, 10.0
         # Hand values: C_rr m g with g = 9.81 m/s^2 (handbook value), drag 0.5 rho C_dA v^2.
@@ -188,8 +199,11 @@ class TestTrajectory:
 class TestParams:
     def test_bad_zone_message(self):
         """A zone beyond the route is rejected with the field, expected range and value."""
-        with pytest.raises(ValueError, match=r"zone 'bridge': 'exit' must be <= route_length - length = 988.0, "
-                                             r"got 1500.0"):
+        with pytest.raises(
+            ValueError,
+            match=r"zone 'bridge': 'exit' must be <= route_length - length = 988.0, "
+            r"got 1500.0",
+        ):
             VehicleParams(route_length=1000.0, zones=(ZoneParams("bridge", 900.0, 1500.0),))
 
     def test_min_speed_positive(self):

@@ -177,3 +177,19 @@ def test_gradient_of_duplicated_rows_example(pv):
     res = solve({"x": x, "p": p, "f": (x[0] - 2) ** 2 + (x[1] - 2) ** 2, "g": ca.vertcat(row, row)}, [pv], ubg=0)
     np.testing.assert_allclose(res.value, (pv - 4) ** 2 / 2, rtol=1e-9)
     np.testing.assert_allclose(res.gradient, [pv - 4], atol=1e-7)  # 1e-7: IPOPT's split, then polished
+
+
+class TestScaleAwareness:
+    def test_small_objective_keeps_strict_activity(self):
+        """Scaling the cost by 1e-7 scales the multipliers too; strict complementarity is unchanged."""
+        # min 1e-7 (x1^2 + x2^2) s.t. x1 + x2 >= p: lam = -1e-7 p (by hand), strictly active for p > 0.
+        x, p = ca.SX.sym("x", 2), ca.SX.sym("p")
+        res = solve({"x": x, "p": p, "f": 1e-7 * ca.sumsqr(x), "g": x[0] + x[1] - p}, [1.0], lbg=0)
+        assert res.certificate.verdict == "smooth", res.certificate.summary()
+
+    def test_large_bound_with_clear_slack_is_inactive(self):
+        """A bound at 1e6 with a slack of 0.5 is inactive once the point is polished."""
+        x, p = ca.SX.sym("x"), ca.SX.sym("p")
+        res = solve({"x": x, "p": p, "f": (x - 1e6 + 0.5 - p) ** 2}, [0.0], ubx=1e6)
+        assert res.certificate.polished and not res.certificate.active
+        assert res.certificate.verdict == "smooth"

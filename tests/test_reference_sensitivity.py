@@ -144,14 +144,6 @@ class TestSensitivity:
         _res, sens = _sensitivity(hs)
         np.testing.assert_allclose(sens.value_hessian, expected, rtol=0, atol=CASADI_ATOL)
 
-    @pytest.mark.xfail(
-        reason=(
-            "strict-activity threshold |lam| ||grad c|| / max(1, ||grad f||) > 1e-6 is absolute for small "
-            "objectives: lam = -1e-7 is called 'weakly active (zero multiplier)', verdict "
-            "value-differentiable, so sensitivities are refused although x*(p) = (p/2, p/2) is smooth"
-        ),
-        strict=True,
-    )
     def test_objective_scaling_keeps_sensitivities(self) -> None:
         """Scaling the objective of HalfPlaneNorm by 1e-7 leaves dx/dp = (1/2, 1/2) and scales d2V/dp2 to 1e-7."""
         x, p = ca.SX.sym("x", 2), ca.SX.sym("p")

@@ -1,0 +1,245 @@
+"""Coupling rules of the shared resources: the polyhedral feasible set of all agents' parameters.
+
+The upper-level variables are all agents' shared parameters stacked into one vector ``P`` (agent by agent,
+in the order of the fleet, each agent's parameters in its own order). For fixed orders on the exclusive
+resources the feasible set is the polyhedron ::
+
+    lower <= P <= upper,   A P <= b
+
+made of
+
+* every agent's reachable set (its box and its own rows ``A_i p_i <= b_i``, which include the sequence of
+  its slots along its route), plus ``enter <= leave`` for each of its slots;
+* every exclusive resource, for its order ``a_1, a_2, ...``: ``leave(a_k) + gap <= enter(a_{k+1})``;
+* every capacity resource, in each time block ``j``: ``sum_i share_ij <= limit_j`` (shares are >= 0
+  through the agents' boxes).
+
+Orders are checked for deadlocks first: the precedence graph (networkx) has a node per (agent, resource)
+slot, an edge from each slot to the agent's next slot along its route, and an edge from each user of an
+exclusive resource to the next; a cycle means no schedule exists and raises :class:`DeadlockError`
+naming the agents and resources on it. Projection onto the polyhedron is a small convex QP solved by
+CasADi's active-set ``qrqp``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+import casadi as ca
+import networkx as nx
+import numpy as np
+
+from negotiate.agent import AgentModel
+from negotiate.spec import CapacityResource, ExclusiveResource, Resource
+
+__all__ = ["DeadlockError", "FeasibleSet", "Layout", "build_feasible_set", "fcfs_orders", "precedence_graph"]
+
+
+class DeadlockError(ValueError):
+    """A set of orders on exclusive resources that no schedule can meet (a cycle of precedences)."""
+
+
+@dataclass(frozen=True)
+class Layout:
+    """Where each agent's parameters sit in the stacked vector ``P``."""
+
+    names: tuple[str, ...]
+    offsets: tuple[int, ...]
+    sizes: tuple[int, ...]
+
+    @classmethod
+    def of(cls, agents: Sequence[AgentModel]) -> Layout:
+        sizes = tuple(a.problem.n_p for a in agents)
+        offsets = tuple(int(v) for v in np.concatenate([[0], np.cumsum(sizes)[:-1]])) if sizes else ()
+        return cls(tuple(a.name for a in agents), offsets, sizes)
+
+    @property
+    def n(self) -> int:
+        return int(sum(self.sizes))
+
+    def slice(self, i: int) -> slice:
+        return slice(self.offsets[i], self.offsets[i] + self.sizes[i])
+
+    def split(self, P: np.ndarray) -> list[np.ndarray]:
+        """The per-agent pieces of a stacked vector."""
+        return [np.asarray(P[self.slice(i)], dtype=float) for i in range(len(self.names))]
+
+    def stack(self, parts: Sequence[np.ndarray]) -> np.ndarray:
+        return np.concatenate([np.asarray(q, dtype=float).ravel() for q in parts]) if parts else np.zeros(0)
+
+
+def _slot_index(agent: AgentModel, resource: str, kind: str) -> int:
+    for k, q in enumerate(agent.params):
+        if q.resource == resource and q.kind == kind:
+            return k
+    raise ValueError(f"agent {agent.name!r} has no '{kind}' parameter for resource {resource!r}")
+
+
+def _slots(agent: AgentModel) -> list[str]:
+    """Exclusive resources the agent uses, in the order its 'enter' parameters appear (its route order)."""
+    return [q.resource for q in agent.params if q.kind == "enter"]
+
+
+def fcfs_orders(agents: Sequence[AgentModel], resources: Sequence[Resource]) -> dict[str, list[str]]:
+    """First-come-first-served orders: users of each exclusive resource sorted by free-optimum entry time."""
+    orders: dict[str, list[str]] = {}
+    for r in resources:
+        if not isinstance(r, ExclusiveResource):
+            continue
+        users = [(a.free_optimum[_slot_index(a, r.name, "enter")], a.name) for a in agents if r.name in _slots(a)]
+        orders[r.name] = [name for _t, name in sorted(users)]
+    return orders
+
+
+def precedence_graph(agents: Sequence[AgentModel], orders: Mapping[str, Sequence[str]]) -> nx.DiGraph:
+    """Directed graph of slot precedences; nodes are ``(agent, resource)``."""
+    G = nx.DiGraph()
+    for a in agents:
+        seq = _slots(a)
+        G.add_nodes_from((a.name, r) for r in seq)
+        G.add_edges_from(((a.name, r0), (a.name, r1)) for r0, r1 in zip(seq, seq[1:], strict=False))
+    for r, users in orders.items():
+        G.add_edges_from(((u0, r), (u1, r)) for u0, u1 in zip(users, users[1:], strict=False))
+    return G
+
+
+def check_deadlock(agents: Sequence[AgentModel], orders: Mapping[str, Sequence[str]]) -> None:
+    """Raise :class:`DeadlockError` if the orders and the agents' routes form a cycle."""
+    G = precedence_graph(agents, orders)
+    try:
+        cycle = nx.find_cycle(G)
+    except nx.NetworkXNoCycle:
+        return
+    steps = " -> ".join(f"{a} on {r}" for (a, r), _ in cycle)
+    first = cycle[0][0]
+    raise DeadlockError(
+        f"the orders form a cycle (deadlock), no schedule can meet them: {steps} -> {first[0]} on {first[1]}"
+    )
+
+
+@dataclass
+class FeasibleSet:
+    """The polyhedron ``lower <= P <= upper, A P <= b`` of stacked parameters, with its row labels.
+
+    ``scale`` holds a positive scale per parameter (the width of its reachable box, at least 1) that the
+    coordination methods use to make times (s) and shares (W) comparable.
+    """
+
+    layout: Layout
+    lower: np.ndarray
+    upper: np.ndarray
+    A: np.ndarray
+    b: np.ndarray
+    labels: tuple[str, ...]
+    orders: dict[str, list[str]]
+
+    def __post_init__(self) -> None:
+        width = self.upper - self.lower
+        self.scale = np.where(np.isfinite(width) & (width > 1.0), width, 1.0)
+        self._qp: ca.Function | None = None
+
+    @property
+    def n(self) -> int:
+        return self.layout.n
+
+    def violation(self, P: np.ndarray) -> float:
+        """Largest violation of any bound or row, in the parameters' units."""
+        P = np.asarray(P, dtype=float)
+        v = [np.max(self.lower - P, initial=0.0), np.max(P - self.upper, initial=0.0)]
+        if self.A.shape[0]:
+            v.append(float(np.max(self.A @ P - self.b)))
+        return float(max(0.0, *v))
+
+    def contains(self, P: np.ndarray, tol: float = 1e-7) -> bool:
+        return self.violation(P) <= tol
+
+    def project(self, Y: np.ndarray) -> np.ndarray:
+        """Nearest point of the set to ``Y`` in the scaled norm ``||(P - Y) / scale||`` (a QP, ``qrqp``)."""
+        s = self.scale
+        if self._qp is None:
+            H = ca.DM.eye(self.n)
+            self._qp = ca.conic(
+                "projection",
+                "qrqp",
+                {"h": H.sparsity(), "a": ca.DM(self.A * s[None, :]).sparsity()},
+                {"print_iter": False, "print_header": False, "print_info": False, "error_on_fail": False},
+            )
+            self._As = ca.DM(self.A * s[None, :])
+        u = np.asarray(Y, dtype=float) / s
+        out = self._qp(
+            h=ca.DM.eye(self.n), g=-u, a=self._As, lba=-np.inf, uba=self.b, lbx=self.lower / s, ubx=self.upper / s
+        )
+        P = np.asarray(out["x"]).ravel() * s
+        return np.clip(P, self.lower, self.upper)
+
+
+def build_feasible_set(
+    agents: Sequence[AgentModel], resources: Sequence[Resource], orders: Mapping[str, Sequence[str]]
+) -> FeasibleSet:
+    """Assemble the polyhedron for the given orders (see the module docstring).
+
+    Raises
+    ------
+    DeadlockError
+        If the orders and routes form a cycle.
+    ValueError
+        If an order names an agent that does not use the resource, or misses one that does.
+    """
+    layout = Layout.of(agents)
+    by_name = {a.name: i for i, a in enumerate(agents)}
+    rows: list[np.ndarray] = []
+    rhs: list[float] = []
+    labels: list[str] = []
+    lower = layout.stack([a.reachable.lower for a in agents])
+    upper = layout.stack([a.reachable.upper for a in agents])
+
+    def row() -> np.ndarray:
+        return np.zeros(layout.n)
+
+    for i, a in enumerate(agents):
+        off = layout.offsets[i]
+        for k in range(a.reachable.A.shape[0]):
+            r = row()
+            r[layout.slice(i)] = a.reachable.A[k]
+            rows.append(r)
+            rhs.append(float(a.reachable.b[k]))
+            labels.append(f"{a.name}: reachable set row {k}")
+        for res in _slots(a):
+            r = row()
+            r[off + _slot_index(a, res, "enter")] = 1.0
+            r[off + _slot_index(a, res, "leave")] = -1.0
+            rows.append(r)
+            rhs.append(0.0)
+            labels.append(f"{a.name}: enter <= leave on {res}")
+
+    for res in resources:
+        if isinstance(res, ExclusiveResource):
+            users = list(orders.get(res.name, []))
+            expected = sorted(a.name for a in agents if res.name in _slots(a))
+            if sorted(users) != expected:
+                raise ValueError(f"order for resource {res.name!r} must list exactly its users {expected}, got {users}")
+            for u0, u1 in zip(users, users[1:], strict=False):
+                i0, i1 = by_name[u0], by_name[u1]
+                r = row()
+                r[layout.offsets[i0] + _slot_index(agents[i0], res.name, "leave")] = 1.0
+                r[layout.offsets[i1] + _slot_index(agents[i1], res.name, "enter")] = -1.0
+                rows.append(r)
+                rhs.append(-float(res.gap))
+                labels.append(f"{res.name}: {u0} leaves + gap <= {u1} enters")
+        elif isinstance(res, CapacityResource):
+            for j, limit in enumerate(res.limits):
+                r = row()
+                for i, a in enumerate(agents):
+                    for k, q in enumerate(a.params):
+                        if q.resource == res.name and q.kind == "share" and q.block == j:
+                            r[layout.offsets[i] + k] = 1.0
+                if r.any():
+                    rows.append(r)
+                    rhs.append(float(limit))
+                    labels.append(f"{res.name}: shares in block {j} <= limit")
+    check_deadlock(agents, orders)
+    A = np.vstack(rows) if rows else np.zeros((0, layout.n))
+    return FeasibleSet(
+        layout, lower, upper, A, np.asarray(rhs, dtype=float), tuple(labels), {k: list(v) for k, v in orders.items()}
+    )

@@ -1,0 +1,114 @@
+"""The one documented exception for user mistakes in a fleet file, and the record of a single mistake.
+
+A fleet file can hold many mistakes at once; the parser collects all of them before it gives up, so that
+one run shows everything to fix. :class:`FleetError` carries them as :class:`Problem` records (file, table
+path, key, what was expected, what was found); its text lists them one per line::
+
+    fleet.toml: [agents.truck-03] key 'mass': expected a number > 0 (kg), found -5
+
+``FleetError`` subclasses :class:`ValueError`, so callers may catch either. Numerical failures of a solve
+are not exceptions (they are a status in a result); only a fleet that cannot even be built -- an agent whose
+reachable window is empty, a builder that fails -- is reported as a ``FleetError`` naming the agent.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Iterable
+from dataclasses import dataclass
+from typing import Any
+
+__all__ = ["FleetError", "Problem", "describe", "table_path"]
+
+_BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")
+
+
+@dataclass(frozen=True)
+class Problem:
+    """One mistake in a fleet file.
+
+    Attributes
+    ----------
+    file : str
+        Where the fleet was read from (a path, or the ``source`` given to the parser).
+    table : str
+        Dotted path of the table holding the mistake, e.g. ``"agents.truck-03.zones[1]"`` (array entries
+        counted from 0); empty for the top level of the file.
+    key : str or None
+        The key in that table, or None when the mistake concerns the table as a whole (a missing table, an
+        agent that cannot be built).
+    expected : str
+        What was expected, with its unit where it has one (``"a number > 0 (kg)"``).
+    found : str
+        What was found (the value as written in TOML, ``"nothing"`` for a missing key).
+    """
+
+    file: str
+    table: str
+    key: str | None
+    expected: str
+    found: str
+
+    def __str__(self) -> str:
+        where = f"{self.file}:"
+        if self.table:
+            where += f" [{self.table}]"
+        if self.key is not None:
+            where += f" key '{self.key}'"
+        return f"{where}: expected {self.expected}, found {self.found}"
+
+
+class FleetError(ValueError):
+    """A fleet file (or fleet dictionary) with mistakes in it; ``problems`` lists every one of them.
+
+    ``str(error)`` is one line per problem, in the order they were found.
+    """
+
+    def __init__(self, problems: Iterable[Problem]) -> None:
+        self.problems: tuple[Problem, ...] = tuple(problems)
+        if not self.problems:
+            raise ValueError("FleetError needs at least one problem")
+        super().__init__("\n".join(str(p) for p in self.problems))
+
+    def __str__(self) -> str:
+        return "\n".join(str(p) for p in self.problems)
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        # Picklable (worker processes may raise it), although __init__ does not take the message.
+        return (type(self), (self.problems,))
+
+
+def table_path(*parts: str | int) -> str:
+    """Dotted table path; integers become ``[i]`` indices, names that are not bare TOML keys are quoted."""
+    out = ""
+    for part in parts:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            key = part if _BARE_KEY.match(part) else '"' + part.replace("\\", "\\\\").replace('"', '\\"') + '"'
+            out += ("." if out else "") + key
+    return out
+
+
+def describe(value: Any) -> str:
+    """A value as it would be written in a TOML file (for the ``found`` part of a :class:`Problem`)."""
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, int):
+        return str(value)
+    if isinstance(value, float):
+        if math.isnan(value):
+            return "nan"
+        if math.isinf(value):
+            return "inf" if value > 0 else "-inf"
+        return repr(value)
+    if isinstance(value, str):
+        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(value, list | tuple):
+        text = "[" + ", ".join(describe(v) for v in value) + "]"
+        return text if len(text) <= 80 else text[:76] + " ...]"
+    if isinstance(value, dict):
+        keys = ", ".join(str(k) for k in value)
+        return f"a table ({keys})" if keys else "an empty table"
+    return f"a {type(value).__name__}"
