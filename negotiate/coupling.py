@@ -26,11 +26,11 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
-import casadi as ca
 import networkx as nx
 import numpy as np
 
 from negotiate.agent import AgentModel
+from negotiate.qp import solve_qp
 from negotiate.spec import CapacityResource, ExclusiveResource, Resource
 
 __all__ = ["DeadlockError", "FeasibleSet", "Layout", "build_feasible_set", "fcfs_orders", "precedence_graph"]
@@ -137,7 +137,6 @@ class FeasibleSet:
     def __post_init__(self) -> None:
         width = self.upper - self.lower
         self.scale = np.where(np.isfinite(width) & (width > 1.0), width, 1.0)
-        self._qp: ca.Function | None = None
 
     @property
     def n(self) -> int:
@@ -155,23 +154,21 @@ class FeasibleSet:
         return self.violation(P) <= tol
 
     def project(self, Y: np.ndarray) -> np.ndarray:
-        """Nearest point of the set to ``Y`` in the scaled norm ``||(P - Y) / scale||`` (a QP, ``qrqp``)."""
+        """Nearest point of the set to ``Y`` in the scaled norm ``||(P - Y) / scale||`` (a QP)."""
         s = self.scale
-        if self._qp is None:
-            H = ca.DM.eye(self.n)
-            self._qp = ca.conic(
-                "projection",
-                "qrqp",
-                {"h": H.sparsity(), "a": ca.DM(self.A * s[None, :]).sparsity()},
-                {"print_iter": False, "print_header": False, "print_info": False, "error_on_fail": False},
-            )
-            self._As = ca.DM(self.A * s[None, :])
         u = np.asarray(Y, dtype=float) / s
-        out = self._qp(
-            h=ca.DM.eye(self.n), g=-u, a=self._As, lba=-np.inf, uba=self.b, lbx=self.lower / s, ubx=self.upper / s
+        res = solve_qp(
+            np.eye(self.n),
+            -u,
+            self.A * s[None, :],
+            np.full(self.b.size, -np.inf),
+            self.b,
+            self.lower / s,
+            self.upper / s,
         )
-        P = np.asarray(out["x"]).ravel() * s
-        return np.clip(P, self.lower, self.upper)
+        if not res.success:
+            raise RuntimeError(f"projection onto the coupling polyhedron failed ({res.message}); is it empty?")
+        return np.clip(res.z * s, self.lower, self.upper)
 
 
 def build_feasible_set(

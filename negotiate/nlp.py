@@ -23,7 +23,7 @@ import casadi as ca
 import numpy as np
 from threadpoolctl import ThreadpoolController
 
-from negotiate.kkt import Bounds, Certificate, Point, Tolerances, active_rows, certify, polish
+from negotiate.kkt import Bounds, Certificate, ConstraintRef, Point, Tolerances, active_rows, certify, polish
 from negotiate.sensitivity import Sensitivity, solve_sensitivity
 from negotiate.status import SOLUTION_PRESENT, Status, from_ipopt
 
@@ -322,6 +322,7 @@ class ParametricNLP:
         self._warm_options = {**_IPOPT_WARM, **options}
         self._problem_expr = problem
         self._expand = expand
+        self._objective: ca.Function | None = None
 
         lam = sym.sym("lam_g", self.n_g)
         L = f + ca.dot(lam, g) if self.n_g else f
@@ -336,6 +337,32 @@ class ParametricNLP:
         G_p = ca.jacobian(g, p)
         L_pp = ca.jacobian(grad_p, p)
         self._cross = _Evaluator(self._function("cross", [x, p, lam], [L_px, G_p, L_pp], mx))
+
+    @property
+    def x_symbol(self) -> Any:
+        """The CasADi decision-variable symbol ``x`` (for building larger problems, e.g. a centralized one)."""
+        return self._problem_expr["x"]
+
+    @property
+    def p_symbol(self) -> Any:
+        """The CasADi parameter symbol ``p``."""
+        return self._problem_expr["p"]
+
+    @property
+    def f_expr(self) -> Any:
+        """The cost expression ``f(x, p)``."""
+        return self._problem_expr["f"]
+
+    @property
+    def g_expr(self) -> Any:
+        """The constraint expression ``g(x, p)``."""
+        return self._problem_expr["g"]
+
+    def objective(self, x: Any, p: Any) -> float:
+        """Evaluate the cost ``f(x, p)`` at a given primal point (no solve)."""
+        if self._objective is None:
+            self._objective = ca.Function(f"{self.name}_f", [self.x_symbol, self.p_symbol], [self.f_expr])
+        return float(self._objective(np.asarray(x, dtype=float), np.asarray(p, dtype=float)))
 
     def _nlpsol(self, problem: dict[str, Any], options: dict[str, Any], expand: bool) -> Any:
         if expand:
@@ -427,7 +454,34 @@ class ParametricNLP:
             grad_p=gp,
         )
 
-    def solve(self, p: Any, warm: LocalResult | None = None) -> LocalResult:
+    def _modified_bounds(
+        self, hold: Sequence[ConstraintRef], release: Sequence[ConstraintRef]
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, Bounds]:
+        lbx, ubx, lbg, ubg = self.lbx.copy(), self.ubx.copy(), self.lbg.copy(), self.ubg.copy()
+        for ref, held in [(r, True) for r in hold] + [(r, False) for r in release]:
+            lo, up = (lbg, ubg) if ref.kind == "g" else (lbx, ubx)
+            i = ref.index
+            if ref.side == "upper":
+                if held:
+                    lo[i] = up[i]
+                else:
+                    up[i] = np.inf
+            elif ref.side == "lower":
+                if held:
+                    up[i] = lo[i]
+                else:
+                    lo[i] = -np.inf
+        bounds = Bounds(np.concatenate([lbg, lbx]), np.concatenate([ubg, ubx]), self._bounds.names, self.n_g)
+        return lbx, ubx, lbg, ubg, bounds
+
+    def solve(
+        self,
+        p: Any,
+        warm: LocalResult | None = None,
+        *,
+        hold: Sequence[ConstraintRef] = (),
+        release: Sequence[ConstraintRef] = (),
+    ) -> LocalResult:
         """Solve at parameter ``p`` and certify the result.
 
         Parameters
@@ -437,6 +491,10 @@ class ParametricNLP:
         warm : LocalResult, optional
             A previous result (usually at a nearby ``p``) whose primal point and multipliers start the
             solver (IPOPT warm start).
+        hold, release : sequence of ConstraintRef, optional
+            Constraint sides to hold active (turned into an equality at that bound) or to release (that
+            bound removed) for this solve only. Solving both ways at a weakly active constraint gives the
+            one-sided value gradients on either side of a kink.
 
         Returns
         -------
@@ -444,6 +502,10 @@ class ParametricNLP:
             ``gradient`` is ``None`` unless the status is ``converged``.
         """
         p = self._check_p(p)
+        if hold or release:
+            lbx, ubx, lbg, ubg, bounds = self._modified_bounds(hold, release)
+        else:
+            lbx, ubx, lbg, ubg, bounds = self.lbx, self.ubx, self.lbg, self.ubg, self._bounds
         if warm is not None:
             if self._warm_solver is None:
                 self._warm_solver = self._nlpsol(self._problem_expr, self._warm_options, self._expand)
@@ -453,7 +515,7 @@ class ParametricNLP:
             solver, start = self._solver, {"x0": self.x0}
         t0 = time.perf_counter()
         try:
-            out = solver(p=p, lbx=self.lbx, ubx=self.ubx, lbg=self.lbg, ubg=self.ubg, **start)
+            out = solver(p=p, lbx=lbx, ubx=ubx, lbg=lbg, ubg=ubg, **start)
             stats = solver.stats()
             raw = str(stats.get("return_status", "unknown"))
         except RuntimeError as exc:  # evaluation errors surface as exceptions in some CasADi paths
@@ -494,10 +556,10 @@ class ParametricNLP:
             return self._point(xx, p, lg, lx)
 
         with _one_blas_thread():
-            pt, accepted = polish(pt, self._bounds, evaluate, tol)
+            pt, accepted = polish(pt, bounds, evaluate, tol)
             cert = certify(
                 pt,
-                self._bounds,
+                bounds,
                 tol,
                 polished=accepted,
                 hessian_at=lambda xx: self._hess(xx, p, pt.lam_g)[0],

@@ -1,0 +1,96 @@
+"""Projected Newton (SQP-like) steps using the agents' value Hessians, where every certificate is smooth.
+
+Where every agent certifies ``smooth``, its value Hessian ``d2V_i/dp_i2`` follows from the KKT sensitivity
+system (:mod:`negotiate.sensitivity`). The upper step solves the QP ::
+
+    min_P  g . (P - P_k) + 1/2 (P - P_k)^T B (P - P_k)    s.t. P in the coupling polyhedron
+
+with ``B`` the block-diagonal matrix of the weighted Hessians, each block made positive definite by
+raising its eigenvalues to at least ``1e-6`` of its largest one (V_i need not be convex), in scaled
+coordinates. The step is then backtracked (Armijo on the true total) along the segment to the QP's
+solution, which stays feasible. Where some agent is not smooth, or is flagged by the nonsmooth guard, that
+round falls back to the projected-gradient step of :mod:`negotiate._gradient`. Stopping measure: the
+QP's predicted decrease ``-(g.d + d.B.d / 2)`` relative to ``max(1, |total|)``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from negotiate._gradient import ProjectedGradient
+from negotiate.coordinate import Evaluation, Proposal, register_method
+from negotiate.qp import solve_qp
+
+
+@register_method
+class ProjectedNewton(ProjectedGradient):
+    name = "newton"
+    wants_hessian = True
+
+    def start(self, first: Evaluation) -> None:
+        super().start(first)
+        self.newton_steps = 0
+        self.t = 1.0
+        self.newton_pending: tuple[np.ndarray, float] | None = None
+
+    def hessian(self, ev: Evaluation) -> np.ndarray | None:
+        if any(r.hessian is None or r.flagged for r in ev.reports):
+            return None
+        s, lay = self.s, self.feasible.layout
+        B = np.zeros((lay.n, lay.n))
+        for i, (w, rep) in enumerate(zip(ev.weights, ev.reports, strict=True)):
+            sl = lay.slice(i)
+            Hu = w * rep.hessian * np.outer(s[sl], s[sl])  # type: ignore[operator]
+            lam, Q = np.linalg.eigh(0.5 * (Hu + Hu.T))
+            floor = 1e-6 * max(float(np.max(np.abs(lam), initial=0.0)), 1e-300)
+            B[sl, sl] = (Q * np.maximum(lam, floor)) @ Q.T
+        return B
+
+    def newton_step(self) -> Proposal | None:
+        assert self.x is not None
+        B = self.hessian(self.x)
+        if B is None:
+            return None
+        s = self.s
+        u = self.x.P / s
+        gu = self.x.gradient * s
+        fs = self.feasible
+        res = solve_qp(B, gu - B @ u, fs.A * s[None, :], np.full(fs.b.size, -np.inf), fs.b, fs.lower / s, fs.upper / s)
+        if not res.success:
+            return None
+        d = res.z - u
+        pred = -float(gu @ d + 0.5 * d @ B @ d)
+        measure = pred / max(1.0, abs(self.x.total))
+        if self.tolerance_reached(measure):
+            return Proposal(None, measure, True, "Newton predicted decrease below tolerance")
+        self.t = 1.0
+        self.newton_pending = (d * s, float(self.x.gradient @ (d * s)))
+        self.newton_steps += 1
+        return Proposal(self.x.P + d * s, measure, False, "Newton step")
+
+    def propose(self, latest: Evaluation) -> Proposal:
+        if self.x is None:
+            return Proposal(None, float("inf"), False, "an agent failed at the starting point")
+        if self.newton_pending is not None:
+            dP, slope = self.newton_pending
+            if latest.ok and latest.total <= self.x.total + self.armijo * self.t * slope:
+                self.newton_pending = None
+                self.x = latest
+                self.incumbent = latest
+            else:
+                self.t *= 0.5
+                if self.t < 1e-6:
+                    self.newton_pending = None  # give up on Newton here, take a gradient step
+                    return self.step_from_current("Newton line search failed")
+                return Proposal(self.x.P + self.t * dP, float("nan"), False, "Newton backtracking")
+        elif self.pending is not None:
+            # a gradient-method step is outstanding: let the parent judge it first
+            before = self.x
+            prop = super().propose(latest)
+            if self.x is before or prop.converged or prop.point is None:
+                return prop
+            self.pending = None  # an accepted step: try Newton from the new point
+        step = self.newton_step()
+        if step is not None:
+            return step
+        return self.step_from_current("gradient fallback")

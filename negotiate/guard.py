@@ -1,0 +1,111 @@
+"""The nonsmooth guard: when an agent's gradient is not unique, gather its one-sided gradients.
+
+An agent's value gradient ``partial_p L`` is the unique gradient of ``V_i`` only at a regular KKT point
+without weakly active constraints. The guard flags an agent when its certificate
+
+* reports weakly active constraints (active with zero multiplier), or
+* fails LICQ (the multipliers, hence ``partial_p L``, are not unique), or
+* is nonsmooth for another reason (a flat solution set along which dV/dp changes), or
+* has a different strictly active set than at the agent's previous solve (a kink may lie in between).
+
+For a flagged agent it re-solves at the same parameters with each suspect constraint *held active* (an
+equality at its bound) and *released* (that bound removed); each converged re-solve gives a one-sided
+gradient ``partial_p L`` of one smooth piece of ``V_i``. Together with the plain gradient they span (an
+approximation of) the generalised gradient of ``V_i`` at that point; a bundle method takes each as a cut,
+a gradient method steps along the minimum-norm element of their convex hull (a subgradient).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from negotiate.kkt import ConstraintRef
+from negotiate.nlp import LocalResult, ParametricNLP
+from negotiate.qp import solve_qp
+
+__all__ = ["GuardReport", "guard", "min_norm_element"]
+
+MAX_PROBED_ROWS = 3
+"""At most this many suspect constraints are probed per agent and round (two re-solves each)."""
+
+
+@dataclass(frozen=True)
+class GuardReport:
+    """Why an agent was flagged and what the probes gave."""
+
+    reason: str
+    probed: tuple[str, ...]
+    gradients: tuple[np.ndarray, ...]
+    solves: int
+
+
+def _strict_names(result: LocalResult | None) -> set[str]:
+    if result is None or result.certificate is None:
+        return set()
+    return {str(r) for r in result.certificate.strictly_active}
+
+
+def flag_reason(result: LocalResult, previous: LocalResult | None) -> tuple[str, list[ConstraintRef]]:
+    """Why the gradient of ``result`` may not be unique (empty string if it is) and the rows to probe."""
+    cert = result.certificate
+    if cert is None:
+        return "", []
+    rows: list[ConstraintRef] = []
+    reasons = []
+    if cert.weakly_active:
+        reasons.append("weakly active " + ", ".join(str(r) for r in cert.weakly_active))
+        rows.extend(cert.weakly_active)
+    if not cert.licq:
+        reasons.append("LICQ fails on " + ", ".join(str(r) for r in cert.dependent))
+        rows.extend(r for r in cert.dependent if r not in rows)
+    if cert.verdict == "nonsmooth" and not reasons:
+        reasons.append(cert.reason)
+    if previous is not None and previous.certificate is not None:
+        now, before = _strict_names(result), _strict_names(previous)
+        changed = now ^ before
+        if changed:
+            reasons.append("active set changed (" + ", ".join(sorted(changed)) + ")")
+            rows.extend(r for r in cert.strictly_active if str(r) in changed and r not in rows and r.side != "equal")
+    return "; ".join(reasons), rows[:MAX_PROBED_ROWS]
+
+
+def guard(problem: ParametricNLP, result: LocalResult, previous: LocalResult | None) -> GuardReport | None:
+    """Probe a flagged agent; ``None`` when its gradient is unique (or the solve did not converge)."""
+    if not result.success:
+        return None
+    reason, rows = flag_reason(result, previous)
+    if not reason:
+        return None
+    grads: list[np.ndarray] = []
+    solves = 0
+    for ref in rows:
+        for kw in ({"hold": [ref]}, {"release": [ref]}):
+            r = problem.solve(result.p, warm=result, **kw)  # type: ignore[arg-type]
+            solves += 1
+            if r.success and r.gradient is not None:
+                # A piece's gradient only counts if its value matches (the re-solve found the same point).
+                if abs(r.value - result.value) <= 1e-6 * max(1.0, abs(result.value)):
+                    grads.append(r.gradient)
+    unique: list[np.ndarray] = []
+    for g in grads:
+        if all(np.max(np.abs(g - u)) > 1e-9 * max(1.0, np.max(np.abs(u))) for u in unique):
+            unique.append(g)
+    return GuardReport(reason, tuple(str(r) for r in rows), tuple(unique), solves)
+
+
+def min_norm_element(vectors: list[np.ndarray], scale: np.ndarray | None = None) -> np.ndarray:
+    """Minimum-norm element of the convex hull of ``vectors`` (in the norm ``||scale * v||``), by a small QP."""
+    V = np.vstack(vectors)
+    if V.shape[0] == 1:
+        return V[0].copy()
+    W = V * (1.0 if scale is None else scale[None, :])
+    k = V.shape[0]
+    G = W @ W.T
+    G = G / max(float(np.max(np.diag(G))), 1e-300) + 1e-12 * np.eye(k)  # scale-free, strictly convex
+    res = solve_qp(G, np.zeros(k), np.ones((1, k)), np.ones(1), np.ones(1), np.zeros(k), np.ones(k))
+    if res.success and np.all(np.isfinite(res.z)) and res.z.sum() > 0:
+        lam = np.clip(res.z, 0.0, None)
+        return (lam / lam.sum()) @ V
+    return V[int(np.argmin(np.einsum("ij,ij->i", W, W)))].copy()
