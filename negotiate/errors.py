@@ -22,6 +22,25 @@ from typing import Any
 __all__ = ["FleetError", "Problem", "describe", "table_path"]
 
 _BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")
+_PRINTABLE = re.compile(r"^[^\x00-\x1f\x7f\x85\u2028\u2029'\\]*$")
+_LINE_BREAKS = re.compile(r"\s*[\n\r\x0b\x0c\x1c-\x1e\x85\u2028\u2029]+\s*")
+
+
+def _quote(text: str) -> str:
+    """``text`` as a TOML basic string: quoted, with backslashes, quotes and control characters escaped."""
+    out = []
+    for ch in text:
+        if ch in '"\\':
+            out.append("\\" + ch)
+        elif ch == "\n":
+            out.append("\\n")
+        elif ch == "\t":
+            out.append("\\t")
+        elif ord(ch) < 0x20 or ord(ch) == 0x7F or ch in "\x85\u2028\u2029":
+            out.append(f"\\u{ord(ch):04X}")
+        else:
+            out.append(ch)
+    return '"' + "".join(out) + '"'
 
 
 @dataclass(frozen=True)
@@ -51,12 +70,18 @@ class Problem:
     found: str
 
     def __str__(self) -> str:
-        where = f"{self.file}:"
+        where = self.file
+        if self.table or self.key is not None:
+            where += ":"
         if self.table:
             where += f" [{self.table}]"
         if self.key is not None:
-            where += f" key '{self.key}'"
-        return f"{where}: expected {self.expected}, found {self.found}"
+            key = self.key if _PRINTABLE.match(self.key) else _quote(self.key)
+            where += f" key '{key}'"
+        # One line per problem, whatever the texts hold (a builder's exception may span several lines).
+        expected = _LINE_BREAKS.sub(" ", self.expected)
+        found = _LINE_BREAKS.sub(" ", self.found)
+        return f"{where}: expected {expected}, found {found}"
 
 
 class FleetError(ValueError):
@@ -86,17 +111,18 @@ def table_path(*parts: str | int) -> str:
         if isinstance(part, int):
             out += f"[{part}]"
         else:
-            key = part if _BARE_KEY.match(part) else '"' + part.replace("\\", "\\\\").replace('"', '\\"') + '"'
+            key = part if _BARE_KEY.match(part) else _quote(part)
             out += ("." if out else "") + key
     return out
 
 
-def describe(value: Any) -> str:
+def describe(value: Any, _depth: int = 0) -> str:
     """A value as it would be written in a TOML file (for the ``found`` part of a :class:`Problem`)."""
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, int):
-        return str(value)
+        text = str(value) if abs(value) < 10**30 else f"an integer of {len(str(abs(value)))} digits"
+        return text
     if isinstance(value, float):
         if math.isnan(value):
             return "nan"
@@ -104,11 +130,16 @@ def describe(value: Any) -> str:
             return "inf" if value > 0 else "-inf"
         return repr(value)
     if isinstance(value, str):
-        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+        text = _quote(value)
+        return text if len(text) <= 80 else text[:76] + ' ..."'
     if isinstance(value, list | tuple):
-        text = "[" + ", ".join(describe(v) for v in value) + "]"
+        if _depth >= 3:
+            return "[...]"
+        text = "[" + ", ".join(describe(v, _depth + 1) for v in value[:20]) + (", ...]" if len(value) > 20 else "]")
         return text if len(text) <= 80 else text[:76] + " ...]"
     if isinstance(value, dict):
-        keys = ", ".join(str(k) for k in value)
+        keys = ", ".join(str(k) if _BARE_KEY.match(str(k)) else _quote(str(k)) for k in value)
+        if len(keys) > 60:
+            keys = keys[:56] + " ..."
         return f"a table ({keys})" if keys else "an empty table"
     return f"a {type(value).__name__}"

@@ -1,0 +1,410 @@
+"""Check a fleet before coordinating it: parse, build every agent, show what each one can do and who shares what.
+
+:func:`check_fleet` (a file) and :func:`check_data` (a decoded dictionary) never raise for user mistakes:
+they return a :class:`CheckResult` holding a row per agent (model, weight, build time and, for each shared
+parameter, its reachable ``[lower, upper]`` and free optimum with its unit), a row per resource (its users
+and whether their free optima collide), the conflict graph and every problem found. The command
+``negotiate check fleet.toml`` prints :meth:`CheckResult.to_text`.
+
+The conflict graph (:func:`conflict_graph`) has a node per agent and per resource and an edge where an agent
+uses a resource. Its connected components are groups of agents that share nothing with the other groups, so
+that each group can be coordinated on its own.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import networkx as nx
+import numpy as np
+
+from negotiate.errors import FleetError, Problem
+from negotiate.fleet import BuiltAgent, _load, _parse, build_report
+from negotiate.spec import CapacityResource, ExclusiveResource, FleetSpec
+
+__all__ = ["AgentRow", "CheckResult", "ParamRow", "ResourceRow", "check_data", "check_fleet", "conflict_graph"]
+
+
+@dataclass(frozen=True)
+class ParamRow:
+    """One shared parameter of a built agent: reachable bounds and free optimum, in ``unit``."""
+
+    name: str
+    resource: str
+    kind: str
+    unit: str
+    lower: float
+    upper: float
+    free: float
+
+
+@dataclass(frozen=True)
+class AgentRow:
+    """One agent: model, weight, build time (s) and its parameters (empty if it could not be built)."""
+
+    name: str
+    model: str
+    weight: float
+    built: bool
+    build_time: float
+    params: tuple[ParamRow, ...] = ()
+
+
+@dataclass(frozen=True)
+class ResourceRow:
+    """One resource: its users and whether their free optima collide on it.
+
+    ``contended`` is None when some user could not be built (so it is unknown); ``detail`` says why in words.
+    """
+
+    name: str
+    kind: str
+    users: tuple[str, ...]
+    contended: bool | None
+    detail: str
+
+
+@dataclass(frozen=True)
+class CheckResult:
+    """Outcome of :func:`check_fleet`.
+
+    Attributes
+    ----------
+    source : str
+        Where the fleet came from.
+    spec : FleetSpec or None
+        The parsed fleet (None if the file has mistakes that stop parsing).
+    description : str
+        The fleet's description.
+    agents, resources : tuple
+        :class:`AgentRow` and :class:`ResourceRow` per agent and resource, in file order.
+    graph : networkx.Graph
+        The conflict graph (node attribute ``kind``: ``"agent"``, ``"exclusive"`` or ``"capacity"``).
+    groups : tuple of tuple of str
+        Connected components of the graph (agents and resources), in file order.
+    problems : tuple of Problem
+        Every mistake found; empty when the fleet is ready to coordinate.
+    """
+
+    source: str
+    spec: FleetSpec | None
+    description: str = ""
+    agents: tuple[AgentRow, ...] = ()
+    resources: tuple[ResourceRow, ...] = ()
+    graph: nx.Graph = field(default_factory=nx.Graph)
+    groups: tuple[tuple[str, ...], ...] = ()
+    problems: tuple[Problem, ...] = ()
+
+    @property
+    def ok(self) -> bool:
+        """Whether no problem was found."""
+        return not self.problems
+
+    @property
+    def error(self) -> FleetError | None:
+        """The problems as one :class:`FleetError` (None when there are none)."""
+        return FleetError(self.problems) if self.problems else None
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain data (``json.dumps`` accepts it); the graph as its list of edges."""
+        return {
+            "source": self.source,
+            "fleet": self.spec.name if self.spec else None,
+            "description": self.description,
+            "agents": [
+                {
+                    **{k: getattr(a, k) for k in ("name", "model", "weight", "built", "build_time")},
+                    "params": [vars(p).copy() for p in a.params],
+                }
+                for a in self.agents
+            ],
+            "resources": [{**vars(r), "users": list(r.users)} for r in self.resources],
+            "edges": [
+                {"agent": a, "resource": r, "params": list(d.get("params", ()))} for a, r, d in _agent_edges(self.graph)
+            ],
+            "groups": [list(g) for g in self.groups],
+            "problems": [vars(p).copy() for p in self.problems],
+        }
+
+    def to_text(self) -> str:
+        """The plain-text report printed by ``negotiate check``."""
+        return _text(self)
+
+
+# --------------------------------------------------------------------------------------------------------
+
+
+def check_fleet(path: str | Path, build: bool = True) -> CheckResult:
+    """Check a fleet file: parse it, build every agent (unless ``build`` is False) and describe the result.
+
+    Raises only :class:`FileNotFoundError` / :class:`OSError` when the file cannot be read; every mistake in
+    it is a problem in the result. Custom models named by import path are imported and run when building.
+    """
+    try:
+        spec, description = _load(path)
+    except FleetError as exc:
+        return CheckResult(source=str(path), spec=None, problems=exc.problems)
+    return _check_spec(spec, description, build)
+
+
+def check_data(data: Mapping[str, Any], source: str = "<memory>", build: bool = True) -> CheckResult:
+    """Like :func:`check_fleet` for an already-decoded fleet dictionary."""
+    try:
+        spec, description = _parse(data, source)
+    except FleetError as exc:
+        return CheckResult(source=source, spec=None, problems=exc.problems)
+    return _check_spec(spec, description, build)
+
+
+def _check_spec(spec: FleetSpec, description: str, build: bool) -> CheckResult:
+    problems: list[Problem] = []
+    built: list[BuiltAgent] = []
+    if build:
+        built, problems = build_report(spec)
+    models = {b.spec.name: b.model for b in built if b.model is not None}
+    rows = []
+    for agent in spec.agents:
+        b = next((x for x in built if x.spec.name == agent.name), None)
+        m = models.get(agent.name)
+        params: tuple[ParamRow, ...] = ()
+        if m is not None:
+            params = tuple(
+                ParamRow(q.name, q.resource, q.kind, q.unit, float(lo), float(hi), float(fr))
+                for q, lo, hi, fr in zip(m.params, m.reachable.lower, m.reachable.upper, m.free_optimum, strict=True)
+            )
+        rows.append(
+            AgentRow(agent.name, agent.model, agent.weight, m is not None, b.seconds if b is not None else 0.0, params)
+        )
+    graph = conflict_graph(spec, models)
+    resources, capacity_problems = _resource_rows(spec, graph, models, complete=build and not problems)
+    problems += capacity_problems
+    order = {n: i for i, n in enumerate([a.name for a in spec.agents] + [r.name for r in spec.resources])}
+    groups = sorted(
+        (tuple(sorted(c, key=order.__getitem__)) for c in nx.connected_components(graph)), key=lambda g: order[g[0]]
+    )
+    return CheckResult(
+        source=spec.source,
+        spec=spec,
+        description=description,
+        agents=tuple(rows),
+        resources=tuple(resources),
+        graph=graph,
+        groups=tuple(groups),
+        problems=tuple(problems),
+    )
+
+
+def conflict_graph(spec: FleetSpec, models: Mapping[str, Any] | None = None) -> nx.Graph:
+    """Agents and resources as nodes, an edge where an agent uses a resource (attribute ``params``).
+
+    Built-in agents' resources are read from their parameter records; a user-written agent's from the
+    ``SlotParam`` s of its built model (``models``: agent name -> AgentModel), so it has no edge unbuilt.
+    """
+    models = models or {}
+    g = nx.Graph()
+    for r in spec.resources:
+        g.add_node(r.name, kind="capacity" if isinstance(r, CapacityResource) else "exclusive")
+    for agent in spec.agents:
+        g.add_node(agent.name, kind="agent", model=agent.model)
+        uses: dict[str, list[str]] = {}
+        m = models.get(agent.name)
+        if m is not None:
+            for q in m.params:
+                uses.setdefault(q.resource, []).append(q.name)
+        else:
+            prm = agent.params
+            for entry in (*getattr(prm, "zones", ()), *getattr(prm, "stations", ()), prm):
+                res = getattr(entry, "resource", None)
+                if isinstance(res, str):
+                    uses.setdefault(res, [])
+        for res, names in uses.items():
+            if res in g and g.nodes[res]["kind"] != "agent":
+                g.add_edge(agent.name, res, params=tuple(names))
+    return g
+
+
+def _agent_edges(g: nx.Graph) -> list[tuple[str, str, dict[str, Any]]]:
+    out = []
+    for u, v, d in g.edges(data=True):
+        a, r = (u, v) if g.nodes[u]["kind"] == "agent" else (v, u)
+        out.append((a, r, d))
+    return out
+
+
+def _users(g: nx.Graph, resource: str, spec: FleetSpec) -> tuple[str, ...]:
+    order = [a.name for a in spec.agents]
+    return tuple(sorted(g.neighbors(resource), key=order.index))
+
+
+def _slot(m: Any, resource: str) -> tuple[float, float] | None:
+    enter = leave = None
+    for q, v in zip(m.params, m.free_optimum, strict=True):
+        if q.resource == resource and q.kind == "enter":
+            enter = float(v)
+        elif q.resource == resource and q.kind == "leave":
+            leave = float(v)
+    return None if enter is None or leave is None else (enter, leave)
+
+
+def _resource_rows(
+    spec: FleetSpec, g: nx.Graph, models: Mapping[str, Any], complete: bool
+) -> tuple[list[ResourceRow], list[Problem]]:
+    rows: list[ResourceRow] = []
+    problems: list[Problem] = []
+    for r in spec.resources:
+        users = _users(g, r.name, spec)
+        known = [u for u in users if u in models]
+        if not users:
+            rows.append(ResourceRow(r.name, _kind(r), users, False, "no agent uses it"))
+            continue
+        if len(known) < len(users):
+            rows.append(ResourceRow(r.name, _kind(r), users, None, "unknown (not every user was built)"))
+            continue
+        if isinstance(r, ExclusiveResource):
+            slots = [(u, _slot(models[u], r.name)) for u in users]
+            slots = [(u, s) for u, s in slots if s is not None]
+            pairs = total = 0
+            for i in range(len(slots)):
+                for j in range(i + 1, len(slots)):
+                    (a0, a1), (b0, b1) = slots[i][1], slots[j][1]
+                    total += 1
+                    if a1 + r.gap > b0 and b1 + r.gap > a0:
+                        pairs += 1
+            detail = (
+                f"{pairs} of {total} pairs of free-optimum slots overlap (gap included)" if total else "a single user"
+            )
+            rows.append(ResourceRow(r.name, "exclusive", users, pairs > 0, detail))
+        else:
+            demand = np.zeros(r.blocks)
+            floor = np.zeros(r.blocks)
+            for u in users:
+                m = models[u]
+                for q, lo, fr in zip(m.params, m.reachable.lower, m.free_optimum, strict=True):
+                    if q.resource == r.name and q.kind == "share" and q.block is not None and q.block < r.blocks:
+                        demand[q.block] += fr
+                        floor[q.block] += lo
+            limits = np.asarray(r.limits)
+            over = np.flatnonzero(demand > limits * (1 + 1e-9))
+            if over.size:
+                excess = float(np.max(demand[over] - limits[over]))
+                detail = (
+                    f"free-optimum shares exceed the limit in block(s) {', '.join(map(str, over))} "
+                    f"(by up to {_num(excess)} {r.unit})"
+                )
+            else:
+                detail = "free-optimum shares fit within every block's limit"
+            rows.append(ResourceRow(r.name, "capacity", users, bool(over.size), detail))
+            short = np.flatnonzero(floor > limits * (1 + 1e-9))
+            if complete and short.size:
+                problems.append(
+                    Problem(
+                        spec.source,
+                        f"resources.{r.name}",
+                        "limits",
+                        "limits at least the sum of the users' smallest shares",
+                        f"blocks {', '.join(map(str, short))} short",
+                    )
+                )
+    return rows, problems
+
+
+def _kind(r: Any) -> str:
+    return "capacity" if isinstance(r, CapacityResource) else "exclusive"
+
+
+# --------------------------------------------------------------------------------------------------------
+# text
+# --------------------------------------------------------------------------------------------------------
+
+
+def _num(v: float) -> str:
+    if not math.isfinite(v):
+        return str(v)
+    if v != 0 and (abs(v) >= 1e7 or abs(v) < 1e-3):
+        return f"{v:.4e}"
+    return f"{v:.6g}" if abs(v) < 1e4 else f"{v:.0f}"
+
+
+def _table(
+    header: Sequence[str], rows: Sequence[Sequence[str]], right: Sequence[bool], indent: str = "  "
+) -> list[str]:
+    widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h) for i, h in enumerate(header)]
+
+    def line(cells: Sequence[str]) -> str:
+        return (
+            indent
+            + "  ".join(
+                c.rjust(w) if ra else c.ljust(w) for c, w, ra in zip(cells, widths, right, strict=True)
+            ).rstrip()
+        )
+
+    return [line(header), *(line(r) for r in rows)]
+
+
+def _text(res: CheckResult) -> str:
+    out: list[str] = []
+    spec = res.spec
+    if spec is None:
+        out.append(f"{res.source}: not a valid fleet file; {len(res.problems)} problem(s):")
+        out.extend(str(p) for p in res.problems)
+        return "\n".join(out) + "\n"
+    c = spec.coordinator
+    out.append(f"fleet {spec.name!r} ({res.source})")
+    if res.description:
+        out.append(f"  {res.description}")
+    out.append(
+        f"  {len(spec.agents)} agent(s), {len(spec.resources)} resource(s); coordinator: method {c.method}, "
+        f"max_rounds {c.max_rounds}, tolerance {c.tolerance:g}, order {c.order}, "
+        f"guard {'on' if c.guard else 'off'}"
+    )
+    out.append("")
+    for a in res.agents:
+        state = f"built in {a.build_time:.2f} s" if a.built else "not built"
+        out.append(f"agent {a.name}   model {a.model}   weight {a.weight:g}   {state}")
+        if a.params:
+            rows = [[p.name, p.unit, _num(p.lower), _num(p.upper), _num(p.free)] for p in a.params]
+            out.extend(
+                _table(
+                    ["parameter", "unit", "reachable lower", "reachable upper", "free optimum"],
+                    rows,
+                    [False, False, True, True, True],
+                )
+            )
+        out.append("")
+    out.append("resources")
+    rows = []
+    for r, row in zip(spec.resources, res.resources, strict=True):
+        if isinstance(r, ExclusiveResource):
+            what = f"exclusive, gap {_num(r.gap)} s"
+        else:
+            what = f"capacity, {r.blocks} blocks of {_num(r.block_length)} s from {_num(r.start)} s, limits in {r.unit}"
+        contended = {True: "yes", False: "no", None: "unknown"}[row.contended]
+        rows.append([r.name, what, str(len(row.users)), contended, row.detail])
+    out.extend(_table(["resource", "kind", "users", "contended", "detail"], rows, [False, False, True, False, False]))
+    out.append("")
+    g = res.graph
+    n_agents = sum(1 for _, d in g.nodes(data=True) if d["kind"] == "agent")
+    out.append(
+        f"conflict graph: {n_agents} agent(s), {g.number_of_nodes() - n_agents} resource(s), "
+        f"{g.number_of_edges()} use(s); {len(res.groups)} group(s) that can be coordinated independently"
+    )
+    kinds = nx.get_node_attributes(g, "kind")
+    for i, group in enumerate(res.groups, start=1):
+        agents = [n for n in group if kinds[n] == "agent"]
+        resources = [n for n in group if kinds[n] != "agent"]
+        out.append(f"  group {i}: resources {', '.join(resources) or '(none)'}; agents {', '.join(agents) or '(none)'}")
+    for r in spec.resources:
+        users = list(g.neighbors(r.name))
+        if users:
+            out.append(f"  {r.name} <- " + ", ".join(_users(g, r.name, spec)))
+    out.append("")
+    if res.problems:
+        out.append(f"{len(res.problems)} problem(s):")
+        out.extend(str(p) for p in res.problems)
+    else:
+        out.append("no problems found")
+    return "\n".join(out) + "\n"

@@ -1,0 +1,186 @@
+"""Tests of ``negotiate check`` (negotiate.check and the CLI subcommand) on the shipped examples and on bad files.
+
+Each example is built once per module (building agents is the slow part). The examples are invented demo
+data; what is asserted about them is what they are meant to show: every agent builds, each resource is
+contended (free optima collide) and the conflict graph groups the agents as the file says.
+"""
+
+from __future__ import annotations
+
+import json
+import textwrap
+from pathlib import Path
+
+import networkx as nx
+import pytest
+
+from negotiate import cli
+from negotiate.check import CheckResult, check_data, check_fleet, conflict_graph
+from negotiate.errors import FleetError
+from negotiate.fleet import parse_fleet
+
+EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
+NAMES = ["quarry_bridge", "machining_cell", "charging_depot"]
+
+
+@pytest.fixture(scope="module")
+def checked() -> dict[str, CheckResult]:
+    """check_fleet on each example, built once for the module."""
+    return {name: check_fleet(EXAMPLES / f"{name}.toml") for name in NAMES}
+
+
+def two_groups() -> dict:
+    """Two trucks at a gate and a tractor on a feeder: two independent groups (invented, parse-only)."""
+    zone = {"resource": "gate", "entry": 400.0, "exit": 420.0}
+    return {
+        "resources": {"gate": {"kind": "exclusive"}, "feeder": {"kind": "capacity", "limits": [1e5, 1e5]},
+                      "spare": {"kind": "exclusive"}},
+        "agents": {"t1": {"model": "vehicle", "zones": [zone]}, "t2": {"model": "vehicle", "zones": [zone]},
+                   "c1": {"model": "capacity", "resource": "feeder", "tariff": 1.0}},
+    }
+
+
+class TestCheckFleet:
+    @pytest.mark.parametrize("name", NAMES)
+    def test_example_is_clean(self, checked, name):
+        """Every agent of every example builds and no problem is found."""
+        res = checked[name]
+        assert res.ok and res.error is None, res.to_text()
+        assert all(a.built for a in res.agents)
+
+    @pytest.mark.parametrize("name", NAMES)
+    def test_rows_hold_windows_and_free_optima(self, checked, name):
+        """Each parameter row has a unit and a free optimum inside its reachable [lower, upper]."""
+        for agent in checked[name].agents:
+            assert agent.params
+            for p in agent.params:
+                assert p.unit in ("s", "W")
+                # 1e-6 relative: the builders clip the free optimum onto the reachable set exactly.
+                tol = 1e-6 * max(1.0, abs(p.free))
+                assert p.lower - tol <= p.free <= p.upper + tol, (agent.name, p)
+
+    @pytest.mark.parametrize("name", NAMES)
+    def test_resources_contended(self, checked, name):
+        """The examples are meant to be contended: on every resource some free optima collide."""
+        res = checked[name]
+        assert res.resources and all(r.contended for r in res.resources), [r.detail for r in res.resources]
+
+    @pytest.mark.parametrize("name, size", [("quarry_bridge", 8), ("machining_cell", 6), ("charging_depot", 6)])
+    def test_example_sizes_and_build_time(self, checked, name, size):
+        """At least the promised number of agents, all built in under 20 s (one group sharing everything)."""
+        res = checked[name]
+        assert len(res.agents) >= size
+        assert sum(a.build_time for a in res.agents) < 20.0
+        assert len(res.groups) == 1
+
+    def test_quarry_table_text(self, checked):
+        """The text report names each agent with model and weight and each parameter with its unit."""
+        text = checked["quarry_bridge"].to_text()
+        assert "agent truck-07   model vehicle   weight 1.5   built in" in text
+        assert "bridge.enter  s" in text and "bridge.leave  s" in text
+        assert "conflict graph: 8 agent(s), 1 resource(s), 8 use(s); 1 group(s)" in text
+        assert text.rstrip().endswith("no problems found")
+
+    def test_machining_graph(self, checked):
+        """Every machine uses both stations: 6 agents, 2 resources, 12 edges, one component."""
+        g = checked["machining_cell"].graph
+        kinds = nx.get_node_attributes(g, "kind")
+        assert sorted(set(kinds.values())) == ["agent", "exclusive"]
+        assert g.number_of_edges() == 12 and nx.number_connected_components(g) == 1
+        assert set(g["furnace"]) == set(g["inspection"]) == {a.name for a in checked["machining_cell"].agents}
+
+    def test_to_dict_is_json(self, checked):
+        """The result is plain data for json.dumps."""
+        d = json.loads(json.dumps(checked["charging_depot"].to_dict()))
+        assert len(d["agents"]) == 6 and len(d["agents"][0]["params"]) == 8
+        assert {e["resource"] for e in d["edges"]} == {"grid"} and d["problems"] == []
+
+
+class TestConflictGraph:
+    def test_independent_groups(self):
+        """Agents sharing nothing fall into separate components; an unused resource is its own group."""
+        res = check_data(two_groups(), "two.toml", build=False)
+        assert res.ok
+        assert res.groups == (("t1", "t2", "gate"), ("c1", "feeder"), ("spare",))
+        row = {r.name: r for r in res.resources}["spare"]
+        assert row.users == () and row.detail == "no agent uses it"
+
+    def test_graph_from_spec(self):
+        """Edges come from the zones / stations / resource of the parameter records."""
+        g = conflict_graph(parse_fleet(two_groups()))
+        assert {frozenset(e) for e in g.edges()} == {frozenset(e) for e in [("t1", "gate"), ("t2", "gate"),
+                                                                             ("c1", "feeder")]}
+
+
+class TestProblems:
+    def test_parse_errors_listed(self, tmp_path):
+        """A file with mistakes gives no spec and every problem, in the FleetError's words."""
+        path = tmp_path / "fleet.toml"
+        path.write_text(textwrap.dedent("""
+            [resources.bridge]
+            kind = "exclusive"
+            [agents.truck-03]
+            model = "vehicle"
+            mass = -5
+            [[agents.truck-03.zones]]
+            resource = "brdge"
+            entry = 900.0
+            exit = 1100.0
+        """), encoding="utf-8")
+        res = check_fleet(path)
+        assert res.spec is None and not res.ok
+        assert isinstance(res.error, FleetError)
+        assert str(res.error).splitlines() == [
+            f"{path}: [agents.truck-03.zones[0]] key 'resource': expected the name of a declared exclusive "
+            "resource (bridge), found \"brdge\"",
+            f"{path}: [agents.truck-03] key 'mass': expected a number > 0 (kg), found -5",
+        ]
+
+    def test_build_error_keeps_other_rows(self):
+        """An agent that cannot be built is a problem naming it; the other agents still get their rows."""
+        data = two_groups()
+        data["agents"]["t2"]["latest_arrival"] = 101.0  # 2000 m at 20 m/s take 100 s, from 10 m/s more
+        data["agents"]["t1"]["stages"] = data["agents"]["t2"]["stages"] = 8
+        res = check_data(data, "fleet.toml")
+        assert [a.built for a in res.agents] == [True, False, True]
+        (problem,) = res.problems
+        assert problem.table == "agents.t2" and "non-empty reachable window" in problem.expected
+        assert {r.name: r.contended for r in res.resources}["gate"] is None
+
+
+class TestCli:
+    @pytest.mark.parametrize("name", NAMES)
+    def test_examples_exit_zero(self, name, capsys):
+        """`negotiate check` on each example exits 0 and prints a table per agent."""
+        assert cli.main(["check", str(EXAMPLES / f"{name}.toml")]) == 0
+        out = capsys.readouterr().out
+        assert out.count("\nagent ") >= 6 and "free optimum" in out and "no problems found" in out
+
+    def test_bad_file_exits_one_without_traceback(self, tmp_path, capsys):
+        """Mistakes: exit 1, the FleetError lines printed, no traceback."""
+        path = tmp_path / "fleet.toml"
+        path.write_text('[agents.a]\nmodel = "bus"\n', encoding="utf-8")
+        assert cli.main(["check", str(path)]) == 1
+        captured = capsys.readouterr()
+        assert (f"{path}: [agents.a] key 'model': expected one of \"vehicle\", \"machine\", \"capacity\" or "
+                "\"package.module:function\", found \"bus\"") in captured.out
+        assert "Traceback" not in captured.out + captured.err
+
+    def test_invalid_toml_exits_one(self, tmp_path, capsys):
+        """A TOML syntax error is a user mistake too (exit 1)."""
+        path = tmp_path / "fleet.toml"
+        path.write_text("[agents\n", encoding="utf-8")
+        assert cli.main(["check", str(path)]) == 1
+        assert "expected valid TOML" in capsys.readouterr().out
+
+    def test_missing_file_exits_two(self, tmp_path, capsys):
+        """A file that does not exist: exit 2, a one-line message on stderr."""
+        assert cli.main(["check", str(tmp_path / "absent.toml")]) == 2
+        err = capsys.readouterr().err
+        assert err.startswith("negotiate check: cannot read ") and "Traceback" not in err
+
+    def test_no_build(self, capsys):
+        """--no-build validates only: agents are listed as not built, and the exit status is 0."""
+        assert cli.main(["check", "--no-build", str(EXAMPLES / "quarry_bridge.toml")]) == 0
+        out = capsys.readouterr().out
+        assert "agent truck-01   model vehicle   weight 1   not built" in out
