@@ -6,11 +6,14 @@ it is accepted when the true total decreases by at least ``armijo * g . (P - P+)
 projection arc, Bertsekas 1976), otherwise ``alpha`` is halved. After an accepted step ``alpha`` is the
 Barzilai-Borwein length ``s.s / s.y`` (Barzilai & Borwein 1988), clipped to a safe range.
 
-When the nonsmooth guard flags an agent, its gradient is not unique: the step then uses, for every
-flagged agent, the minimum-norm element of the convex hull of its one-sided gradients (a subgradient), with
-a diminishing length ``alpha_k = alpha_0 / (1 + k)`` and no line search (a subgradient step need not
+When the nonsmooth guard flags an agent and its probes find several one-sided gradients at the current
+point, its gradient is not unique: the step is then a
+subgradient step on the local model ``sum_i w_i max_j g_ij . (p_i - x_i)`` (a proximal QP over the
+feasible set, so the direction is the constrained steepest descent over the generalised gradient) with a
+diminishing length ``alpha_k = alpha_0 / (1 + k)`` and no line search (a subgradient step need not
 descend); the best point seen is kept as the incumbent. Stopping measure: the first-order predicted
-decrease ``g . (P - P+)`` of the current step, relative to ``max(1, |total|)``.
+decrease ``g . (P - Proj(P - scale^2 g))`` of a unit step in scaled units (not of the backtracked one),
+relative to ``max(1, |total|)``.
 
 Options (``[coordinator.options]``): ``armijo`` (1e-4), ``first_step`` (0.05, length of the first step in
 scaled units), ``guard_fallback`` (True: take subgradient steps when agents are flagged).
@@ -20,8 +23,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from negotiate.coordinate import Evaluation, Method, Proposal, register_method
-from negotiate.guard import min_norm_element
+from negotiate.coordinate import AgentReport, Evaluation, Method, Proposal, register_method
+from negotiate.qp import solve_qp
 
 
 @register_method
@@ -42,18 +45,52 @@ class ProjectedGradient(Method):
 
     # -- helpers -----------------------------------------------------------------------------------
     def direction(self, ev: Evaluation) -> tuple[np.ndarray, bool]:
-        """Stacked descent-defining gradient and whether it is a subgradient (some agent flagged)."""
-        lay = self.feasible.layout
-        parts, sub = [], False
-        for i, (w, rep) in enumerate(zip(ev.weights, ev.reports, strict=True)):
-            grads = rep.gradients
-            if self.fallback and rep.flagged and len(grads) > 1:
-                parts.append(w * min_norm_element(grads, self.s[lay.slice(i)]))
-                sub = True
-            else:
-                parts.append(w * rep.gradient)
-                sub = sub or (self.fallback and rep.flagged)
-        return lay.stack(parts), sub
+        """Stacked weighted gradient and whether some agent reported several one-sided gradients."""
+        sub = self.fallback and any(len(self.local_gradients(r)) > 1 for r in ev.reports)
+        return ev.gradient, sub
+
+    @staticmethod
+    def local_gradients(rep: AgentReport) -> list[np.ndarray]:
+        """The agent's plain gradient and the guard's one-sided gradients at the same point."""
+        return rep.gradients
+
+    def subgradient_trial(self, alpha: float) -> tuple[np.ndarray, float]:
+        """Proximal step on the local model sum_i w_i max_j g_ij.(p_i - x_i) over the feasible set.
+
+        Its solution moves along the constrained steepest-descent direction of the generalised gradient
+        spanned by the one-sided gradients (and is the current point when that hull holds a stationary
+        element); ``alpha`` (scaled length per unit slope) diminishes from step to step.
+        """
+        assert self.x is not None
+        x, s, lay, fs = self.x, self.s, self.feasible.layout, self.feasible
+        n, N = lay.n, len(lay.names)
+        rows, ub = [], []
+        for i, rep in enumerate(x.reports):
+            sl = lay.slice(i)
+            for g in self.local_gradients(rep):
+                row = np.zeros(n + N)
+                row[sl] = x.weights[i] * g * s[sl]
+                row[n + i] = -1.0
+                rows.append(row)
+                ub.append(float(x.weights[i] * g @ x.P[sl]))
+        A = np.vstack([np.array(rows), np.hstack([fs.A * s[None, :], np.zeros((fs.A.shape[0], N))])])
+        uba = np.concatenate([ub, fs.b])
+        H = np.diag(np.concatenate([np.full(n, 1.0 / alpha), np.full(N, 1e-9 / alpha)]))
+        u = x.P / s
+        q = np.concatenate([-u / alpha, np.ones(N)])
+        big = 1e20
+        res = solve_qp(
+            H, q, A, np.full(uba.size, -np.inf), uba,
+            np.concatenate([fs.lower / s, np.full(N, -big)]), np.concatenate([fs.upper / s, np.full(N, big)]),
+        )  # fmt: skip
+        if not res.success:
+            return self.trial(x.gradient, alpha)
+        Pn = np.clip(res.z[:n] * s, fs.lower, fs.upper)
+        model = 0.0
+        for i, rep in enumerate(x.reports):
+            sl = lay.slice(i)
+            model += max(float(x.weights[i] * g @ (Pn[sl] - x.P[sl])) for g in self.local_gradients(rep))
+        return Pn, max(-model, 0.0)
 
     def trial(self, g: np.ndarray, alpha: float) -> tuple[np.ndarray, float]:
         assert self.x is not None
@@ -70,18 +107,23 @@ class ProjectedGradient(Method):
             self.alpha_sub0 = self.alpha
         scale = max(1.0, abs(self.x.total))
         if sub:
+            _P_ref, pred_ref = self.subgradient_trial(1.0)  # measure at a unit step, as below
+            measure = pred_ref / scale
             alpha = float(self.alpha_sub0) / (1 + self.n_sub)  # type: ignore[arg-type]
-            Pn, pred = self.trial(g, alpha)
-            measure = pred / scale
+            Pn, pred = self.subgradient_trial(alpha)
             if self.tolerance_reached(measure):
                 return Proposal(None, measure, True, "subgradient step below tolerance")
             self.pending = ("sub", g, pred)
             self.n_sub += 1
             return Proposal(Pn, measure, False, (note + " subgradient step").strip())
-        Pn, pred = self.trial(g, self.alpha)
-        measure = pred / scale
+        # The stopping measure uses a unit step in scaled units (up to the whole window), so that it does not
+        # shrink just because the line search shortened the step (it would "converge" at a kink it cannot
+        # resolve) or because the gradient shrank.
+        _P_ref, pred_ref = self.trial(g, 1.0)
+        measure = pred_ref / scale
         if self.tolerance_reached(measure):
             return Proposal(None, measure, True, "predicted decrease below tolerance")
+        Pn, pred = self.trial(g, self.alpha)
         self.pending = ("armijo", g, pred)
         return Proposal(Pn, measure, False, note)
 

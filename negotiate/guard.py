@@ -84,15 +84,23 @@ def guard(problem: ParametricNLP, result: LocalResult, previous: LocalResult | N
         for kw in ({"hold": [ref]}, {"release": [ref]}):
             r = problem.solve(result.p, warm=result, **kw)  # type: ignore[arg-type]
             solves += 1
-            if r.success and r.gradient is not None:
-                # A piece's gradient only counts if its value matches (the re-solve found the same point).
-                if abs(r.value - result.value) <= 1e-6 * max(1.0, abs(result.value)):
-                    grads.append(r.gradient)
+            # A piece's gradient only counts if its value matches (the re-solve found the same point).
+            if (
+                r.success
+                and r.gradient is not None
+                and abs(r.value - result.value) <= 1e-6 * max(1.0, abs(result.value))
+            ):
+                grads.append(r.gradient)
+    assert result.gradient is not None
     unique: list[np.ndarray] = []
     for g in grads:
-        if all(np.max(np.abs(g - u)) > 1e-9 * max(1.0, np.max(np.abs(u))) for u in unique):
+        if all(not _same(g, u) for u in [result.gradient, *unique]):
             unique.append(g)
     return GuardReport(reason, tuple(str(r) for r in rows), tuple(unique), solves)
+
+
+def _same(a: np.ndarray, b: np.ndarray) -> bool:
+    return bool(np.max(np.abs(a - b), initial=0.0) <= 1e-9 * max(1.0, float(np.max(np.abs(b), initial=0.0))))
 
 
 def min_norm_element(vectors: list[np.ndarray], scale: np.ndarray | None = None) -> np.ndarray:
