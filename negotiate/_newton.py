@@ -6,10 +6,11 @@ system (:mod:`negotiate.sensitivity`). The upper step solves the QP ::
     min_P  g . (P - P_k) + 1/2 (P - P_k)^T B (P - P_k)    s.t. P in the coupling polyhedron
 
 with ``B`` the block-diagonal matrix of the weighted Hessians, each block made positive definite by
-raising its eigenvalues to at least ``1e-6`` of its largest one (V_i need not be convex), in scaled
-coordinates. The step is then backtracked (Armijo on the true total) along the segment to the QP's
-solution, which stays feasible. Where some agent is not smooth, or is flagged by the nonsmooth guard, that
-round falls back to the projected-gradient step of :mod:`negotiate._gradient`. Stopping measure: the
+raising its eigenvalues to at least ``1e-6`` of its largest one and of the metric of the first gradient
+step (V_i need not be convex, and is linear in places), in scaled coordinates. The step is then
+backtracked (Armijo on the true total) along the segment to the QP's solution, which stays feasible.
+Where some agent is not smooth, or is flagged by the nonsmooth guard, that round falls back to the
+projected-gradient step of :mod:`negotiate._gradient`. Stopping measure: the
 QP's predicted decrease ``-(g.d + d.B.d / 2)`` relative to ``max(1, |total|)``.
 """
 
@@ -29,6 +30,9 @@ class ProjectedNewton(ProjectedGradient):
 
     def start(self, first: Evaluation) -> None:
         super().start(first)
+        # Curvature floor for agents whose value Hessian is (nearly) zero, e.g. linear pieces: the metric a
+        # first gradient step of length first_step would imply, cost per scaled unit^2.
+        self.mu0 = float(np.linalg.norm(first.gradient * self.s)) / self.first_step if first.ok else 1.0
         self.newton_steps = 0
         self.t = 1.0
         self.newton_pending: tuple[np.ndarray, float] | None = None
@@ -42,7 +46,7 @@ class ProjectedNewton(ProjectedGradient):
             sl = lay.slice(i)
             Hu = w * rep.hessian * np.outer(s[sl], s[sl])  # type: ignore[operator]
             lam, Q = np.linalg.eigh(0.5 * (Hu + Hu.T))
-            floor = 1e-6 * max(float(np.max(np.abs(lam), initial=0.0)), 1e-300)
+            floor = max(1e-6 * float(np.max(np.abs(lam), initial=0.0)), 1e-6 * self.mu0, 1e-300)
             B[sl, sl] = (Q * np.maximum(lam, floor)) @ Q.T
         return B
 
@@ -56,7 +60,7 @@ class ProjectedNewton(ProjectedGradient):
         gu = self.x.gradient * s
         fs = self.feasible
         res = solve_qp(B, gu - B @ u, fs.A * s[None, :], np.full(fs.b.size, -np.inf), fs.b, fs.lower / s, fs.upper / s)
-        if not res.success:
+        if not res.success or not fs.contains(res.z * s, tol=1e-7 * max(1.0, float(np.max(np.abs(fs.b), initial=1.0)))):
             return None
         d = res.z - u
         pred = -float(gu @ d + 0.5 * d @ B @ d)
