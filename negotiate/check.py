@@ -86,6 +86,11 @@ class CheckResult:
         The conflict graph (node attribute ``kind``: ``"agent"``, ``"exclusive"`` or ``"capacity"``).
     groups : tuple of tuple of str
         Connected components of the graph (agents and resources), in file order.
+    schedule : bool or None
+        Whether the coupling polyhedron (:mod:`negotiate.coupling`) with first-come-first-served orders on
+        the exclusive resources -- the coordinator's default start -- holds a point, i.e. whether some
+        choice of slots and shares meets every agent's reachable set and every resource's rules at once
+        (None when not checked: some agent was not built); ``schedule_detail`` says it in words.
     problems : tuple of Problem
         Every mistake found; empty when the fleet is ready to coordinate.
     """
@@ -97,6 +102,8 @@ class CheckResult:
     resources: tuple[ResourceRow, ...] = ()
     graph: nx.Graph = field(default_factory=nx.Graph)
     groups: tuple[tuple[str, ...], ...] = ()
+    schedule: bool | None = None
+    schedule_detail: str = "not checked"
     problems: tuple[Problem, ...] = ()
 
     @property
@@ -127,6 +134,8 @@ class CheckResult:
                 {"agent": a, "resource": r, "params": list(d.get("params", ()))} for a, r, d in _agent_edges(self.graph)
             ],
             "groups": [list(g) for g in self.groups],
+            "schedule": self.schedule,
+            "schedule_detail": self.schedule_detail,
             "problems": [vars(p).copy() for p in self.problems],
         }
 
@@ -182,6 +191,11 @@ def _check_spec(spec: FleetSpec, description: str, build: bool) -> CheckResult:
     graph = conflict_graph(spec, models)
     resources, capacity_problems = _resource_rows(spec, graph, models, complete=build and not problems)
     problems += capacity_problems
+    schedule, schedule_detail = None, "not checked (not every agent was built)" if build else "not checked"
+    if build and not problems:
+        schedule, schedule_detail, schedule_problem = _schedule(spec, [models[a.name] for a in spec.agents])
+        if schedule_problem is not None:
+            problems.append(schedule_problem)
     order = {n: i for i, n in enumerate([a.name for a in spec.agents] + [r.name for r in spec.resources])}
     groups = sorted(
         (tuple(sorted(c, key=order.__getitem__)) for c in nx.connected_components(graph)), key=lambda g: order[g[0]]
@@ -194,8 +208,36 @@ def _check_spec(spec: FleetSpec, description: str, build: bool) -> CheckResult:
         resources=tuple(resources),
         graph=graph,
         groups=tuple(groups),
+        schedule=schedule,
+        schedule_detail=schedule_detail,
         problems=tuple(problems),
     )
+
+
+def _schedule(spec: FleetSpec, agents: list[Any]) -> tuple[bool, str, Problem | None]:
+    """Whether the coupling polyhedron with first-come-first-served orders is non-empty (one LP)."""
+    from scipy.optimize import linprog
+
+    from negotiate.coupling import build_feasible_set, fcfs_orders
+
+    what = "a fleet whose agents' reachable sets admit a schedule with first-come-first-served orders"
+    try:
+        fs = build_feasible_set(agents, spec.resources, fcfs_orders(agents, spec.resources))
+    except ValueError as exc:  # DeadlockError is a ValueError
+        return False, str(exc), Problem(spec.source, "", None, what, str(exc))
+    # Feasibility LP (zero cost) with HiGHS, which scales rows in s and in W itself.
+    rows = fs.A.shape[0] > 0
+    res = linprog(
+        np.zeros(fs.n),
+        A_ub=fs.A if rows else None,
+        b_ub=fs.b if rows else None,
+        bounds=list(zip(fs.lower, fs.upper, strict=True)),
+        method="highs",
+    )
+    if res.status == 0:
+        return True, "a schedule exists with first-come-first-served orders", None
+    found = f"none (linear program over {fs.n} parameters and {fs.A.shape[0]} rows: {res.message})"
+    return False, found, Problem(spec.source, "", None, what, found)
 
 
 def conflict_graph(spec: FleetSpec, models: Mapping[str, Any] | None = None) -> nx.Graph:
@@ -401,6 +443,9 @@ def _text(res: CheckResult) -> str:
         users = list(g.neighbors(r.name))
         if users:
             out.append(f"  {r.name} <- " + ", ".join(_users(g, r.name, spec)))
+    out.append("")
+    state = {True: "feasible", False: "INFEASIBLE", None: "unknown"}[res.schedule]
+    out.append(f"schedule check: {state}: {res.schedule_detail}")
     out.append("")
     if res.problems:
         out.append(f"{len(res.problems)} problem(s):")

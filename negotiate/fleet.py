@@ -24,6 +24,7 @@ IMPORTS THAT MODULE AND RUNS ITS CODE, so only load fleet files you trust. Parsi
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import functools
 import importlib
@@ -153,7 +154,15 @@ _CAPACITY_KEYS = (
     ),
 )
 _COORDINATOR_KEYS = (
-    _Key("method", "choice", "-", _spec_default(CoordinatorSettings, "method"), "coordination method", choices=METHODS),
+    _Key(
+        "method",
+        "choice",
+        "-",
+        _spec_default(CoordinatorSettings, "method"),
+        "coordination method (or a user method registered with negotiate.coordinate.register_method before "
+        "the file is parsed)",
+        choices=METHODS,
+    ),
     _Key(
         "max_rounds",
         "integer",
@@ -712,13 +721,14 @@ def _parse(data: Any, source: str) -> tuple[FleetSpec, str]:
         }
     defaults = _parse_defaults(col, _table(col, data, "defaults", ""), models_used)
     agents = []
-    if agents_t is None or not agents_t:
-        col.add(
-            "agents",
-            None,
-            "at least one agent ([agents.<name>] with a model)",
-            "nothing" if agents_t is None else "an empty table",
-        )
+    if not agents_t:
+        if agents_t is not None or "agents" not in data:  # (a non-table [agents] is reported already)
+            col.add(
+                "agents",
+                None,
+                "at least one agent ([agents.<name>] with a model)",
+                "nothing" if agents_t is None else "an empty table",
+            )
     else:
         for agent_name, table in agents_t.items():
             agent = _parse_agent(col, str(agent_name), table, defaults, resources)
@@ -777,8 +787,18 @@ def _parse_resources(col: _Collector, table: dict[str, Any] | None) -> dict[str,
     return out
 
 
+def _method_names() -> tuple[str, ...]:
+    """Built-in methods, plus user methods registered if the coordinator is loaded (parsing never loads it)."""
+    names = list(METHODS)
+    coordinate = sys.modules.get("negotiate.coordinate")
+    if coordinate is not None and hasattr(coordinate, "method_names"):
+        names += [n for n in coordinate.method_names() if n not in names]
+    return tuple(names)
+
+
 def _parse_coordinator(col: _Collector, table: dict[str, Any] | None) -> CoordinatorSettings | None:
-    conv = _check_table(col, "coordinator", table or {}, _COORDINATOR_KEYS)
+    method_key = dataclasses.replace(_COORDINATOR_KEYS[0], choices=_method_names())
+    conv = _check_table(col, "coordinator", table or {}, (method_key, *_COORDINATOR_KEYS[1:]))
     try:
         return CoordinatorSettings(**conv)
     except (ValueError, TypeError) as exc:

@@ -33,10 +33,16 @@ def two_groups() -> dict:
     """Two trucks at a gate and a tractor on a feeder: two independent groups (invented, parse-only)."""
     zone = {"resource": "gate", "entry": 400.0, "exit": 420.0}
     return {
-        "resources": {"gate": {"kind": "exclusive"}, "feeder": {"kind": "capacity", "limits": [1e5, 1e5]},
-                      "spare": {"kind": "exclusive"}},
-        "agents": {"t1": {"model": "vehicle", "zones": [zone]}, "t2": {"model": "vehicle", "zones": [zone]},
-                   "c1": {"model": "capacity", "resource": "feeder", "tariff": 1.0}},
+        "resources": {
+            "gate": {"kind": "exclusive"},
+            "feeder": {"kind": "capacity", "limits": [1e5, 1e5]},
+            "spare": {"kind": "exclusive"},
+        },
+        "agents": {
+            "t1": {"model": "vehicle", "zones": [zone]},
+            "t2": {"model": "vehicle", "zones": [zone]},
+            "c1": {"model": "capacity", "resource": "feeder", "tariff": 1.0},
+        },
     }
 
 
@@ -108,15 +114,17 @@ class TestConflictGraph:
     def test_graph_from_spec(self):
         """Edges come from the zones / stations / resource of the parameter records."""
         g = conflict_graph(parse_fleet(two_groups()))
-        assert {frozenset(e) for e in g.edges()} == {frozenset(e) for e in [("t1", "gate"), ("t2", "gate"),
-                                                                             ("c1", "feeder")]}
+        assert {frozenset(e) for e in g.edges()} == {
+            frozenset(e) for e in [("t1", "gate"), ("t2", "gate"), ("c1", "feeder")]
+        }
 
 
 class TestProblems:
     def test_parse_errors_listed(self, tmp_path):
         """A file with mistakes gives no spec and every problem, in the FleetError's words."""
         path = tmp_path / "fleet.toml"
-        path.write_text(textwrap.dedent("""
+        path.write_text(
+            textwrap.dedent("""
             [resources.bridge]
             kind = "exclusive"
             [agents.truck-03]
@@ -126,13 +134,15 @@ class TestProblems:
             resource = "brdge"
             entry = 900.0
             exit = 1100.0
-        """), encoding="utf-8")
+        """),
+            encoding="utf-8",
+        )
         res = check_fleet(path)
         assert res.spec is None and not res.ok
         assert isinstance(res.error, FleetError)
         assert str(res.error).splitlines() == [
             f"{path}: [agents.truck-03.zones[0]] key 'resource': expected the name of a declared exclusive "
-            "resource (bridge), found \"brdge\"",
+            'resource (bridge), found "brdge"',
             f"{path}: [agents.truck-03] key 'mass': expected a number > 0 (kg), found -5",
         ]
 
@@ -146,6 +156,32 @@ class TestProblems:
         (problem,) = res.problems
         assert problem.table == "agents.t2" and "non-empty reachable window" in problem.expected
         assert {r.name: r.contended for r in res.resources}["gate"] is None
+
+
+class TestSchedule:
+    @pytest.mark.parametrize("name", NAMES)
+    def test_examples_schedulable(self, checked, name):
+        """The examples stay feasible: a schedule exists with first-come-first-served orders."""
+        res = checked[name]
+        assert res.schedule is True, res.schedule_detail
+
+    def test_gap_too_long(self):
+        """Two trucks that must both cross a gate before their deadlines cannot be 2000 s apart.
+
+        Each reaches the gate (400 m into a 2000 m route) between about 20 s and 350 s after departure
+        (latest_arrival 400 s), so a gap of 2000 s between them cannot be met: the LP is infeasible.
+        """
+        data = two_groups()
+        data["resources"]["gate"]["gap"] = 2000.0
+        data["agents"]["t1"]["stages"] = data["agents"]["t2"]["stages"] = 8
+        res = check_data(data, "fleet.toml")
+        assert res.schedule is False
+        (problem,) = res.problems
+        assert (problem.table, problem.key) == ("", None)
+        assert str(problem).startswith(
+            "fleet.toml: expected a fleet whose agents' reachable sets admit a schedule with "
+            "first-come-first-served orders, found none (linear program over 6 parameters and"
+        )
 
 
 class TestCli:
@@ -162,8 +198,10 @@ class TestCli:
         path.write_text('[agents.a]\nmodel = "bus"\n', encoding="utf-8")
         assert cli.main(["check", str(path)]) == 1
         captured = capsys.readouterr()
-        assert (f"{path}: [agents.a] key 'model': expected one of \"vehicle\", \"machine\", \"capacity\" or "
-                "\"package.module:function\", found \"bus\"") in captured.out
+        assert (
+            f'{path}: [agents.a] key \'model\': expected one of "vehicle", "machine", "capacity" or '
+            '"package.module:function", found "bus"'
+        ) in captured.out
         assert "Traceback" not in captured.out + captured.err
 
     def test_invalid_toml_exits_one(self, tmp_path, capsys):

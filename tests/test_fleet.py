@@ -32,16 +32,31 @@ def small_fleet() -> dict:
             "oven": {"kind": "exclusive", "gap": 60.0},
             "grid": {"kind": "capacity", "limits": [2.0e5, 2.0e5, 1.0e5], "block_length": 600.0},
         },
-        "coordinator": {"method": "gradient", "max_rounds": 20, "tolerance": 1e-5, "order": "swap",
-                        "guard": False, "options": {"step": 0.5}},
+        "coordinator": {
+            "method": "gradient",
+            "max_rounds": 20,
+            "tolerance": 1e-5,
+            "order": "swap",
+            "guard": False,
+            "options": {"step": 0.5},
+        },
         "defaults": {"vehicle": {"route_length": 1200.0, "stages": 8, "mass": 20000.0}},
         "agents": {
-            "truck-01": {"model": "vehicle", "payload": 5000.0, "desired_arrival": 110.0,
-                         "zones": [{"resource": "bridge", "entry": 500.0, "exit": 560.0}]},
-            "mill": {"model": "machine", "work": 100.0, "max_rate": 0.2, "blocks": 4, "weight": 2.0,
-                     "stations": [{"resource": "oven", "duration": 600.0}]},
-            "tractor": {"model": "capacity", "resource": "grid", "tariff": [1.0, 0.8, 1.2],
-                        "battery_capacity": 3.6e8},
+            "truck-01": {
+                "model": "vehicle",
+                "payload": 5000.0,
+                "desired_arrival": 110.0,
+                "zones": [{"resource": "bridge", "entry": 500.0, "exit": 560.0}],
+            },
+            "mill": {
+                "model": "machine",
+                "work": 100.0,
+                "max_rate": 0.2,
+                "blocks": 4,
+                "weight": 2.0,
+                "stations": [{"resource": "oven", "duration": 600.0}],
+            },
+            "tractor": {"model": "capacity", "resource": "grid", "tariff": [1.0, 0.8, 1.2], "battery_capacity": 3.6e8},
         },
     }
 
@@ -108,7 +123,13 @@ class TestParseFleet:
         assert [a.name for a in spec.agents] == ["truck-01", "mill", "tractor"]
         c = spec.coordinator
         assert (c.method, c.max_rounds, c.tolerance, c.order, c.guard, c.options) == (
-            "gradient", 20, 1e-5, "swap", False, {"step": 0.5})
+            "gradient",
+            20,
+            1e-5,
+            "swap",
+            False,
+            {"step": 0.5},
+        )
         truck, mill, tractor = (a.params for a in spec.agents)
         assert isinstance(truck, VehicleParams) and truck.route_length == 1200.0 and truck.payload == 5000.0
         assert spec.agents[1].weight == 2.0 and mill.stations[0].transfer == 0.0
@@ -133,14 +154,31 @@ class TestParseFleet:
         data["agents"]["tractor"]["tariff"] = 1.1
         assert parse_fleet(data).agents[2].params.tariff == (1.1, 1.1, 1.1)
 
+    def test_registered_user_method(self, monkeypatch):
+        """A coordination method registered with the coordinator (when it is loaded) is accepted."""
+        import negotiate.coordinate as coordinate
+
+        monkeypatch.setattr(coordinate, "method_names", lambda: ["bundle", "gradient", "mine", "newton"])
+        data = small_fleet()
+        data["coordinator"]["method"] = "mine"
+        assert parse_fleet(data).coordinator.method == "mine"
+        data["coordinator"]["method"] = "yours"
+        assert problems_of(data) == [
+            'fleet.toml: [coordinator] key \'method\': expected one of "bundle", "gradient", "newton", "mine", '
+            'found "yours"'
+        ]
+
     def test_custom_model_keys_pass_through(self):
         """A user-written model's keys go to its builder unchecked (parsing never imports it)."""
         data = small_fleet()
         data["defaults"]["nowhere.to_be_found:build"] = {"size": 3}
         data["agents"]["heater"] = {"model": "nowhere.to_be_found:build", "power": 2.5e3, "weight": 0.5}
         agent = parse_fleet(data).agents[-1]
-        assert (agent.model, agent.params, agent.weight) == ("nowhere.to_be_found:build",
-                                                              {"size": 3, "power": 2.5e3}, 0.5)
+        assert (agent.model, agent.params, agent.weight) == (
+            "nowhere.to_be_found:build",
+            {"size": 3, "power": 2.5e3},
+            0.5,
+        )
 
 
 class TestMessages:
@@ -149,8 +187,7 @@ class TestMessages:
         data = small_fleet()
         data["agents"]["truck-03"] = copy.deepcopy(data["agents"].pop("truck-01"))
         data["agents"]["truck-03"]["mass"] = -5
-        assert problems_of(data) == [
-            "fleet.toml: [agents.truck-03] key 'mass': expected a number > 0 (kg), found -5"]
+        assert problems_of(data) == ["fleet.toml: [agents.truck-03] key 'mass': expected a number > 0 (kg), found -5"]
 
     def test_all_errors_collected(self):
         """Independent mistakes in different tables and in one record are all reported, in file order."""
@@ -175,19 +212,40 @@ class TestMessages:
         """An unknown key names every valid key of the table and the closest one."""
         data = small_fleet()
         data["agents"]["mill"]["wrok"] = 100.0
-        valid = ", ".join(["weight", "work", "release", "max_rate", "power_coeff", "blocks", "stations",
-                           "base_price", "peak_price", "peak_start", "peak_end", "price_ramp", "due",
-                           "tardiness_weight", "tardiness_smoothing", "horizon"])
-        assert problems_of(data) == [f"fleet.toml: [agents.mill] key 'wrok': expected one of the keys {valid}, "
-                                     "found an unknown key (did you mean 'work'?)"]
+        valid = ", ".join(
+            [
+                "weight",
+                "work",
+                "release",
+                "max_rate",
+                "power_coeff",
+                "blocks",
+                "stations",
+                "base_price",
+                "peak_price",
+                "peak_start",
+                "peak_end",
+                "price_ramp",
+                "due",
+                "tardiness_weight",
+                "tardiness_smoothing",
+                "horizon",
+            ]
+        )
+        assert problems_of(data) == [
+            f"fleet.toml: [agents.mill] key 'wrok': expected one of the keys {valid}, "
+            "found an unknown key (did you mean 'work'?)"
+        ]
 
     def test_unknown_top_level_table(self):
         """A misspelt top-level table is named with the valid ones."""
         data = small_fleet()
         data["coordinater"] = {}
-        assert problems_of(data) == ["fleet.toml: key 'coordinater': expected one of the tables fleet, "
-                                     "resources, coordinator, defaults, agents, found an unknown table "
-                                     "(did you mean 'coordinator'?)"]
+        assert problems_of(data) == [
+            "fleet.toml: key 'coordinater': expected one of the tables fleet, "
+            "resources, coordinator, defaults, agents, found an unknown table "
+            "(did you mean 'coordinator'?)"
+        ]
 
     def test_undeclared_resource(self):
         """A zone naming no declared resource lists the declared ones of the right kind."""
@@ -195,7 +253,8 @@ class TestMessages:
         data["agents"]["truck-01"]["zones"][0]["resource"] = "brige"
         assert problems_of(data) == [
             "fleet.toml: [agents.truck-01.zones[0]] key 'resource': expected the name of a declared exclusive "
-            "resource (bridge, oven), found \"brige\""]
+            'resource (bridge, oven), found "brige"'
+        ]
 
     def test_wrong_kind_of_resource(self):
         """A station on a capacity resource and a capacity user on an exclusive one are both reported."""
@@ -204,9 +263,9 @@ class TestMessages:
         data["agents"]["tractor"]["resource"] = "oven"
         assert problems_of(data) == [
             "fleet.toml: [agents.mill.stations[0]] key 'resource': expected the name of a declared exclusive "
-            "resource (bridge, oven), found \"grid\" (a capacity resource)",
+            'resource (bridge, oven), found "grid" (a capacity resource)',
             "fleet.toml: [agents.tractor] key 'resource': expected the name of a declared capacity resource "
-            "(grid), found \"oven\" (an exclusive resource)",
+            '(grid), found "oven" (an exclusive resource)',
         ]
 
     def test_renamed_resource_breaks_references(self):
@@ -215,7 +274,8 @@ class TestMessages:
         data["resources"]["deck"] = data["resources"].pop("bridge")
         assert problems_of(data) == [
             "fleet.toml: [agents.truck-01.zones[0]] key 'resource': expected the name of a declared exclusive "
-            "resource (oven, deck), found \"bridge\""]
+            'resource (oven, deck), found "bridge"'
+        ]
 
     def test_capacity_grid_mismatch(self):
         """A capacity user off its resource's block grid is told the resource's grid."""
@@ -238,8 +298,8 @@ class TestMessages:
         del data["agents"]["mill"]["model"]
         assert problems_of(data) == [
             "fleet.toml: [agents.truck-01.zones[0]] key 'exit': expected a number (m), found nothing",
-            "fleet.toml: [agents.mill] key 'model': expected one of \"vehicle\", \"machine\", \"capacity\" or "
-            "\"package.module:function\", found nothing",
+            'fleet.toml: [agents.mill] key \'model\': expected one of "vehicle", "machine", "capacity" or '
+            '"package.module:function", found nothing',
             "fleet.toml: [agents.tractor] key 'tariff': expected a number or a list of numbers, found nothing",
         ]
 
@@ -249,7 +309,8 @@ class TestMessages:
         data["agents"]["truck-01"]["zones"].append({"resource": "bridge", "entry": 700.0, "exit": 760.0})
         assert problems_of(data) == [
             "fleet.toml: [agents.truck-01.zones[1]] key 'resource': expected a resource not used by an earlier "
-            "zone of this agent (zones[0] uses it), found \"bridge\""]
+            'zone of this agent (zones[0] uses it), found "bridge"'
+        ]
 
     def test_agent_named_like_resource(self):
         """Agent and resource names share the conflict graph, so they must differ."""
@@ -257,7 +318,8 @@ class TestMessages:
         data["agents"]["oven"] = data["agents"].pop("mill")
         assert problems_of(data) == [
             "fleet.toml: [agents.oven]: expected an agent name different from every resource name, "
-            "found \"oven\" (a resource)"]
+            'found "oven" (a resource)'
+        ]
 
     def test_value_from_defaults(self):
         """A bad value inherited from [defaults.<model>] is reported on the agent, saying where it was set."""
@@ -265,38 +327,44 @@ class TestMessages:
         data["defaults"]["vehicle"]["mass"] = -1.0
         assert problems_of(data) == [
             "fleet.toml: [agents.truck-01] key 'mass': expected a number > 0 (kg), found -1.0 (set in "
-            "[defaults.vehicle])"]
+            "[defaults.vehicle])"
+        ]
 
     def test_defaults_for_unknown_model(self):
         """A defaults table must belong to a model used in the file."""
         data = small_fleet()
         data["defaults"]["vehicles"] = {"mass": 1.0}
-        assert problems_of(data) == ["fleet.toml: [defaults] key 'vehicles': expected a model used in this file "
-                                     "(vehicle, machine, capacity), found an unknown model"]
+        assert problems_of(data) == [
+            "fleet.toml: [defaults] key 'vehicles': expected a model used in this file "
+            "(vehicle, machine, capacity), found an unknown model"
+        ]
 
-    @pytest.mark.parametrize("value, found", [(float("nan"), "nan"), (float("inf"), "inf"), (True, "true"),
-                                              ([1.0], "[1.0]"), ({"a": 1}, "a table (a)")])
+    @pytest.mark.parametrize(
+        "value, found",
+        [(float("nan"), "nan"), (float("inf"), "inf"), (True, "true"), ([1.0], "[1.0]"), ({"a": 1}, "a table (a)")],
+    )
     def test_not_a_finite_number(self, value, found):
         """NaN, infinities, booleans, lists and tables are refused where a number is wanted."""
         data = small_fleet()
         data["agents"]["truck-01"]["payload"] = value
         expected = "a finite number (kg)" if isinstance(value, float) else "a number (kg)"
-        assert problems_of(data) == [f"fleet.toml: [agents.truck-01] key 'payload': expected {expected}, "
-                                     f"found {found}"]
+        assert problems_of(data) == [f"fleet.toml: [agents.truck-01] key 'payload': expected {expected}, found {found}"]
 
     def test_bad_names(self):
         """Names must be bare keys: letters, digits, '-' and '_'."""
         data = small_fleet()
         data["agents"]["truck 2"] = data["agents"]["truck-01"]
-        assert problems_of(data) == ["fleet.toml: [agents] key 'truck 2': expected a name of letters, digits, "
-                                     "'-' and '_', found \"truck 2\""]
+        assert problems_of(data) == [
+            "fleet.toml: [agents] key 'truck 2': expected a name of letters, digits, '-' and '_', found \"truck 2\""
+        ]
 
     def test_no_agents(self):
         """A fleet needs at least one agent."""
         data = small_fleet()
         data["agents"] = {}
-        assert problems_of(data) == ["fleet.toml: [agents]: expected at least one agent ([agents.<name>] with a "
-                                     "model), found an empty table"]
+        assert problems_of(data) == [
+            "fleet.toml: [agents]: expected at least one agent ([agents.<name>] with a model), found an empty table"
+        ]
 
 
 class TestLoadFleet:
@@ -324,7 +392,8 @@ class TestLoadFleet:
     def test_file_named_as_given(self, tmp_path):
         """Messages name the path as the caller wrote it."""
         path = tmp_path / "fleet.toml"
-        path.write_text(textwrap.dedent("""
+        path.write_text(
+            textwrap.dedent("""
             [resources.bridge]
             kind = "exclusive"
             [agents.truck-03]
@@ -334,7 +403,9 @@ class TestLoadFleet:
             resource = "bridge"
             entry = 900.0
             exit = 1100.0
-        """), encoding="utf-8")
+        """),
+            encoding="utf-8",
+        )
         with pytest.raises(FleetError) as info:
             load_fleet(str(path))
         assert str(info.value) == f"{path}: [agents.truck-03] key 'mass': expected a number > 0 (kg), found -5"
@@ -347,8 +418,10 @@ class TestFleetError:
         b = Problem("f.toml", "", None, "valid TOML", "Invalid value (at line 3, column 8)")
         err = FleetError([a, b])
         assert isinstance(err, ValueError)
-        assert str(err) == ("f.toml: [agents.a] key 'mass': expected a number > 0 (kg), found -5\n"
-                            "f.toml: expected valid TOML, found Invalid value (at line 3, column 8)")
+        assert str(err) == (
+            "f.toml: [agents.a] key 'mass': expected a number > 0 (kg), found -5\n"
+            "f.toml: expected valid TOML, found Invalid value (at line 3, column 8)"
+        )
         assert pickle.loads(pickle.dumps(err)).problems == (a, b)
 
     def test_needs_a_problem(self):
@@ -384,8 +457,10 @@ class TestBuildAgents:
             build_agents(parse_fleet(data, "fleet.toml"))
         (problem,) = info.value.problems
         assert (problem.file, problem.table, problem.key) == ("fleet.toml", "agents.truck-01", None)
-        assert str(problem).startswith("fleet.toml: [agents.truck-01]: expected an agent that can be built, with "
-                                       "a non-empty reachable window (check the units:")
+        assert str(problem).startswith(
+            "fleet.toml: [agents.truck-01]: expected an agent that can be built, with "
+            "a non-empty reachable window (check the units:"
+        )
         assert "RuntimeError: vehicle 'truck-01'" in problem.found
 
     def test_horizon_too_short(self):
@@ -402,7 +477,8 @@ class TestBuildAgents:
 
     def test_custom_model(self, tmp_path, monkeypatch):
         """A model named by import path is imported and called with the agent's keys."""
-        (tmp_path / "fleet_test_heater.py").write_text(textwrap.dedent('''
+        (tmp_path / "fleet_test_heater.py").write_text(
+            textwrap.dedent("""
             import casadi as ca
             from negotiate import AgentModel, ParametricNLP, ReachableSet, SlotParam
 
@@ -415,28 +491,40 @@ class TestBuildAgents:
 
             def broken(name, weight=1.0):
                 raise ZeroDivisionError("demand / 0")
-        '''), encoding="utf-8")
+        """),
+            encoding="utf-8",
+        )
         monkeypatch.syspath_prepend(str(tmp_path))
         data = small_fleet()
         data["agents"] = {"heater": {"model": "fleet_test_heater:build", "demand": 1500.0, "weight": 0.5}}
         (model,) = build_agents(parse_fleet(data))
         assert model.model == "heater" and model.weight == 0.5 and model.free_optimum[0] == pytest.approx(1575.0)
-        data["agents"] = {"a": {"model": "fleet_test_heater:broken"}, "b": {"model": "fleet_test_heater:nothing"},
-                          "c": {"model": "no_such_module_here:build"}}
+        data["agents"] = {
+            "a": {"model": "fleet_test_heater:broken"},
+            "b": {"model": "fleet_test_heater:nothing"},
+            "c": {"model": "no_such_module_here:build"},
+        }
         with pytest.raises(FleetError) as info:
             build_agents(parse_fleet(data, "fleet.toml"))
         lines = str(info.value).splitlines()
-        assert lines[0] == ("fleet.toml: [agents.a]: expected an agent that can be built, with a non-empty "
-                            "reachable window, found ZeroDivisionError: demand / 0")
-        assert lines[1] == ("fleet.toml: [agents.b] key 'model': expected a function 'nothing' in module "
-                            "'fleet_test_heater', found \"fleet_test_heater:nothing\"")
-        assert lines[2].startswith("fleet.toml: [agents.c] key 'model': expected an importable module in "
-                                   "'package.module:function', found \"no_such_module_here:build\" "
-                                   "(ModuleNotFoundError:")
+        assert lines[0] == (
+            "fleet.toml: [agents.a]: expected an agent that can be built, with a non-empty "
+            "reachable window, found ZeroDivisionError: demand / 0"
+        )
+        assert lines[1] == (
+            "fleet.toml: [agents.b] key 'model': expected a function 'nothing' in module "
+            "'fleet_test_heater', found \"fleet_test_heater:nothing\""
+        )
+        assert lines[2].startswith(
+            "fleet.toml: [agents.c] key 'model': expected an importable module in "
+            "'package.module:function', found \"no_such_module_here:build\" "
+            "(ModuleNotFoundError:"
+        )
 
     def test_custom_model_on_wrong_resource(self, tmp_path, monkeypatch):
         """A custom model's parameters must name declared resources of the right kind."""
-        (tmp_path / "fleet_test_heater2.py").write_text(textwrap.dedent('''
+        (tmp_path / "fleet_test_heater2.py").write_text(
+            textwrap.dedent("""
             import casadi as ca
             from negotiate import AgentModel, ParametricNLP, ReachableSet, SlotParam
 
@@ -445,14 +533,18 @@ class TestBuildAgents:
                 prob = ParametricNLP({"x": P, "p": share, "f": (P - 1.0) ** 2, "g": share - P}, lbg=0.0)
                 return AgentModel(name, prob, (SlotParam(resource + ".share[0]", resource, "share", "W", 0),),
                                   ReachableSet([0.0], [2.0]), [1.05], weight)
-        '''), encoding="utf-8")
+        """),
+            encoding="utf-8",
+        )
         monkeypatch.syspath_prepend(str(tmp_path))
         data = small_fleet()
         data["agents"] = {"h": {"model": "fleet_test_heater2:build", "resource": "oven"}}
         with pytest.raises(FleetError) as info:
             build_agents(parse_fleet(data, "fleet.toml"))
-        assert str(info.value) == ("fleet.toml: [agents.h]: expected parameter 'oven.share[0]' to name a declared "
-                                   "capacity resource, found \"oven\"")
+        assert str(info.value) == (
+            "fleet.toml: [agents.h]: expected parameter 'oven.share[0]' to name a declared "
+            'capacity resource, found "oven"'
+        )
 
 
 class TestSchemaDoc:

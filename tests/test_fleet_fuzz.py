@@ -17,8 +17,31 @@ from negotiate.fleet import parse_fleet
 from negotiate.spec import FleetSpec
 
 BAD_VALUES = [
-    -1, -1.0, 0, 0.0, -1e308, 1e308, 10**400, -(10**400), float("nan"), float("inf"), float("-inf"), "", "km",
-    "bridge", True, False, None, [], [1.0, "a"], [{}], {}, {"x": 1}, [[1.0]], 2**63, 1e-320,
+    -1,
+    -1.0,
+    0,
+    0.0,
+    -1e308,
+    1e308,
+    10**400,
+    -(10**400),
+    float("nan"),
+    float("inf"),
+    float("-inf"),
+    "",
+    "km",
+    "bridge",
+    True,
+    False,
+    None,
+    [],
+    [1.0, "a"],
+    [{}],
+    {},
+    {"x": 1},
+    [[1.0]],
+    2**63,
+    1e-320,
 ]
 
 
