@@ -363,6 +363,13 @@ def _kind(r: Any) -> str:
 # --------------------------------------------------------------------------------------------------------
 
 
+def _fixed(v: float, unit: str) -> str:
+    """Times to 0.01 s and powers to 1 W (aligned columns); anything else in 6 significant digits."""
+    if not math.isfinite(v):
+        return str(v)
+    return {"s": f"{v:.2f}", "W": f"{v:.0f}"}.get(unit, f"{v:.6g}")
+
+
 def _num(v: float) -> str:
     if not math.isfinite(v):
         return str(v)
@@ -408,7 +415,10 @@ def _text(res: CheckResult) -> str:
         state = f"built in {a.build_time:.2f} s" if a.built else "not built"
         out.append(f"agent {a.name}   model {a.model}   weight {a.weight:g}   {state}")
         if a.params:
-            rows = [[p.name, p.unit, _num(p.lower), _num(p.upper), _num(p.free)] for p in a.params]
+            rows = [
+                [p.name, p.unit, _fixed(p.lower, p.unit), _fixed(p.upper, p.unit), _fixed(p.free, p.unit)]
+                for p in a.params
+            ]
             out.extend(
                 _table(
                     ["parameter", "unit", "reachable lower", "reachable upper", "free optimum"],
