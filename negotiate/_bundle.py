@@ -118,7 +118,7 @@ class ProximalBundle(Method):
             a.append(-max(e, gamma * d2))
         return np.array(G).reshape(-1, c_i.size), np.array(a)
 
-    def master(self) -> tuple[np.ndarray, float]:
+    def master(self) -> tuple[np.ndarray | None, float, str]:
         assert self.center is not None and self.mu is not None
         c = self.center
         n, N = self.lay.n, len(self.lay.names)
@@ -137,28 +137,32 @@ class ProximalBundle(Method):
                 row[n + i] = -1.0
                 rows.append(row)
                 ub.append(float(G_j @ c.P[sl] - a_j))
+        # Variables (u, rho / C): the model's decrease per agent in units of C = max(1, |total(c)|), so that
+        # a small strictly convex term eps/2 (rho/C)^2 keeps the QP well conditioned without biasing rho.
+        C = max(1.0, abs(c.total))
+        R = np.array(rows)
+        R[:, n:] *= C
         A_c = np.hstack([self.feasible.A * s[None, :], np.zeros((self.feasible.A.shape[0], N))])
-        A = np.vstack([np.array(rows), A_c])
+        A = np.vstack([R, A_c])
         uba = np.concatenate([ub, self.feasible.b])
-        eps = 1e-8 / max(1.0, abs(c.total))  # keeps the QP strictly convex; its effect on the trial is negligible
         H = np.zeros((n + N, n + N))
         for i in range(N):
             sl = self.lay.slice(i)
-            H[sl, sl] = self.kappa * self.M[i]
-        H[n:, n:] = eps * np.eye(N)
+            H[sl, sl] = self.kappa * self.M[i] / C
+        H[n:, n:] = 1e-6 * np.eye(N)
         q = np.concatenate([-H[:n, :n] @ uc, c.weights])
         big = 1e20
         lbz = np.concatenate([self.feasible.lower / s, np.full(N, -big)])
         ubz = np.concatenate([self.feasible.upper / s, np.full(N, big)])
         res = solve_qp(H, q, A, np.full(uba.size, -np.inf), uba, lbz, ubz)
         if not res.success:
-            raise RuntimeError(f"bundle master QP failed: {res.message}")
+            return None, float("nan"), res.message
         P = np.clip(res.z[:n] * s, self.feasible.lower, self.feasible.upper)
         model = 0.0
         for i, (G, a) in enumerate(models):
             sl = self.lay.slice(i)
             model += c.weights[i] * (c.reports[i].value + float(np.max(a + G @ (P[sl] - c.P[sl]))))
-        return P, model
+        return P, model, ""
 
     def propose(self, latest: Evaluation) -> Proposal:
         if self.center is None:
@@ -181,7 +185,9 @@ class ProximalBundle(Method):
                 if not latest.ok or latest.total > c.total:
                     self.kappa *= 2.0
                 note = "null" if latest.ok else "null (agent failed)"
-        P, model = self.master()
+        P, model, why = self.master()
+        if P is None:
+            return Proposal(None, float("inf"), False, f"bundle master QP failed: {why}")
         c = self.center
         self.delta = max(c.total - model, 0.0)
         # delta alone shrinks when kappa grows (short steps promise little); the decrease a step with kappa = 1

@@ -1,0 +1,58 @@
+"""Small hand-made agents and fleets for coordinator tests (invented numbers, closed forms derived by hand)."""
+
+from __future__ import annotations
+
+import casadi as ca
+import numpy as np
+
+from negotiate import AgentModel, ParametricNLP, ReachableSet, SlotParam
+
+
+def quadratic_share_agent(name: str, target: float, curvature: float, upper: float = 10.0) -> AgentModel:
+    """An agent drawing x <= share with cost curvature * (x - target)^2: V(share) = curvature * (share - target)^2
+    for share < target, 0 above (a C^1 value function)."""
+    x, p = ca.SX.sym("x"), ca.SX.sym("p")
+    prob = ParametricNLP(
+        {"x": x, "p": p, "f": curvature * (x - target) ** 2, "g": x - p}, ubg=0, g_names=["draw <= share"], name=name
+    )
+    return AgentModel(
+        name, prob, (SlotParam("grid.share[0]", "grid", "share", "W", 0),), ReachableSet([0.0], [upper]), [target + 0.5]
+    )
+
+
+def slot_agent(
+    name: str, want_enter: float, duration: float, stiffness: float, resources: list[str], earliest: float | None = None
+) -> AgentModel:
+    """An agent with a slot on each resource in ``resources`` (in that order): it wants to enter the first at
+    ``want_enter``, stays ``duration`` s on each and moves on at once; cost stiffness * sum (enter - wanted)^2.
+
+    Decision variables are the entry times it plans (x), tied to the offered slots by equalities, so
+    V(p) = stiffness * sum_k (enter_k - want_k)^2 + (dwell terms): smooth, with known gradient. ``earliest``
+    (default: 100 s before the wish) is the earliest entry its reachable set allows."""
+    k = len(resources)
+    x = ca.SX.sym("x", 2 * k)
+    p = ca.SX.sym("p", 2 * k)
+    f = 0
+    g = [x - p]
+    for j in range(k):
+        want = want_enter + j * duration
+        f += stiffness * (x[2 * j] - want) ** 2 + 0.1 * stiffness * (x[2 * j + 1] - x[2 * j] - duration) ** 2
+    prob = ParametricNLP({"x": x, "p": p, "f": f, "g": ca.vertcat(*g)}, lbg=0, ubg=0, name=name)
+    params = []
+    for r in resources:
+        params += [SlotParam(f"{r}.enter", r, "enter"), SlotParam(f"{r}.leave", r, "leave")]
+    lower = np.full(2 * k, want_enter - 100.0 if earliest is None else earliest)
+    upper = np.full(2 * k, want_enter + 200.0)
+    rows, b = [], []
+    for j in range(k):  # dwell at least the duration; next slot after this one
+        r = np.zeros(2 * k)
+        r[2 * j], r[2 * j + 1] = 1.0, -1.0
+        rows.append(r)
+        b.append(-duration)
+        if j + 1 < k:
+            r = np.zeros(2 * k)
+            r[2 * j + 1], r[2 * j + 2] = 1.0, -1.0
+            rows.append(r)
+            b.append(0.0)
+    free = np.ravel([[want_enter + j * duration, want_enter + (j + 1) * duration] for j in range(k)])
+    return AgentModel(name, prob, tuple(params), ReachableSet(lower, upper, np.array(rows), np.array(b)), free)

@@ -1,0 +1,287 @@
+"""The coordinator: agreement with closed forms and with the centralized IPOPT solve, the nonsmooth guard,
+orders and deadlocks, failed agents, user methods."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import casadi as ca
+import numpy as np
+import pytest
+from fleets import quadratic_share_agent, slot_agent
+
+from negotiate import AgentModel, ParametricNLP, ReachableSet, SlotParam
+from negotiate.centralized import solve_centralized
+from negotiate.coordinate import Evaluation, Method, Proposal, coordinate, register_method
+from negotiate.coupling import DeadlockError, build_feasible_set
+from negotiate.orders import search_orders
+from negotiate.spec import CapacityResource, CoordinatorSettings, ExclusiveResource
+
+METHODS = ["bundle", "gradient", "newton"]
+
+
+def settings(method: str, **kw) -> CoordinatorSettings:
+    return CoordinatorSettings(
+        method=method, max_rounds=kw.pop("max_rounds", 80), tolerance=kw.pop("tolerance", 1e-9), **kw
+    )
+
+
+class TestClosedForm:
+    """Quadratic agents sharing one capacity: equal marginal values (KKT by hand, common practice)."""
+
+    targets = np.array([4.0, 3.0, 5.0])
+    curvatures = np.array([1.0, 2.0, 0.5])
+    capacity = 9.0
+
+    def expected(self) -> np.ndarray:
+        # s_i = t_i - lam / (2 c_i), sum s_i = C  =>  lam = 2 (sum t - C) / sum(1 / c)
+        lam = 2 * (self.targets.sum() - self.capacity) / np.sum(1 / self.curvatures)
+        return self.targets - lam / (2 * self.curvatures)
+
+    @pytest.mark.parametrize("method", METHODS)
+    def test_shares_match_closed_form(self, method):
+        """Every method finds the equal-marginal-value shares of the closed form."""
+        agents = [
+            quadratic_share_agent(f"a{i}", t, c)
+            for i, (t, c) in enumerate(zip(self.targets, self.curvatures, strict=True))
+        ]
+        res = coordinate(agents, [CapacityResource("grid", (self.capacity,))], settings(method, max_rounds=200))
+        assert res.success, res.message
+        # 1e-5: the stopping tolerance 1e-9 on the relative predicted decrease bounds the distance to ~sqrt(1e-9)
+        np.testing.assert_allclose(res.P, self.expected(), atol=1e-4)
+
+
+def three_trucks():
+    from agents import VehicleParams, ZoneParams, build_vehicle
+
+    zone = ZoneParams("bridge", entry=400.0, exit=460.0, speed_limit=6.0)
+    return [
+        build_vehicle(
+            f"truck-{k}",
+            VehicleParams(
+                route_length=1000.0,
+                zones=(zone,),
+                stages=16,
+                departure=8.0 * k,
+                desired_arrival=95.0 + 8 * k,
+                latest_arrival=400.0,
+                initial_speed=8.0,
+            ),
+        )  # fmt: skip
+        for k in range(3)
+    ]
+
+
+@pytest.fixture(scope="module")
+def trucks():
+    return three_trucks()
+
+
+class TestAgainstCentralized:
+    """The coordinated schedule has the cost of the monolithic IPOPT solve for the same orders."""
+
+    @pytest.mark.parametrize("method", ["bundle", "newton"])
+    def test_trucks_on_a_bridge(self, trucks, method):
+        """Three trucks on one bridge: coordinated total within 1e-6 of the centralized optimum."""
+        bridge = [ExclusiveResource("bridge", gap=5.0)]
+        res = coordinate(trucks, bridge, settings(method, tolerance=1e-8))
+        assert res.evaluation.ok, res.message
+        ref = solve_centralized(trucks, res.evaluation.feasible)
+        assert ref.success, ref.message
+        # 1e-6 relative: both stop on tolerances of about 1e-8 on the relative decrease
+        assert abs(res.total - ref.total) <= 1e-6 * abs(ref.total), (res.total, ref.total)
+
+    def test_gradient_method_reaches_the_optimum(self, trucks):
+        """Projected gradient gets within 1e-4 of the centralized optimum (it is the slow one)."""
+        bridge = [ExclusiveResource("bridge", gap=5.0)]
+        res = coordinate(trucks, bridge, settings("gradient", max_rounds=150, tolerance=1e-8))
+        ref = solve_centralized(trucks, res.evaluation.feasible)
+        assert res.total - ref.total <= 1e-4 * abs(ref.total)
+
+    def test_newton_needs_fewer_rounds_than_gradient(self, trucks):
+        """With every certificate smooth, value Hessians save rounds over the gradient method."""
+        bridge = [ExclusiveResource("bridge", gap=5.0)]
+        newton = coordinate(trucks, bridge, settings("newton", tolerance=1e-8))
+        grad = coordinate(trucks, bridge, settings("gradient", tolerance=1e-8, max_rounds=150))
+        assert newton.success
+        assert newton.rounds < grad.rounds, (newton.rounds, grad.rounds)
+
+    def test_schedule_respects_the_gap(self, trucks):
+        """Consecutive users of the bridge are at least the gap apart."""
+        bridge = [ExclusiveResource("bridge", gap=5.0)]
+        res = coordinate(trucks, bridge, settings("bundle", tolerance=1e-8))
+        params = res.params()
+        order = res.orders["bridge"]
+        for a, b in zip(order, order[1:], strict=False):
+            assert params[b][0] - params[a][1] >= 5.0 - 1e-6
+
+
+def kink_agent(name: str = "kinked") -> AgentModel:
+    """V(p) = 0.75 p - min(p, 1): slopes -0.25 and 0.75, minimum exactly at the kink p = 1 (LICQ fails there)."""
+    x, p = ca.SX.sym("x"), ca.SX.sym("p")
+    prob = ParametricNLP(
+        {"x": x, "p": p, "f": 0.75 * p - x, "g": ca.vertcat(x - p, x)}, ubg=[0, 1], g_names=["x <= share", "x <= 1"]
+    )
+    return AgentModel(name, prob, (SlotParam("grid.share[0]", "grid", "share", "W", 0),), ReachableSet([0], [2]), [1.0])
+
+
+def min_agent(name: str = "kinked") -> AgentModel:
+    """V(p) = -min(p, 1): the capacity is worth 1 per unit up to 1, nothing beyond."""
+    x, p = ca.SX.sym("x"), ca.SX.sym("p")
+    prob = ParametricNLP(
+        {"x": x, "p": p, "f": -x, "g": ca.vertcat(x - p, x)}, ubg=[0, 1], g_names=["x <= share", "x <= 1"]
+    )
+    return AgentModel(name, prob, (SlotParam("grid.share[0]", "grid", "share", "W", 0),), ReachableSet([0], [2]), [1.5])
+
+
+class TestNonsmoothGuard:
+    def test_plain_gradient_stalls_at_a_kink_guarded_converges(self):
+        """At a kink that is the optimum, the plain line search fails; the guard's one-sided gradients prove it."""
+        grid = [CapacityResource("grid", (2.0,))]
+        plain = coordinate([kink_agent()], grid, settings("gradient", guard=False, max_rounds=60))
+        guarded = coordinate([kink_agent()], grid, settings("gradient", guard=True, max_rounds=60))
+        assert not plain.success  # line search fails: no descent along the split multiplier's gradient
+        assert guarded.success and guarded.rounds == 0
+        np.testing.assert_allclose(guarded.P, [1.0], atol=1e-9)
+        # The one-sided gradients of V at 1 are 0.75 (x <= 1 binds) and -0.25 (x <= share binds), by hand.
+        grads = sorted(float(g[0]) for g in guarded.evaluation.reports[0].gradients)
+        np.testing.assert_allclose([grads[0], grads[-1]], [-0.25, 0.75], atol=1e-9)
+
+    def test_plain_gradient_oscillates_across_a_kink_guarded_converges(self):
+        """Two agents share 2 units; the optimum p = q = 1 sits on a kink of one agent's value function."""
+        grid = [CapacityResource("grid", (2.0,))]
+        agents = [min_agent(), quadratic_share_agent("smooth", 2.0, 0.25, upper=2.0)]
+        plain = coordinate(agents, grid, settings("gradient", guard=False, max_rounds=60, tolerance=1e-8))
+        guarded = coordinate(agents, grid, settings("gradient", guard=True, max_rounds=60, tolerance=1e-8))
+        assert plain.status in ("max-rounds", "failed"), plain.message  # oscillates, or its line search gives up
+        assert guarded.success
+        # optimum by hand: marginal value 1 for the first agent up to p = 1, 2 * 0.25 * (2 - q) = 0.5 at q = 1
+        np.testing.assert_allclose(guarded.P, [1.0, 1.0], atol=1e-5)
+        np.testing.assert_allclose(guarded.total, -0.75, atol=1e-6)
+
+    def test_bundle_takes_one_sided_gradients_as_cuts(self):
+        """The bundle method settles the kink at once with the guard's cuts."""
+        grid = [CapacityResource("grid", (2.0,))]
+        res = coordinate([kink_agent()], grid, settings("bundle"))
+        assert res.success and res.rounds == 0
+        np.testing.assert_allclose(res.P, [1.0], atol=1e-9)
+
+
+class TestOrders:
+    def two_way_agents(self):
+        return [slot_agent("A", 0.0, 10.0, 1.0, ["r1", "r2"]), slot_agent("B", 5.0, 10.0, 1.0, ["r2", "r1"])]
+
+    def test_cycle_is_a_deadlock_naming_agents_and_resources(self):
+        """Opposite orders on two resources crossed in opposite sequences form a cycle: rejected, named."""
+        agents = self.two_way_agents()
+        res = [ExclusiveResource("r1"), ExclusiveResource("r2")]
+        with pytest.raises(DeadlockError) as err:
+            build_feasible_set(agents, res, {"r1": ["B", "A"], "r2": ["A", "B"]})
+        msg = str(err.value)
+        assert "deadlock" in msg
+        for token in ("A on r1", "A on r2", "B on r1", "B on r2"):
+            assert token in msg
+
+    def test_consistent_orders_pass(self):
+        """The same agents with compatible orders give a feasible set."""
+        agents = self.two_way_agents()
+        res = [ExclusiveResource("r1"), ExclusiveResource("r2")]
+        fs = build_feasible_set(agents, res, {"r1": ["A", "B"], "r2": ["A", "B"]})
+        assert fs.A.shape[1] == 8
+
+    def test_swap_improves_on_first_come_first_served(self):
+        """A stiff late agent and a soft early one: swapping them lowers the total; exhaustive agrees."""
+        agents = [
+            slot_agent("soft", 0.0, 10.0, 0.01, ["r"], earliest=0.0),
+            slot_agent("stiff", 2.0, 10.0, 10.0, ["r"], earliest=2.0),
+        ]
+        res = [ExclusiveResource("r", gap=1.0)]
+        st = settings("bundle", tolerance=1e-10)
+
+        def run(orders, start):
+            r = coordinate(agents, res, st, orders=orders, start=start)
+            return r.total, r.P, r
+
+        fcfs, o1, _ = search_orders(agents, res, "fcfs", run)
+        swap, o2, trials = search_orders(agents, res, "swap", run)
+        exh, o3, _ = search_orders(agents, res, "exhaustive", run)
+        assert o1 == {"r": ["soft", "stiff"]} and o2 == {"r": ["stiff", "soft"]} == o3
+        assert swap.total < fcfs.total
+        # by hand: stiff enters at 2 (its wish and earliest), soft waits until 13 => soft pays 0.01 * 13^2
+        np.testing.assert_allclose(swap.total, 0.01 * 13.0**2, rtol=1e-6)
+        assert any(t.kept for t in trials[1:])
+
+    def test_exhaustive_refuses_large_resources(self):
+        """Exhaustive search is limited to 7 users per resource."""
+        agents = [slot_agent(f"a{k}", 10.0 * k, 5.0, 1.0, ["r"]) for k in range(8)]
+        res = [ExclusiveResource("r")]
+
+        def run(orders, start):
+            return 0.0, np.zeros(16), None
+
+        with pytest.raises(ValueError, match="limited to 7 users"):
+            search_orders(agents, res, "exhaustive", run)
+
+
+def fragile_agent() -> AgentModel:
+    """Its NLP is infeasible for share > 1.5 although its (wrong) reachable set claims up to 2."""
+    x, p = ca.SX.sym("x"), ca.SX.sym("p")
+    prob = ParametricNLP({"x": x, "p": p, "f": (x - 3) ** 2, "g": ca.vertcat(x - p, p - 1.5)}, ubg=[0, 0])
+    return AgentModel(
+        "fragile", prob, (SlotParam("grid.share[0]", "grid", "share", "W", 0),), ReachableSet([0], [2]), [1.0]
+    )
+
+
+class TestFailedAgents:
+    @pytest.mark.parametrize("method", METHODS)
+    def test_failed_solves_are_reported_not_used(self, method):
+        """An agent that fails inside its claimed window never crashes the run or lends a gradient."""
+        grid = [CapacityResource("grid", (5.0,))]
+        res = coordinate([fragile_agent()], grid, settings(method, max_rounds=40, tolerance=1e-8))
+        assert res.evaluation.ok  # the incumbent is a converged point
+        assert any(h.failed for h in res.history)  # the failures were seen and reported
+        assert res.P[0] <= 1.5 + 1e-9
+        # The optimum sits on the edge where solves start to fail: a method learns of that edge only through
+        # failed trials and halved steps, so its distance to it is limited by the halvings it had time for.
+        np.testing.assert_allclose(res.P, [1.5], atol=1e-2)
+
+
+@register_method
+class HalvingGradient(Method):
+    """A deliberately simple user method: projected gradient steps whose length halves after a rise."""
+
+    name = "test-halving"
+
+    def start(self, first: Evaluation) -> None:
+        self.incumbent = first
+        self.step = 1.0 / max(1e-12, float(np.max(np.abs(first.gradient * self.feasible.scale))))
+
+    def propose(self, latest: Evaluation) -> Proposal:
+        if latest.ok and latest.total < self.incumbent.total:
+            self.incumbent = latest
+        elif latest is not self.incumbent:
+            self.step *= 0.5
+        x = self.incumbent
+        nxt = self.feasible.project(x.P - self.step * self.feasible.scale**2 * x.gradient)
+        measure = float(x.gradient @ (x.P - nxt)) / max(1.0, abs(x.total))
+        return Proposal(nxt, measure, converged=measure < self.settings.tolerance)
+
+
+class TestUserMethods:
+    def test_registered_method_runs_through_the_same_engine(self):
+        """A Method subclass registered by name coordinates like a built-in one."""
+        agents = [quadratic_share_agent(f"a{i}", t, c) for i, (t, c) in enumerate([(4, 1), (3, 2), (5, 0.5)])]
+        res = coordinate(
+            agents, [CapacityResource("grid", (9.0,))], settings("test-halving", max_rounds=300, tolerance=1e-10)
+        )
+        np.testing.assert_allclose(res.P, TestClosedForm().expected(), atol=1e-3)
+        assert res.method == "test-halving"
+
+    def test_unknown_method_is_named(self):
+        """An unknown method name lists the known ones."""
+        with pytest.raises(ValueError, match="unknown coordination method 'nope'"):
+            coordinate(
+                [quadratic_share_agent("a", 1, 1)],
+                [CapacityResource("grid", (1.0,))],
+                replace(settings("bundle"), method="nope"),
+            )
