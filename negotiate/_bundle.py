@@ -33,7 +33,9 @@ centre's total minus the model's value at the trial), null step otherwise. The p
 is halved after a serious step that realised most of the prediction and doubled after a trial that
 increased the total or made an agent fail. Stopping measure: the larger of ``delta`` and
 ``max(kappa, 1)^2 d.M.d / 2`` for the step ``d`` taken (what the step would promise without the extra
-damping, which does not vanish just because ``kappa`` grew), relative to ``max(1, |total(c)|)``.
+damping, which does not vanish just because ``kappa`` grew), relative to ``max(1, |total(c)|)``. Before
+it stops, the method resets the metric to that of a plain first step from the centre and asks once more
+(a learned metric can overstate the curvature on kinked or flat pieces and so promise too little).
 
 Options: ``serious`` (m = 0.1), ``downshift`` (gamma relative to the initial metric scale, 1e-3),
 ``max_cuts`` (per agent, 25), ``first_step`` (0.1, scaled length of the first step).
@@ -65,6 +67,7 @@ class ProximalBundle(Method):
         self.kappa = 1.0
         self.delta = float("inf")
         self.waiting = False
+        self.reset_since_serious = False
         self.M: list[np.ndarray] = []
         self.last: list[tuple[np.ndarray, np.ndarray] | None] = [None] * len(self.lay.names)
         if self.center is not None:
@@ -180,11 +183,16 @@ class ProximalBundle(Method):
                     self.kappa = max(0.5 * self.kappa, 1e-3)
                 self.center = latest
                 self.incumbent = latest
+                self.reset_since_serious = False
                 note = "serious"
             else:
                 if not latest.ok or latest.total > c.total:
                     self.kappa *= 2.0
                 note = "null" if latest.ok else "null (agent failed)"
+        return self.propose_from_center(note)
+
+    def propose_from_center(self, note: str) -> Proposal:
+        """Solve the master around the current centre and return the trial (or stop)."""
         P, model, why = self.master()
         if P is None:
             return Proposal(None, float("inf"), False, f"bundle master QP failed: {why}")
@@ -198,6 +206,14 @@ class ProximalBundle(Method):
             sl = self.lay.slice(i)
             quad += 0.5 * max(self.kappa, 1.0) ** 2 * float(d[sl] @ self.M[i] @ d[sl])
         measure = max(self.delta, quad) / max(1.0, abs(c.total))
+        if self.tolerance_reached(measure) and not self.reset_since_serious:
+            # A learned metric can overstate the curvature (on kinked or flat pieces) and so promise too
+            # little: before stopping, ask again with the plain metric of a first step from here.
+            self.reset_since_serious = True
+            mu = max(float(np.linalg.norm(c.gradient * self.s)) / self.first_step, 1e-12)
+            self.M = [mu * np.eye(k) for k in self.lay.sizes]
+            self.kappa = 1.0
+            return self.propose_from_center("metric reset before stopping")
         if self.tolerance_reached(measure):
             return Proposal(None, measure, True, "predicted decrease below tolerance")
         self.waiting = True

@@ -87,11 +87,17 @@ def solve_qp(
     z0: np.ndarray | None = None,
 ) -> QPResult:
     """Solve the QP above (dense inputs; ``H`` symmetric positive definite)."""
+    # Rows scaled to unit length (the solution is unchanged, the multipliers are scaled back): the rows mix
+    # seconds and watts and the solvers' tolerances are absolute.
+    A = np.asarray(A, dtype=float)
+    norms = np.linalg.norm(A, axis=1) if A.size else np.zeros(A.shape[0])
+    r = np.where(norms > 0, norms, 1.0)
+    A, lba, uba = A / r[:, None], np.asarray(lba, dtype=float) / r, np.asarray(uba, dtype=float) / r
     Hd, Ad = ca.densify(ca.DM(H)), ca.densify(ca.DM(A))
     res = _attempt("daqp", Hd, Ad, H, g, A, lba, uba, lbz, ubz, z0)
     if not res.success:
         res = _attempt("qpoases", Hd, Ad, H, g, A, lba, uba, lbz, ubz, z0)
-    return res
+    return QPResult(res.z, res.lam_a / r, res.value, res.success, res.message)
 
 
 def _attempt(plugin: str, Hd: ca.DM, Ad: ca.DM, H: np.ndarray, g: np.ndarray, A: np.ndarray, lba: np.ndarray,
