@@ -224,7 +224,8 @@ def _clean(v: Any) -> Any:
 
 
 def write_outputs(run: RunResult, out_dir: str | Path) -> list[Path]:
-    """Write ``schedule.csv`` and ``run.json`` into ``out_dir`` (created if needed); return the paths."""
+    """Write ``schedule.csv``, ``run.json``, the files of :mod:`negotiate.results` (history, prices, agents,
+    resources, trajectories) and ``report.html`` into ``out_dir`` (created if needed); return the paths."""
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     sched = out / "schedule.csv"
@@ -244,4 +245,8 @@ def write_outputs(run: RunResult, out_dir: str | Path) -> list[Path]:
     tmp = summary.with_suffix(".json.tmp")
     tmp.write_text(json.dumps(_clean(run.summary()), indent=2) + "\n")
     tmp.replace(summary)
-    return [sched, summary]
+    from negotiate.report import write_report
+    from negotiate.results import write_result_files
+
+    files = write_result_files(run, out)
+    return [sched, summary, *files, write_report(out)]

@@ -1,0 +1,382 @@
+"""Charts of a run, a sweep and a method comparison, drawn with matplotlib into PNG bytes.
+
+Every function takes plain rows (as read back by :mod:`negotiate.results`, or made by :mod:`negotiate.sweep`
+and :mod:`negotiate.compare`) and returns a :class:`matplotlib.figure.Figure`; :func:`png` turns one into
+PNG bytes. The look is deliberately plain: white background, light grid, one colour-blind-safe palette
+(Okabe and Ito's eight colours), SI units on every axis (SI prefixes where numbers are large).
+"""
+
+from __future__ import annotations
+
+import functools
+import io
+from collections.abc import Callable, Mapping, Sequence
+from typing import Any
+
+import matplotlib
+
+matplotlib.use("Agg")  # no display: files only
+
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+from matplotlib.figure import Figure  # noqa: E402
+from matplotlib.patches import Patch  # noqa: E402
+from matplotlib.ticker import EngFormatter, ScalarFormatter  # noqa: E402
+
+__all__ = [
+    "PALETTE",
+    "capacity_chart",
+    "compare_chart",
+    "convergence_chart",
+    "png",
+    "slot_chart",
+    "sweep_chart",
+    "trajectory_chart",
+]
+
+# Okabe & Ito's colour-blind-safe palette, ordered so that neighbours differ strongly (black kept for limits).
+PALETTE = ("#0072B2", "#E69F00", "#009E73", "#D55E00", "#CC79A7", "#56B4E9", "#F0E442", "#000000")
+INK = "#222222"
+GRID = "#DDDDDD"
+
+_STYLE = {
+    "figure.facecolor": "white",
+    "axes.facecolor": "white",
+    "axes.edgecolor": "#888888",
+    "axes.grid": True,
+    "grid.color": GRID,
+    "grid.linewidth": 0.6,
+    "axes.axisbelow": True,
+    "axes.spines.top": False,
+    "axes.spines.right": False,
+    "axes.titlesize": 11,
+    "axes.titleweight": "bold",
+    "axes.labelsize": 10,
+    "axes.labelcolor": INK,
+    "xtick.color": INK,
+    "ytick.color": INK,
+    "font.size": 9.5,
+    "legend.frameon": False,
+    "legend.fontsize": 8.5,
+    "axes.prop_cycle": matplotlib.cycler(color=PALETTE[:7]),
+}
+
+
+def _styled(fn: Callable[..., Figure]) -> Callable[..., Figure]:
+    """Draw the whole figure (legends and titles included) under the module's style."""
+
+    @functools.wraps(fn)
+    def wrapper(*args: Any, **kwargs: Any) -> Figure:
+        with plt.rc_context(_STYLE):
+            return fn(*args, **kwargs)
+
+    return wrapper
+
+
+def colour(i: int) -> str:
+    """The i-th palette colour (black excluded, cycling)."""
+    return PALETTE[i % 7]
+
+
+def _figure(width: float, height: float, ncols: int = 1, nrows: int = 1, **kw: Any) -> tuple[Figure, Any]:
+    fig = Figure(figsize=(width, height), dpi=100, layout="constrained")
+    axes = fig.subplots(nrows, ncols, squeeze=False, **kw)
+    for ax in axes.ravel():
+        _style(ax)
+    return fig, axes
+
+
+def _style(ax: Any) -> None:
+    for k, v in (("top", False), ("right", False)):
+        ax.spines[k].set_visible(v)
+    ax.grid(True, color=GRID, linewidth=0.6)
+    ax.set_axisbelow(True)
+
+
+def png(fig: Figure) -> bytes:
+    """The figure as PNG bytes (100 dpi)."""
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=100, facecolor="white")
+    return buf.getvalue()
+
+
+def _eng(unit: str) -> EngFormatter:
+    return EngFormatter(unit=unit, sep=" " if unit else "")
+
+
+def _axis_format(ax: Any, unit: str) -> None:
+    """SI prefixes for power and energy (W, J); plain numbers without offset for the other units."""
+    if unit in ("W", "J"):
+        ax.yaxis.set_major_formatter(_eng(unit))
+    else:
+        ax.yaxis.set_major_formatter(ScalarFormatter(useOffset=False))
+
+
+# ---------------------------------------------------------------------------------------------------------
+# run charts
+
+
+@_styled
+def slot_chart(resource: str, slots: Sequence[Any], gap: float, free: Mapping[str, tuple[float, float]] | None = None
+               ) -> Figure:  # fmt: skip
+    """Slots on one exclusive resource: time on x, one row per user (in order of entry).
+
+    ``slots`` have ``agent``, ``enter`` and ``leave`` (s); ``gap`` (s) is drawn after each slot as the
+    required clearance; ``free`` optionally maps an agent to its free-optimum (enter, leave), drawn as an
+    outline so that the shift is visible.
+    """
+    rows = sorted(slots, key=lambda r: r.enter)
+    n = len(rows)
+    fig, axes = _figure(9.0, 0.9 + 0.42 * max(n, 1))
+    ax = axes[0, 0]
+    for i, r in enumerate(rows):
+        y = n - 1 - i
+        c = colour(i)
+        ax.barh(y, r.leave - r.enter, left=r.enter, height=0.6, color=c, edgecolor="white")
+        if gap > 0:
+            ax.barh(y, gap, left=r.leave, height=0.6, color="none", edgecolor="#777777", hatch="////", linewidth=0)
+        if free and r.agent in free:
+            f0, f1 = free[r.agent]
+            ax.barh(y, f1 - f0, left=f0, height=0.84, color="none", edgecolor=INK, linewidth=0.9, linestyle=":")
+    ax.set_yticks(range(n), [r.agent for r in reversed(rows)])
+    ax.set_ylim(-0.7, n - 0.3)
+    ax.grid(False, axis="y")
+    ax.set_xlabel("time (s)")
+    ax.set_title(f"{resource}: slots in order of entry")
+    handles = [Patch(facecolor=colour(0), label="coordinated slot")]
+    if gap > 0:
+        handles.append(Patch(facecolor="none", edgecolor="#777777", hatch="////", label=f"required gap {gap:g} s"))
+    if free:
+        handles.append(Patch(facecolor="none", edgecolor=INK, linestyle=":", label="slot at free optimum"))
+    ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.14 - 0.6 / max(n, 1)), ncols=3)
+    return fig
+
+
+@_styled
+def capacity_chart(resource: str, unit: str, blocks: Sequence[Any], shares: Sequence[Any]) -> Figure:
+    """Stacked shares per block of one capacity resource against its limit.
+
+    ``blocks`` have ``block``, ``start_s``, ``end_s`` and ``limit``; ``shares`` have ``agent``, ``enter``
+    (block start, s) and ``share`` (in ``unit``).
+    """
+    blocks = sorted(blocks, key=lambda b: b.start_s)
+    starts = np.array([b.start_s for b in blocks])
+    width = np.array([b.end_s - b.start_s for b in blocks])
+    users = list(dict.fromkeys(s.agent for s in shares))
+    fig, axes = _figure(9.0, 3.6)
+    ax = axes[0, 0]
+    bottom = np.zeros(len(blocks))
+    for i, u in enumerate(users):
+        h = np.zeros(len(blocks))
+        for s in shares:
+            if s.agent == u:
+                k = int(np.argmin(np.abs(starts - s.enter)))
+                h[k] += s.share
+        ax.bar(starts, h, width=width * 0.92, bottom=bottom, align="edge", color=colour(i), label=u,
+               edgecolor="white", linewidth=0.5)  # fmt: skip
+        bottom += h
+    lim = np.array([b.limit for b in blocks])
+    edges = np.r_[starts, starts[-1] + width[-1]]
+    ax.stairs(lim, edges, color=PALETTE[7], linewidth=1.6, label="limit", baseline=None)
+    ax.yaxis.set_major_formatter(_eng(unit))
+    ax.set_xlabel("time (s)")
+    ax.set_ylabel(f"share ({unit})")
+    ax.set_title(f"{resource}: shares per block and limit")
+    ax.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0))
+    return fig
+
+
+@_styled
+def convergence_chart(history: Sequence[Any]) -> Figure:
+    """Fleet total (incumbent and trial) and the method's stopping measure (log scale) per round."""
+    fig, axes = _figure(9.0, 3.2, ncols=2)
+    k = np.array([h.round for h in history])
+    best = np.array([h.best_total for h in history], dtype=float)
+    trial = np.array([h.trial_total for h in history], dtype=float)
+    meas = np.array([h.measure for h in history], dtype=float)
+    ax = axes[0, 0]
+    ok = np.isfinite(trial)
+    ax.plot(k[ok], trial[ok], "o", color=PALETTE[1], markersize=4, label="trial point")
+    okb = np.isfinite(best)
+    ax.plot(k[okb], best[okb], "-", color=PALETTE[0], linewidth=1.8, label="best so far")
+    ax.set_xlabel("round")
+    ax.set_ylabel("weighted total cost")
+    ax.yaxis.set_major_formatter(_eng(""))
+    ax.set_title("total cost")
+    ax.legend()
+    ax = axes[0, 1]
+    pos = np.isfinite(meas) & (meas > 0)
+    if pos.any():
+        ax.semilogy(k[pos], meas[pos], "s-", color=PALETTE[2], markersize=4)
+    ax.set_xlabel("round")
+    ax.set_ylabel("stopping measure (relative)")
+    ax.set_title("stopping measure (log scale)")
+    for ax in axes.ravel():
+        ax.xaxis.get_major_locator().set_params(integer=True)
+    return fig
+
+
+# Panels drawn for the trajectory columns of the built-in model families (first match wins).
+_PANELS: tuple[tuple[tuple[str, str], tuple[str, str]], ...] = (
+    (("position_m", "position"), ("speed_m_per_s", "speed")),
+    (("rate_kg_per_s", "processing rate"), ("progress_kg", "progress")),
+    (("power_W", "grid power"), ("soc", "state of charge")),
+)
+_UNITS = {"_m_per_s": "m/s", "_kg_per_s": "kg/s", "_kg": "kg", "_W": "W", "_m": "m", "_N": "N", "_J": "J", "_s": "s"}
+_STEPPED = {"rate_kg_per_s", "power_W", "force_N"}  # zero-order hold per stage or block
+
+
+def _unit_of(col: str) -> tuple[str, str]:
+    for suffix, unit in _UNITS.items():
+        if col.endswith(suffix):
+            return col[: -len(suffix)].replace("_", " "), unit
+    return col.replace("_", " "), ""
+
+
+@_styled
+def trajectory_chart(agent: str, series: Mapping[str, np.ndarray], slots: Sequence[Any]) -> Figure:
+    """An agent's trajectories over time with its slots shaded (and its capacity shares as steps).
+
+    ``series`` maps unit-suffixed column names to arrays (``time_s`` first); ``slots`` are the agent's
+    schedule rows (``resource``, ``enter``, ``leave``, ``share``).
+    """
+    t = np.asarray(series["time_s"], dtype=float)
+    cols = [c for c in series if c != "time_s"]
+    chosen = None
+    for a, b in _PANELS:
+        if a[0] in series and b[0] in series:
+            chosen = [a, b]
+            break
+    if chosen is None:
+        chosen = [(c, _unit_of(c)[0]) for c in cols[:2]]
+    fig, axes = _figure(9.0, 2.7, ncols=len(chosen))
+    exclusive = [s for s in slots if not np.isfinite(s.share)]
+    shares = [s for s in slots if np.isfinite(s.share)]
+    resources = list(dict.fromkeys(s.resource for s in exclusive))
+    for j, (col, title) in enumerate(chosen):
+        ax = axes[0, j]
+        y = np.asarray(series[col], dtype=float)
+        name, unit = _unit_of(col)
+        if col in _STEPPED:
+            ax.step(t, y, where="post", color=PALETTE[0], linewidth=1.6, label=name)
+        else:
+            ax.plot(t, y, color=PALETTE[0], linewidth=1.6, marker="." if t.size < 40 else None, label=name)
+        for s in exclusive:
+            c = colour(1 + resources.index(s.resource))
+            ax.axvspan(s.enter, s.leave, color=c, alpha=0.22, linewidth=0)
+            ax.axvline(s.enter, color=c, linewidth=0.9)
+            ax.axvline(s.leave, color=c, linewidth=0.9)
+        if col == "power_W" and shares:
+            sh = sorted(shares, key=lambda s: s.enter)
+            edges = np.r_[[s.enter for s in sh], sh[-1].leave]
+            ax.stairs([s.share for s in sh], edges, color=PALETTE[3], linewidth=1.3, linestyle="--",
+                      label="allocated share", baseline=None)  # fmt: skip
+        _axis_format(ax, unit)
+        if np.nanmin(y) >= 0:  # rates, speeds, progress, power, charge: read against zero
+            ax.set_ylim(bottom=0, top=max(ax.get_ylim()[1], 1.08 * float(np.nanmax(y)), 1e-12))
+        ax.set_xlabel("time (s)")
+        ax.set_ylabel(f"{name} ({unit})" if unit else name)
+        ax.set_title(title)
+    handles = [Patch(facecolor=colour(1 + i), alpha=0.4, label=f"slot on {r}") for i, r in enumerate(resources)]
+    if shares:
+        handles.append(plt.Line2D([], [], color=PALETTE[3], linestyle="--", label="allocated share"))
+    if handles:
+        fig.legend(handles=handles, loc="outside lower center", ncols=min(4, len(handles)))
+    fig.suptitle(agent, fontsize=11, fontweight="bold", x=0.01, ha="left")
+    return fig
+
+
+# ---------------------------------------------------------------------------------------------------------
+# sweep and comparison
+
+
+@_styled
+def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
+    """V, dV/dp and the multipliers of the constraints active somewhere along a sweep.
+
+    ``sweep`` is a :class:`negotiate.sweep.SweepResult`. Shaded bands mark the intervals between two points
+    whose active sets differ (V may have a kink there); open circles mark points where a constraint is
+    weakly active or the certificate says ``nonsmooth``. The ``max_multipliers`` constraints with the
+    largest multipliers are drawn (all are in the CSV).
+    """
+    fig, axes = _figure(8.0, 7.2, nrows=3, sharex=True)
+    x = sweep.values
+    ok = sweep.converged
+    unit = f" ({sweep.unit})" if sweep.unit else ""
+    per = f"cost/{sweep.unit}" if sweep.unit else "cost per unit"
+    flag = np.array([bool(w) or v == "nonsmooth" for w, v in zip(sweep.weakly_active, sweep.verdict, strict=True)])
+    flag &= ok
+    few = x.size <= 80
+    panels = [
+        (axes[0, 0], sweep.value, "V (cost)", "value function V", "-"),
+        (axes[1, 0], sweep.slope, f"dV/d{sweep.param} ({per})", f"value gradient dV/d{sweep.param}", ":"),
+    ]
+    for ax, y, label, title, style in panels:
+        ax.plot(x[ok], y[ok], style, color=PALETTE[0], linewidth=1.4)
+        if few:
+            ax.plot(x[ok], y[ok], "o", color=PALETTE[0], markersize=3)
+        if flag.any():
+            ax.plot(x[flag], y[flag], "o", mfc="none", mec=PALETTE[3], markersize=8, mew=1.4)
+        ax.set_ylabel(label)
+        ax.set_title(title)
+    if (~ok).any():  # failed solves have no value: mark them on the axis
+        ax0 = axes[0, 0]
+        ax0.plot(x[~ok], np.zeros((~ok).sum()), "x", color=PALETTE[7], transform=ax0.get_xaxis_transform(),
+                 clip_on=False)  # fmt: skip
+    ax = axes[2, 0]
+    names = list(sweep.multipliers)
+    size = {n: float(np.nanmax(np.abs(sweep.multipliers[n]))) if ok.any() else 0.0 for n in names}
+    top = sorted(names, key=lambda n: -size[n])[:max_multipliers]
+    for i, n in enumerate(top):
+        ax.plot(x[ok], sweep.multipliers[n][ok], color=colour(i), linewidth=1.4, label=n)
+    ax.axhline(0.0, color="#999999", linewidth=0.8)
+    ax.set_ylabel("multiplier")
+    ax.set_xlabel(f"{sweep.param}{unit}")
+    ax.set_title("multipliers of the constraints active somewhere on the path"
+                 + (f" (largest {len(top)} of {len(names)})" if len(names) > len(top) else ""))  # fmt: skip
+    if top:
+        ax.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0))
+    for k in sweep.changes:
+        for a in axes.ravel():
+            a.axvspan(x[k - 1], x[k], color=PALETTE[4], alpha=0.25, linewidth=0)
+    handles = [Patch(facecolor=PALETTE[4], alpha=0.4, label="active set changes in this interval")]
+    if flag.any():
+        handles.append(plt.Line2D([], [], color=PALETTE[3], marker="o", mfc="none", mew=1.4, linestyle="none",
+                                  label="weakly active constraint or nonsmooth certificate"))  # fmt: skip
+    if (~ok).any():
+        handles.append(plt.Line2D([], [], color=PALETTE[7], marker="x", linestyle="none", label="solve failed"))
+    fig.legend(handles=handles, loc="outside lower center", ncols=len(handles))
+    fig.suptitle(f"{sweep.agent}: sweep of {sweep.param}", fontsize=11, fontweight="bold", x=0.01, ha="left")
+    return fig
+
+
+@_styled
+def compare_chart(rows: Sequence[Any], histories: Mapping[str, Sequence[Any]], reference: float | None) -> Figure:
+    """Methods side by side: best total against agent solves, and wall time per method.
+
+    ``rows`` are :class:`negotiate.compare.MethodRow`; ``histories`` maps a method name to its rounds;
+    ``reference`` is the centralized optimum (drawn as a horizontal line), if any.
+    """
+    fig, axes = _figure(9.0, 3.4, ncols=2)
+    ax = axes[0, 0]
+    for i, (name, hist) in enumerate(histories.items()):
+        s = np.array([h.agent_solves for h in hist])
+        b = np.array([h.best_total for h in hist], dtype=float)
+        ok = np.isfinite(b)
+        ax.plot(s[ok], b[ok], "o-", color=colour(i), markersize=3.5, linewidth=1.4, label=name)
+    if reference is not None and np.isfinite(reference):
+        ax.axhline(reference, color=PALETTE[7], linestyle="--", linewidth=1.0, label="centralized")
+    ax.set_xlabel("agent solves")
+    ax.set_ylabel("best weighted total cost")
+    ax.yaxis.set_major_formatter(_eng(""))
+    ax.set_title("progress per agent solve")
+    ax.legend()
+    ax = axes[0, 1]
+    names = [r.method for r in rows]
+    times = [r.wall_time for r in rows]
+    bars = ax.bar(names, times, color=[colour(i) for i in range(len(rows))])
+    ax.bar_label(bars, labels=[f"{t:.2g} s" for t in times], fontsize=8.5)
+    ax.set_ylabel("wall time (s)")
+    ax.set_title("wall time")
+    ax.grid(False, axis="x")
+    return fig

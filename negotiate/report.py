@@ -1,0 +1,322 @@
+"""The run report: one self-contained HTML file built from a run folder's files, never from a solve.
+
+:func:`write_report` reads a folder written by ``negotiate run`` (through :func:`negotiate.results.load_run`)
+and writes ``report.html`` next to the files: the run summary, a slot chart per exclusive resource and a
+share chart per capacity resource, the table of agents (free-optimum cost, coordinated cost, certificate),
+the price tables (value gradients with units), the convergence history and each agent's trajectories with
+its slots marked. Images are PNG embedded as base64 data URIs and the style sheet is inline, so the file
+opens anywhere without fetching anything.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import math
+from collections.abc import Iterable, Sequence
+from pathlib import Path
+
+from negotiate import plots
+from negotiate.results import RunFiles, load_run
+
+__all__ = ["CAUTION", "render_report", "write_report"]
+
+CAUTION = (
+    "negotiate is a planning and research tool, not a safety controller. Gaps, headways, speed limits and "
+    "site rules must come from local codes and licensed practice; check every schedule against the rules of "
+    "your site before anything moves."
+)
+
+_CSS = """
+body { font-family: system-ui, -apple-system, "Segoe UI", Roboto, "DejaVu Sans", sans-serif; color: #222;
+       background: #fff; margin: 0; line-height: 1.45; }
+main { max-width: 940px; margin: 0 auto; padding: 24px 20px 48px; }
+h1 { font-size: 1.55em; margin: 0 0 4px; }
+h2 { font-size: 1.2em; margin: 34px 0 8px; padding-bottom: 3px; border-bottom: 2px solid #0072B2; }
+h3 { font-size: 1.0em; margin: 18px 0 6px; }
+p.sub { color: #555; margin: 0 0 14px; }
+p.note { color: #555; font-size: 0.9em; margin: 6px 0 10px; }
+div.caution { border-left: 5px solid #E69F00; background: #FFF8E8; padding: 8px 12px; margin: 12px 0 18px; }
+table { border-collapse: collapse; margin: 6px 0 10px; font-size: 0.88em; }
+th, td { padding: 4px 8px; border-bottom: 1px solid #DDD; text-align: left; vertical-align: top; }
+th { background: #F2F5F8; font-weight: 600; border-bottom: 1px solid #AAB; }
+td.n { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+th.n { text-align: right; }
+table.kv th { background: none; border-bottom: 1px solid #EEE; font-weight: 600; width: 15em; }
+tr.bad td { background: #FBEAE5; }
+span.verdict-smooth { color: #006B4F; }
+span.verdict-nonsmooth { color: #A34400; font-weight: 600; }
+img { max-width: 100%; height: auto; display: block; margin: 6px 0 14px; }
+nav a { margin-right: 14px; color: #0072B2; }
+code { font-size: 0.92em; }
+"""
+
+
+# ---------------------------------------------------------------------------------------------------------
+# numbers
+
+
+def _sig(v: float, digits: int = 3) -> str:
+    """``digits`` significant digits, thousands separated by thin spaces; scientific outside 1e-3..1e9."""
+    if v is None or not math.isfinite(v):
+        return "–"
+    if v == 0:
+        return "0"
+    a = abs(v)
+    if a < 1e-3 or a >= 1e9:
+        return f"{v:.{digits - 1}e}"
+    decimals = digits - 1 - math.floor(math.log10(a))
+    r = round(v, decimals)
+    return f"{r:,.{max(0, decimals)}f}".replace(",", "\u2009")
+
+
+def _cost(v: float) -> str:
+    """A cost: whole units with separators when large, else four significant digits."""
+    if v is None or not math.isfinite(v):
+        return "–"
+    if abs(v) >= 1000:
+        return f"{v:,.0f}".replace(",", "\u2009")
+    return _sig(v, 4)
+
+
+def _time(v: float) -> str:
+    return "–" if not math.isfinite(v) else f"{v:,.1f}".replace(",", "\u2009")
+
+
+def _pct(v: float) -> str:
+    if v is None or not math.isfinite(v):
+        return "–"
+    return ("+" if v > 0 else "") + _sig(100 * v, 2) + " %"
+
+
+# ---------------------------------------------------------------------------------------------------------
+# html pieces
+
+
+def _e(s: object) -> str:
+    return html.escape(str(s), quote=True)
+
+
+def _img(png: bytes, alt: str) -> str:
+    data = base64.b64encode(png).decode("ascii")
+    return f'<img src="data:image/png;base64,{data}" alt="{_e(alt)}">'
+
+
+def _table(header: Sequence[tuple[str, bool]], rows: Iterable[Sequence[str]], cls: str = "",
+           row_classes: Sequence[str] | None = None) -> str:  # fmt: skip
+    """``header``: (label, numeric); cells are already-escaped HTML."""
+    head = "".join(f'<th class="n">{h}</th>' if num else f"<th>{h}</th>" for h, num in header)
+    body = []
+    for i, r in enumerate(rows):
+        rc = f' class="{row_classes[i]}"' if row_classes and row_classes[i] else ""
+        cells = "".join(
+            f'<td class="n">{c}</td>' if num else f"<td>{c}</td>" for c, (_h, num) in zip(r, header, strict=True)
+        )
+        body.append(f"<tr{rc}>{cells}</tr>")
+    c = f' class="{cls}"' if cls else ""
+    return f"<table{c}><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+
+
+def _verdict(v: str) -> str:
+    return f'<span class="verdict-{_e(v)}">{_e(v)}</span>' if v else "–"
+
+
+def _short_list(items: Sequence[str], n: int = 3) -> str:
+    if not items:
+        return "none"
+    shown = ", ".join(_e(x) for x in items[:n])
+    return shown + (f" and {len(items) - n} more" if len(items) > n else "")
+
+
+# ---------------------------------------------------------------------------------------------------------
+# sections
+
+
+def _summary(f: RunFiles) -> str:
+    s = f.summary
+    st = s.get("settings", {})
+    rows = [
+        ("status", f"{_e(s.get('status'))} ({_e(s.get('message', ''))})"),
+        ("method", f"{_e(st.get('method', ''))}; orders by {_e(st.get('order', ''))}; "
+                   f"tolerance {_e(st.get('tolerance', ''))}; at most {_e(st.get('max_rounds', ''))} rounds"),
+        ("rounds", _e(s.get("rounds"))),
+        ("agent solves", f"{_e(s.get('agent_solves'))} (guard probes included)"),
+        ("orders tried", _e(s.get("order_trials"))),
+        ("wall time", f"{_sig(s.get('wall_time_s', float('nan')), 2)} s"),
+        ("total cost (weighted)", _cost(_f(s.get("total_cost")))),
+        ("total at free optima", f"{_cost(_f(s.get('free_total_cost')))} (each agent alone: a lower bound)"),
+        ("cost of coordination", _cost(_f(s.get("total_cost")) - _f(s.get("free_total_cost")))),
+    ]  # fmt: skip
+    if "centralized_cost" in s:
+        gap = s.get("relative_gap")
+        rows += [
+            ("centralized optimum", f"{_cost(_f(s.get('centralized_cost')))} ({_e(s.get('centralized_status'))}, "
+                                    f"{_sig(_f(s.get('centralized_wall_time_s')), 2)} s)"),
+            ("relative gap to it", "–" if gap is None else f"{gap:+.2e}"),
+        ]  # fmt: skip
+    else:
+        rows.append(("centralized optimum", "not computed (run with --verify)"))
+    for res, order in (s.get("orders") or {}).items():
+        rows.append((f"order on {_e(res)}", " → ".join(_e(a) for a in order)))
+    body = "".join(f"<tr><th>{k}</th><td>{v}</td></tr>" for k, v in rows)
+    return f'<h2 id="summary">Run summary</h2><table class="kv"><tbody>{body}</tbody></table>'
+
+
+def _f(v: object) -> float:
+    return float("nan") if v is None else float(v)  # type: ignore[arg-type]
+
+
+def _schedule(f: RunFiles) -> str:
+    out = ['<h2 id="schedule">Schedule</h2>']
+    free: dict[str, dict[str, list[float]]] = {}
+    for p in f.prices:
+        if p.kind in ("enter", "leave"):
+            pair = free.setdefault(p.resource, {}).setdefault(p.agent, [math.nan, math.nan])
+            pair[0 if p.kind == "enter" else 1] = p.free_optimum
+    for r in f.exclusive():
+        slots = [s for s in f.schedule if s.resource == r.resource and not math.isfinite(s.share)]
+        if not slots:
+            continue
+        fr = {a: (v[0], v[1]) for a, v in free.get(r.resource, {}).items() if all(map(math.isfinite, v))}
+        fig = plots.slot_chart(r.resource, slots, r.gap_s if math.isfinite(r.gap_s) else 0.0, fr)
+        out.append(f"<h3>{_e(r.resource)} (exclusive, gap {r.gap_s:g} s)</h3>")
+        out.append(_img(plots.png(fig), f"slots on {r.resource}"))
+    for name in f.capacity_names():
+        blocks = [b for b in f.resources if b.resource == name]
+        shares = [s for s in f.schedule if s.resource == name and math.isfinite(s.share)]
+        unit = blocks[0].unit
+        fig = plots.capacity_chart(name, unit, blocks, shares)
+        out.append(f"<h3>{_e(name)} (capacity, {len(blocks)} blocks)</h3>")
+        out.append(_img(plots.png(fig), f"shares of {name}"))
+    return "".join(out)
+
+
+def _agents(f: RunFiles) -> str:
+    rows, classes = [], []
+    for a in f.agents:
+        rel = a.increase / abs(a.free_value) if a.free_value else math.nan
+        rows.append([
+            _e(a.agent), _e(a.model), _sig(a.weight, 3), _e(a.status), _cost(a.free_value), _cost(a.value),
+            _cost(a.increase), _pct(rel), _verdict(a.verdict), _short_list(a.weakly_active),
+        ])  # fmt: skip
+        classes.append("" if a.status == "converged" else "bad")
+    table = _table(
+        [("agent", False), ("model", False), ("weight", True), ("solve", False), ("cost alone", True),
+         ("cost coordinated", True), ("increase", True), ("increase rel.", True), ("certificate", False),
+         ("weakly active", False)],
+        rows, row_classes=classes,
+    )  # fmt: skip
+    note = (
+        '<p class="note">Costs are each agent\'s own optimal value, unweighted (the fleet total weighs them). '
+        "<i>cost alone</i> is the value at the agent's free optimum. Certificate: <i>smooth</i> means the value "
+        "gradient and the solution are differentiable; <i>value-differentiable</i> means the value is but the "
+        "solution map is not; <i>nonsmooth</i> means the value may have a kink there (a weakly active "
+        "constraint), so a price is one of several one-sided slopes.</p>"
+    )
+    return f'<h2 id="agents">Agents</h2>{table}{note}'
+
+
+def _prices(f: RunFiles) -> str:
+    out = ['<h2 id="prices">Prices (value gradients)</h2>']
+    slot: dict[tuple[str, str], dict[str, float]] = {}
+    for p in f.prices:
+        if p.kind in ("enter", "leave"):
+            d = slot.setdefault((p.agent, p.resource), {})
+            d[p.kind] = p.value
+            d["d_" + p.kind] = p.price
+    if slot:
+        rows = [[_e(a), _e(r), _time(d.get("enter", math.nan)), _time(d.get("leave", math.nan)),
+                 _sig(d.get("d_enter", math.nan)), _sig(d.get("d_leave", math.nan))]
+                for (a, r), d in slot.items()]  # fmt: skip
+        out.append(_table([("agent", False), ("resource", False), ("enter (s)", True), ("leave (s)", True),
+                           ("dV/d(enter) (cost/s)", True), ("dV/d(leave) (cost/s)", True)], rows))  # fmt: skip
+    cap = [p for p in f.prices if p.kind == "share"]
+    for name in dict.fromkeys(p.resource for p in cap):
+        these = [p for p in cap if p.resource == name]
+        blocks = sorted({p.block for p in these if p.block is not None})
+        unit = these[0].unit
+        agents = list(dict.fromkeys(p.agent for p in these))
+        cell = {(p.agent, p.block): p.price for p in these}
+        rows = [[_e(a)] + [_sig(cell.get((a, b), math.nan)) for b in blocks] for a in agents]
+        start = {b.block: b.start_s for b in f.resources if b.resource == name}
+        header = [("agent", False)] + [(f"block {b}<br><small>from {_time(start.get(b, math.nan))} s</small>", True)
+                                       for b in blocks]  # fmt: skip
+        out.append(f"<h3>{_e(name)}: dV/d(share) per block (cost/{_e(unit)})</h3>")
+        out.append(_table(header, rows))
+    out.append(
+        '<p class="note">A price is the agent\'s value gradient at the coordinated point: moving the parameter by '
+        "d changes the agent's cost by about price &times; d. A negative dV/d(enter) means the agent would "
+        "gain from entering later; a positive dV/d(leave) means it would pay for leaving later, and "
+        "a negative dV/d(share) is what one more unit of share would save it. Exact CSV values: prices.csv.</p>"
+    )
+    return "".join(out)
+
+
+def _convergence(f: RunFiles) -> str:
+    if not f.history:
+        return ""
+    fig = plots.convergence_chart(f.history)
+    last = f.history[-1]
+    note = (f'<p class="note">{len(f.history)} rounds recorded; last note: '
+            f"{_e(last.note) or '–'}. Round 0 is the starting point (free optima projected onto the "
+            "feasible set).</p>")  # fmt: skip
+    return f'<h2 id="convergence">Convergence</h2>{_img(plots.png(fig), "convergence history")}{note}'
+
+
+def _trajectories(f: RunFiles) -> str:
+    out = ['<h2 id="trajectories">Trajectories</h2>',
+           '<p class="note">Each agent\'s planned trajectory at the coordinated parameters; shaded bands are its '
+           "slots, a dashed line its allocated capacity share.</p>"]  # fmt: skip
+    missing = []
+    for a in f.agents:
+        series = f.trajectories.get(a.agent)
+        if not series or "time_s" not in series:
+            missing.append(a.agent)
+            continue
+        slots = [s for s in f.schedule if s.agent == a.agent]
+        fig = plots.trajectory_chart(a.agent, series, slots)
+        out.append(_img(plots.png(fig), f"trajectories of {a.agent}"))
+    if missing:
+        out.append(f'<p class="note">No trajectory for: {", ".join(_e(m) for m in missing)} '
+                   "(no trajectory function, or the final solve failed).</p>")  # fmt: skip
+    return "".join(out)
+
+
+def render_report(files: RunFiles) -> str:
+    """The report of a run folder as one HTML string (see the module docstring)."""
+    s = files.summary
+    title = f"negotiate run report: {s.get('fleet', '')}"
+    n_agents = len(files.agents)
+    n_res = len({r.resource for r in files.resources})
+    nav = "".join(f'<a href="#{k}">{v}</a>' for k, v in (("summary", "summary"), ("schedule", "schedule"),
+                  ("agents", "agents"), ("prices", "prices"), ("convergence", "convergence"),
+                  ("trajectories", "trajectories")))  # fmt: skip
+    parts = [
+        "<!DOCTYPE html>",
+        '<html lang="en"><head><meta charset="utf-8">',
+        '<meta name="viewport" content="width=device-width, initial-scale=1">',
+        f"<title>{_e(title)}</title><style>{_CSS}</style></head><body><main>",
+        f"<h1>{_e(title)}</h1>",
+        f'<p class="sub">{n_agents} agents, {n_res} resources; fleet file <code>{_e(s.get("source", ""))}</code>. '
+        "Units are SI (s, W, kg, m); costs are in each agent's own cost unit.</p>",
+        f'<div class="caution"><b>Caution.</b> {_e(CAUTION)}</div>',
+        f"<nav>{nav}</nav>",
+        _summary(files),
+        _schedule(files),
+        _agents(files),
+        _prices(files),
+        _convergence(files),
+        _trajectories(files),
+        "</main></body></html>",
+    ]
+    return "\n".join(parts) + "\n"
+
+
+def write_report(folder: str | Path, out: str | Path | None = None) -> Path:
+    """Read the run folder and write its report (``folder/report.html`` unless ``out`` is given)."""
+    files = load_run(folder)
+    path = Path(out) if out is not None else Path(folder) / "report.html"
+    tmp = path.with_suffix(".html.tmp")
+    tmp.write_text(render_report(files), encoding="utf-8")
+    tmp.replace(path)
+    return path
