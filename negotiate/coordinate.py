@@ -184,7 +184,8 @@ def _load_builtins() -> None:
 @dataclass(frozen=True)
 class RoundRecord:
     """One line of the history: round number, the trial's total, the incumbent's total, the stopping
-    measure, the number of agent solves so far, flagged and failed agents, the method's note."""
+    measure, the number of agent solves so far, flagged and failed agents, the method's note, and the wall
+    time since the start of the run (s)."""
 
     round: int
     trial_total: float
@@ -194,6 +195,7 @@ class RoundRecord:
     flagged: tuple[str, ...]
     failed: tuple[str, ...]
     note: str
+    wall_time: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -358,8 +360,9 @@ def coordinate(
     def record(k: int, ev: Evaluation, prop: Proposal) -> None:
         best = method.incumbent.total if method.incumbent is not None else float("inf")
         rec = RoundRecord(
-            k, ev.total, best, prop.measure, oracle.solves, tuple(ev.flagged), tuple(ev.failed), prop.note
-        )
+            k, ev.total, best, prop.measure, oracle.solves, tuple(ev.flagged), tuple(ev.failed), prop.note,
+            time.perf_counter() - t0,
+        )  # fmt: skip
         history.append(rec)
         if progress is not None:
             progress(rec)
