@@ -12,8 +12,8 @@ subgradient step on the local model ``sum_i w_i max_j g_ij . (p_i - x_i)`` (a pr
 feasible set, so the direction is the constrained steepest descent over the generalised gradient) with a
 diminishing length ``alpha_k = alpha_0 / (1 + k)`` and no line search (a subgradient step need not
 descend); the best point seen is kept as the incumbent. Stopping measure: the first-order predicted
-decrease ``g . (P - Proj(P - scale^2 g))`` of a unit step in scaled units (not of the backtracked one),
-relative to ``max(1, |total|)``.
+decrease ``g . (P - Proj(P - alpha scale^2 g))`` of a step of unit length in scaled units
+(``alpha = 1 / max|scale g|``; not the backtracked step), relative to ``max(1, |total|)``.
 
 Options (``[coordinator.options]``): ``armijo`` (1e-4), ``first_step`` (0.05, length of the first step in
 scaled units), ``guard_fallback`` (True: take subgradient steps when agents are flagged).
@@ -107,7 +107,7 @@ class ProjectedGradient(Method):
             self.alpha_sub0 = self.alpha
         scale = max(1.0, abs(self.x.total))
         if sub:
-            _P_ref, pred_ref = self.subgradient_trial(1.0)  # measure at a unit step, as below
+            _P_ref, pred_ref = self.subgradient_trial(1.0 / max(gu, 1e-300))  # measure at a unit step, as below
             measure = pred_ref / scale
             alpha = float(self.alpha_sub0) / (1 + self.n_sub)  # type: ignore[arg-type]
             Pn, pred = self.subgradient_trial(alpha)
@@ -116,10 +116,11 @@ class ProjectedGradient(Method):
             self.pending = ("sub", g, pred)
             self.n_sub += 1
             return Proposal(Pn, measure, False, (note + " subgradient step").strip())
-        # The stopping measure uses a unit step in scaled units (up to the whole window), so that it does not
-        # shrink just because the line search shortened the step (it would "converge" at a kink it cannot
-        # resolve) or because the gradient shrank.
-        _P_ref, pred_ref = self.trial(g, 1.0)
+        # The stopping measure uses a step of unit length in scaled units along the largest gradient entry
+        # (up to one window width), so that it does not shrink just because the line search shortened the
+        # step (it would "converge" at a kink it cannot resolve).
+        alpha_ref = 1.0 / max(gu, 1e-300)
+        _P_ref, pred_ref = self.trial(g, alpha_ref)
         measure = pred_ref / scale
         if self.tolerance_reached(measure):
             return Proposal(None, measure, True, "predicted decrease below tolerance")

@@ -167,6 +167,14 @@ class FeasibleSet:
             self.upper / s,
         )
         if not res.success:
+            # A target far outside the box makes the QP badly scaled; the nearest point of the box is a
+            # well-scaled stand-in (exact when only box bounds bind).
+            ub = np.clip(u, self.lower / s, self.upper / s)
+            res = solve_qp(
+                np.eye(self.n), -ub, self.A * s[None, :], np.full(self.b.size, -np.inf), self.b, self.lower / s,
+                self.upper / s,
+            )  # fmt: skip
+        if not res.success:
             raise RuntimeError(f"projection onto the coupling polyhedron failed ({res.message}); is it empty?")
         return np.clip(res.z * s, self.lower, self.upper)
 
