@@ -48,6 +48,41 @@ def build_parser() -> argparse.ArgumentParser:
     )
     run.add_argument("--verify", action="store_true", help="compare with the centralized IPOPT solve")
     run.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    report = commands.add_parser(
+        "report",
+        help="rebuild DIR/report.html from a run folder's files (no solving)",
+        description="Read the files that 'negotiate run' wrote into DIR (run.json and the CSV files) and "
+        "write DIR/report.html again, without solving anything.",
+    )
+    report.add_argument("dir", metavar="DIR", help="folder written by 'negotiate run --out DIR'")
+
+    sweep = commands.add_parser(
+        "sweep",
+        help="scan one agent's value function along one parameter",
+        description="Build one agent of the fleet and solve it along a parameter path from A to B in N "
+        "evenly spaced steps (warm-started), the other parameters at the agent's free optimum. Writes "
+        "DIR/sweep-AGENT-PARAM.csv and .png: V, dV/dp and the multipliers along the path, with the points "
+        "where the active set changes or a constraint is weakly active marked.",
+    )
+    sweep.add_argument("fleet", help="fleet file (TOML)")
+    sweep.add_argument("--agent", required=True, metavar="ID", help="agent name in the fleet file")
+    sweep.add_argument("--param", required=True, metavar="NAME", help="parameter name, e.g. furnace.enter")
+    sweep.add_argument("--from", dest="start", required=True, type=float, metavar="A", help="first value")
+    sweep.add_argument("--to", dest="stop", required=True, type=float, metavar="B", help="last value")
+    sweep.add_argument("--steps", type=int, default=41, metavar="N", help="number of points (default 41)")
+    sweep.add_argument("--out", default=".", metavar="DIR", help="folder for the CSV and PNG (default: .)")
+
+    compare = commands.add_parser(
+        "compare",
+        help="run every coordination method and the centralized solve on one fleet",
+        description="Run the bundle, gradient and newton methods and the centralized IPOPT solve on the same "
+        "agents with the same first-come-first-served orders (whatever the fleet's order setting, so that "
+        "the comparison is fair); print rounds, agent solves, wall time, final total and the relative gap to "
+        "the centralized optimum. With --out, also write DIR/compare.csv and DIR/compare.png.",
+    )
+    compare.add_argument("fleet", help="fleet file (TOML)")
+    compare.add_argument("--out", metavar="DIR", help="folder for compare.csv and compare.png (created)")
     return parser
 
 
@@ -146,6 +181,83 @@ def _run(args: argparse.Namespace) -> int:
     return 0 if c.success else 3
 
 
+def _load(command: str, path: str):  # type: ignore[no-untyped-def]
+    """The parsed fleet, or the exit status after printing why it cannot be read."""
+    from negotiate.errors import FleetError
+    from negotiate.fleet import load_fleet
+
+    try:
+        return load_fleet(path)
+    except OSError as exc:
+        print(f"negotiate {command}: cannot read {path}: {exc.strerror or exc}", file=sys.stderr)
+        return 2
+    except FleetError as exc:
+        print(exc, file=sys.stderr)
+        return 1
+
+
+def _report(args: argparse.Namespace) -> int:
+    from negotiate.report import write_report
+    from negotiate.results import RunFolderError
+
+    try:
+        path = write_report(args.dir)
+    except RunFolderError as exc:
+        print(f"negotiate report: {exc}", file=sys.stderr)
+        return 2
+    print(f"wrote {path}")
+    return 0
+
+
+def _sweep(args: argparse.Namespace) -> int:
+    from negotiate.errors import FleetError
+    from negotiate.sweep import sweep_fleet, write_sweep
+
+    spec = _load("sweep", args.fleet)
+    if isinstance(spec, int):
+        return spec
+    try:
+        res = sweep_fleet(spec, args.agent, args.param, args.start, args.stop, args.steps)
+    except (FleetError, ValueError) as exc:
+        print(exc, file=sys.stderr)
+        return 1
+    paths = write_sweep(res, args.out)
+    ok = int(res.converged.sum())
+    if res.window is not None:
+        print(f"reachable window of {res.param}: {res.window[0]:g} .. {res.window[1]:g} {res.unit} "
+              "(outside it the agent may have no feasible plan)")  # fmt: skip
+    print(f"{res.agent}: {res.param} from {args.start:g} to {args.stop:g} {res.unit} in {res.values.size} points; "
+          f"{ok} converged, {res.values.size - ok} failed")  # fmt: skip
+    if res.changes:
+        print("active set changes between: "
+              + ", ".join(f"{res.values[k - 1]:g}..{res.values[k]:g}" for k in res.changes))  # fmt: skip
+    weak = [f"{res.values[k]:g}" for k, w in enumerate(res.weakly_active) if w]
+    if weak:
+        print("weakly active constraint at: " + ", ".join(weak))
+    print("wrote " + ", ".join(str(p) for p in paths))
+    return 0 if ok == res.values.size else 3
+
+
+def _compare(args: argparse.Namespace) -> int:
+    from negotiate.compare import compare_methods, write_comparison
+    from negotiate.coupling import DeadlockError
+    from negotiate.errors import FleetError
+
+    spec = _load("compare", args.fleet)
+    if isinstance(spec, int):
+        return spec
+    try:
+        cmp = compare_methods(spec)
+    except (FleetError, DeadlockError, ValueError) as exc:
+        print(exc, file=sys.stderr)
+        return 1
+    print(f"fleet {spec.name}: {len(spec.agents)} agents, {len(spec.resources)} resources")
+    print(cmp.to_text(), end="")
+    if args.out:
+        print("wrote " + ", ".join(str(p) for p in write_comparison(cmp, args.out)))
+    return 0
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -156,6 +268,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         return _check(args)
     if args.command == "run":
         return _run(args)
+    if args.command == "report":
+        return _report(args)
+    if args.command == "sweep":
+        return _sweep(args)
+    if args.command == "compare":
+        return _compare(args)
     return 0
 
 

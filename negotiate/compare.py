@@ -81,6 +81,9 @@ class Comparison:
             lines.append("  ".join(c.ljust(w) if i < 2 else c.rjust(w)
                                    for i, (c, w) in enumerate(zip(b, widths, strict=True))))  # fmt: skip
         orders = "; ".join(f"{k}: {' > '.join(v)}" for k, v in self.orders.items()) or "none (no exclusive resource)"
+        for r in self.rows:
+            if r.status == "error":
+                lines.append(f"{r.method}: {r.message}")
         lines.append(f"same orders for every method (first come, first served by free optimum): {orders}")
         return "\n".join(lines) + "\n"
 

@@ -21,7 +21,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.patches import Patch  # noqa: E402
-from matplotlib.ticker import EngFormatter, ScalarFormatter  # noqa: E402
+from matplotlib.ticker import EngFormatter, FuncFormatter, ScalarFormatter  # noqa: E402
 
 __all__ = [
     "PALETTE",
@@ -100,8 +100,19 @@ def png(fig: Figure) -> bytes:
     return buf.getvalue()
 
 
-def _eng(unit: str) -> EngFormatter:
-    return EngFormatter(unit=unit, sep=" " if unit else "")
+def _eng(unit: str) -> Any:
+    """SI prefixes with a unit (450 kW); without a unit, k/M/G only for large numbers (no milli-costs)."""
+    if unit:
+        return EngFormatter(unit=unit, sep=" ")
+
+    def fmt(v: float, _pos: Any = None) -> str:
+        a = abs(v)
+        for scale, suffix in ((1e9, "G"), (1e6, "M"), (1e3, "k")):
+            if a >= scale:
+                return f"{v / scale:g}{suffix}"
+        return f"{v:g}"
+
+    return FuncFormatter(fmt)
 
 
 def _axis_format(ax: Any, unit: str) -> None:
@@ -127,7 +138,7 @@ def slot_chart(resource: str, slots: Sequence[Any], gap: float, free: Mapping[st
     """
     rows = sorted(slots, key=lambda r: r.enter)
     n = len(rows)
-    fig, axes = _figure(9.0, 0.9 + 0.42 * max(n, 1))
+    fig, axes = _figure(9.0, 1.4 + 0.42 * max(n, 1))
     ax = axes[0, 0]
     for i, r in enumerate(rows):
         y = n - 1 - i
@@ -138,6 +149,7 @@ def slot_chart(resource: str, slots: Sequence[Any], gap: float, free: Mapping[st
         if free and r.agent in free:
             f0, f1 = free[r.agent]
             ax.barh(y, f1 - f0, left=f0, height=0.84, color="none", edgecolor=INK, linewidth=0.9, linestyle=":")
+    ax.margins(x=0.02)
     ax.set_yticks(range(n), [r.agent for r in reversed(rows)])
     ax.set_ylim(-0.7, n - 0.3)
     ax.grid(False, axis="y")
@@ -148,7 +160,7 @@ def slot_chart(resource: str, slots: Sequence[Any], gap: float, free: Mapping[st
         handles.append(Patch(facecolor="none", edgecolor="#777777", hatch="////", label=f"required gap {gap:g} s"))
     if free:
         handles.append(Patch(facecolor="none", edgecolor=INK, linestyle=":", label="slot at free optimum"))
-    ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.14 - 0.6 / max(n, 1)), ncols=3)
+    fig.legend(handles=handles, loc="outside lower center", ncols=3)
     return fig
 
 
@@ -227,6 +239,8 @@ _STEPPED = {"rate_kg_per_s", "power_W", "force_N"}  # zero-order hold per stage 
 
 
 def _unit_of(col: str) -> tuple[str, str]:
+    if col == "soc":
+        return "state of charge", "fraction"
     for suffix, unit in _UNITS.items():
         if col.endswith(suffix):
             return col[: -len(suffix)].replace("_", " "), unit
@@ -319,6 +333,7 @@ def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
             ax.plot(x[flag], y[flag], "o", mfc="none", mec=PALETTE[3], markersize=8, mew=1.4)
         ax.set_ylabel(label)
         ax.set_title(title)
+        ax.yaxis.set_major_formatter(_eng(""))
     if (~ok).any():  # failed solves have no value: mark them on the axis
         ax0 = axes[0, 0]
         ax0.plot(x[~ok], np.zeros((~ok).sum()), "x", color=PALETTE[7], transform=ax0.get_xaxis_transform(),
@@ -339,7 +354,11 @@ def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
     for k in sweep.changes:
         for a in axes.ravel():
             a.axvspan(x[k - 1], x[k], color=PALETTE[4], alpha=0.25, linewidth=0)
-    handles = [Patch(facecolor=PALETTE[4], alpha=0.4, label="active set changes in this interval")]
+    handles = []
+    if sweep.changes:
+        handles.append(Patch(facecolor=PALETTE[4], alpha=0.4, label="active set changes in this interval"))
+    else:
+        handles.append(Patch(facecolor="none", edgecolor="none", label="the active set is the same at every point"))
     if flag.any():
         handles.append(plt.Line2D([], [], color=PALETTE[3], marker="o", mfc="none", mew=1.4, linestyle="none",
                                   label="weakly active constraint or nonsmooth certificate"))  # fmt: skip

@@ -40,6 +40,7 @@ div.caution { border-left: 5px solid #E69F00; background: #FFF8E8; padding: 8px 
 table { border-collapse: collapse; margin: 6px 0 10px; font-size: 0.88em; }
 th, td { padding: 4px 8px; border-bottom: 1px solid #DDD; text-align: left; vertical-align: top; }
 th { background: #F2F5F8; font-weight: 600; border-bottom: 1px solid #AAB; }
+td:first-child { white-space: nowrap; }
 td.n { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
 th.n { text-align: right; }
 table.kv th { background: none; border-bottom: 1px solid #EEE; font-weight: 600; width: 15em; }
@@ -102,7 +103,7 @@ def _img(png: bytes, alt: str) -> str:
     return f'<img src="data:image/png;base64,{data}" alt="{_e(alt)}">'
 
 
-def _table(header: Sequence[tuple[str, bool]], rows: Iterable[Sequence[str]], cls: str = "",
+def _table(header: Sequence[tuple[str, bool]], rows: Iterable[Sequence[str]], ident: str,
            row_classes: Sequence[str] | None = None) -> str:  # fmt: skip
     """``header``: (label, numeric); cells are already-escaped HTML."""
     head = "".join(f'<th class="n">{h}</th>' if num else f"<th>{h}</th>" for h, num in header)
@@ -113,8 +114,7 @@ def _table(header: Sequence[tuple[str, bool]], rows: Iterable[Sequence[str]], cl
             f'<td class="n">{c}</td>' if num else f"<td>{c}</td>" for c, (_h, num) in zip(r, header, strict=True)
         )
         body.append(f"<tr{rc}>{cells}</tr>")
-    c = f' class="{cls}"' if cls else ""
-    return f"<table{c}><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+    return f'<table id="{_e(ident)}"><thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table>'
 
 
 def _verdict(v: str) -> str:
@@ -159,7 +159,7 @@ def _summary(f: RunFiles) -> str:
     for res, order in (s.get("orders") or {}).items():
         rows.append((f"order on {_e(res)}", " → ".join(_e(a) for a in order)))
     body = "".join(f"<tr><th>{k}</th><td>{v}</td></tr>" for k, v in rows)
-    return f'<h2 id="summary">Run summary</h2><table class="kv"><tbody>{body}</tbody></table>'
+    return f'<h2 id="summary">Run summary</h2><table id="summary-table" class="kv"><tbody>{body}</tbody></table>'
 
 
 def _f(v: object) -> float:
@@ -204,7 +204,7 @@ def _agents(f: RunFiles) -> str:
         [("agent", False), ("model", False), ("weight", True), ("solve", False), ("cost alone", True),
          ("cost coordinated", True), ("increase", True), ("increase rel.", True), ("certificate", False),
          ("weakly active", False)],
-        rows, row_classes=classes,
+        rows, "agents-table", row_classes=classes,
     )  # fmt: skip
     note = (
         '<p class="note">Costs are each agent\'s own optimal value, unweighted (the fleet total weighs them). '
@@ -228,8 +228,9 @@ def _prices(f: RunFiles) -> str:
         rows = [[_e(a), _e(r), _time(d.get("enter", math.nan)), _time(d.get("leave", math.nan)),
                  _sig(d.get("d_enter", math.nan)), _sig(d.get("d_leave", math.nan))]
                 for (a, r), d in slot.items()]  # fmt: skip
-        out.append(_table([("agent", False), ("resource", False), ("enter (s)", True), ("leave (s)", True),
-                           ("dV/d(enter) (cost/s)", True), ("dV/d(leave) (cost/s)", True)], rows))  # fmt: skip
+        header = [("agent", False), ("resource", False), ("enter (s)", True), ("leave (s)", True),
+                  ("dV/d(enter) (cost/s)", True), ("dV/d(leave) (cost/s)", True)]  # fmt: skip
+        out.append(_table(header, rows, "slot-prices"))
     cap = [p for p in f.prices if p.kind == "share"]
     for name in dict.fromkeys(p.resource for p in cap):
         these = [p for p in cap if p.resource == name]
@@ -242,7 +243,7 @@ def _prices(f: RunFiles) -> str:
         header = [("agent", False)] + [(f"block {b}<br><small>from {_time(start.get(b, math.nan))} s</small>", True)
                                        for b in blocks]  # fmt: skip
         out.append(f"<h3>{_e(name)}: dV/d(share) per block (cost/{_e(unit)})</h3>")
-        out.append(_table(header, rows))
+        out.append(_table(header, rows, f"prices-{name}"))
     out.append(
         '<p class="note">A price is the agent\'s value gradient at the coordinated point: moving the parameter by '
         "d changes the agent's cost by about price &times; d. A negative dV/d(enter) means the agent would "

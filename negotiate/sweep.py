@@ -56,6 +56,8 @@ class SweepResult:
         Indices ``k`` where the active set differs from the one at point ``k - 1`` (both converged).
     results : tuple of LocalResult
         The solves themselves.
+    window : tuple of float or None
+        The swept parameter's box in the agent's reachable set (``None`` for a bare problem), in ``unit``.
     """
 
     agent: str
@@ -73,6 +75,7 @@ class SweepResult:
     multipliers: dict[str, np.ndarray]
     changes: tuple[int, ...]
     results: tuple[LocalResult, ...] = field(repr=False, default=())
+    window: tuple[float, float] | None = None
 
     @property
     def slope(self) -> np.ndarray:
@@ -198,7 +201,7 @@ def sweep_agent(
     values = np.linspace(float(start), float(stop), int(steps))
     b = agent.free_optimum if base is None else np.asarray(base, dtype=float)
     res = sweep_problem(agent.problem, b, k, values, agent=agent.name, unit=agent.params[k].unit)
-    return replace(res, param=param)
+    return replace(res, param=param, window=(float(agent.reachable.lower[k]), float(agent.reachable.upper[k])))
 
 
 def sweep_fleet(spec: FleetSpec, agent: str, param: str, start: float, stop: float, steps: int) -> SweepResult:
@@ -235,8 +238,8 @@ def write_sweep(sweep: SweepResult, out_dir: str | Path, *, plot: bool = True) -
     """
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    stem = out / f"sweep-{_safe(sweep.agent)}-{_safe(sweep.param)}"
-    path = stem.with_suffix(".csv")
+    stem = f"sweep-{_safe(sweep.agent)}-{_safe(sweep.param)}"
+    path = out / f"{stem}.csv"
     changed = set(sweep.changes)
 
     def num(v: float) -> str:
@@ -255,7 +258,7 @@ def write_sweep(sweep: SweepResult, out_dir: str | Path, *, plot: bool = True) -
     if plot:
         from negotiate import plots
 
-        png = stem.with_suffix(".png")
+        png = out / f"{stem}.png"
         png.write_bytes(plots.png(plots.sweep_chart(sweep)))
         paths.append(png)
     return paths

@@ -1,0 +1,317 @@
+"""Tests of the run's files (negotiate.results) and the HTML report (negotiate.report, ``negotiate report``).
+
+One small invented fleet with every kind of agent and resource (two trucks on a bridge, two machines on a
+furnace, two tractors on a grid connection) is run once per test session (:func:`mixed_run`, shared with the
+browser test). What is checked: the CSV files give back the very numbers of the RunResult (floats are
+written in shortest round-trip form, so equality is exact); the schedule they describe keeps the gaps and
+limits of the fleet file; the report is one file with every image embedded and decodable, the tables and
+the caution; ``negotiate report DIR`` rebuilds it byte for byte from the files alone.
+"""
+
+from __future__ import annotations
+
+import atexit
+import base64
+import functools
+import io
+import math
+import re
+import shutil
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from negotiate import cli
+from negotiate.fleet import load_fleet
+from negotiate.report import CAUTION, _cost, _pct, _sig
+from negotiate.results import RunFiles, load_run
+from negotiate.run import RunResult, run_fleet, write_outputs
+
+# INVENTED test fleet (every number made up, physically plausible); SI units.
+MIXED_FLEET = """
+[fleet]
+name = "tiny-mixed"
+
+[resources.bridge]
+kind = "exclusive"
+gap = 6.0
+
+[resources.furnace]
+kind = "exclusive"
+gap = 300.0
+
+[resources.grid]
+kind = "capacity"
+limits = [200e3, 150e3, 150e3, 250e3]
+start = 0.0
+block_length = 900.0
+
+[coordinator]
+method = "bundle"
+max_rounds = 40
+
+[defaults.vehicle]
+route_length = 1200.0
+stages = 12
+speed_limit = 13.0
+min_speed = 1.0
+
+[agents.truck-a]
+model = "vehicle"
+initial_speed = 6.0
+departure = 0.0
+desired_arrival = 140.0
+latest_arrival = 600.0
+[[agents.truck-a.zones]]
+resource = "bridge"
+entry = 600.0
+exit = 660.0
+speed_limit = 6.0
+
+[agents.truck-b]
+model = "vehicle"
+initial_speed = 6.0
+departure = 5.0
+desired_arrival = 145.0
+latest_arrival = 600.0
+[[agents.truck-b.zones]]
+resource = "bridge"
+entry = 500.0
+exit = 560.0
+speed_limit = 6.0
+
+[defaults.machine]
+blocks = 6
+horizon = 14400.0
+
+[agents.lathe]
+model = "machine"
+work = 300.0
+max_rate = 0.3
+power_coeff = 4.0e5
+due = 3600.0
+tardiness_weight = 2.0e4
+[[agents.lathe.stations]]
+resource = "furnace"
+duration = 1200.0
+transfer = 120.0
+holding_cost = 5.0
+
+[agents.mill]
+model = "machine"
+work = 400.0
+max_rate = 0.4
+power_coeff = 3.0e5
+due = 3600.0
+tardiness_weight = 2.0e4
+[[agents.mill.stations]]
+resource = "furnace"
+duration = 1500.0
+transfer = 120.0
+holding_cost = 5.0
+
+[defaults.capacity]
+resource = "grid"
+tariff = [1.0, 1.4, 1.2, 0.8]
+charger_power = 1.5e5
+
+[agents.tractor-1]
+model = "capacity"
+battery_capacity = 3.6e8
+initial_soc = 0.3
+target_soc = 0.8
+
+[agents.tractor-2]
+model = "capacity"
+battery_capacity = 3.6e8
+initial_soc = 0.4
+target_soc = 0.9
+"""
+
+
+@functools.cache
+def mixed_run() -> tuple[RunResult, Path]:
+    """Run the mixed fleet once (with the centralized check) and write its folder; shared by test modules."""
+    root = Path(tempfile.mkdtemp(prefix="negotiate-report-"))
+    atexit.register(shutil.rmtree, root, ignore_errors=True)
+    fleet = root / "tiny_mixed.toml"
+    fleet.write_text(MIXED_FLEET)
+    run = run_fleet(load_fleet(fleet), verify=True)
+    out = root / "run"
+    write_outputs(run, out)
+    return run, out
+
+
+@pytest.fixture(scope="module")
+def run() -> RunResult:
+    return mixed_run()[0]
+
+
+@pytest.fixture(scope="module")
+def folder() -> Path:
+    return mixed_run()[1]
+
+
+@pytest.fixture(scope="module")
+def files(folder: Path) -> RunFiles:
+    return load_run(folder)
+
+
+def _same(a: float, b: float) -> bool:
+    return (math.isnan(a) and math.isnan(b)) or a == b
+
+
+class TestResultFiles:
+    """The CSV files written by write_outputs, read back with load_run."""
+
+    def test_run_converged(self, run: RunResult) -> None:
+        """The fixture's run converged and its centralized check agrees (else the rest tests a failure)."""
+        assert run.coordination.status == "converged", run.coordination.message
+        assert run.gap is not None and abs(run.gap) < 1e-4  # the run's own tolerance is 1e-6 relative
+
+    def test_history_round_trip(self, run: RunResult, files: RunFiles) -> None:
+        """history.csv holds every RoundRecord with exactly the same numbers."""
+        hist = run.coordination.history
+        assert len(files.history) == len(hist) > 1
+        for got, want in zip(files.history, hist, strict=True):
+            assert got.round == want.round and got.agent_solves == want.agent_solves
+            for name in ("trial_total", "best_total", "measure"):
+                assert _same(getattr(got, name), getattr(want, name)), name
+            assert got.flagged == tuple(want.flagged) and got.failed == tuple(want.failed)
+            assert got.note == want.note
+
+    def test_prices_round_trip(self, run: RunResult, files: RunFiles) -> None:
+        """prices.csv holds each parameter's coordinated value, free optimum and value gradient exactly."""
+        rows = {(p.agent, p.parameter): p for p in files.prices}
+        assert len(rows) == sum(len(a.params) for a in run.agents)
+        for a, rep in zip(run.agents, run.coordination.evaluation.reports, strict=True):
+            for k, q in enumerate(a.params):
+                row = rows[(a.name, q.name)]
+                assert row.value == rep.p[k] and row.free_optimum == a.free_optimum[k]
+                assert row.price == rep.gradient[k]
+                assert row.unit == q.unit and row.price_unit == f"cost/{q.unit}"
+                assert row.block == q.block and row.kind == q.kind
+
+    def test_agents_round_trip(self, run: RunResult, files: RunFiles) -> None:
+        """agents.csv holds each agent's free-optimum cost, coordinated cost and certificate."""
+        assert [a.agent for a in files.agents] == [a.name for a in run.agents]
+        for row, a, rep, fv in zip(files.agents, run.agents, run.coordination.evaluation.reports, run.free_values,
+                                   strict=True):  # fmt: skip
+            assert row.value == rep.value and row.free_value == fv and row.weight == a.weight
+            assert row.increase == rep.value - fv
+            assert row.verdict == rep.certificate.verdict
+            assert row.weakly_active == tuple(str(r) for r in rep.certificate.weakly_active)
+            assert row.model == a.model
+
+    def test_trajectories_round_trip(self, run: RunResult, files: RunFiles) -> None:
+        """trajectories/<agent>.csv equals agent.trajectory(result) at the coordinated point, column by column."""
+        assert set(files.trajectories) == {a.name for a in run.agents}
+        for a, rep in zip(run.agents, run.coordination.evaluation.reports, strict=True):
+            want = a.trajectory(rep.result)
+            got = files.trajectories[a.name]
+            assert list(got) == list(want)
+            for col, values in want.items():
+                np.testing.assert_array_equal(got[col], np.asarray(values, dtype=float), err_msg=col)
+
+    def test_schedule_keeps_gaps_and_limits(self, run: RunResult, files: RunFiles) -> None:
+        """The slots read back keep each resource's gap in the run's order, the shares each block's limit.
+
+        Reference: the fleet file's own gaps (s) and limits (W). Tolerance 1e-8 relative to the numbers
+        compared: the coupling polyhedron is met to the accuracy of its QP projection (about 1e-9 relative,
+        a few microseconds on a 3600 s schedule).
+        """
+        gaps = {r.resource: r.gap_s for r in files.exclusive()}
+        assert gaps == {"bridge": 6.0, "furnace": 300.0}
+        t = {(p.agent, p.resource, p.kind): p.value for p in files.prices}
+        for res, order in run.coordination.orders.items():
+            for first, second in zip(order, order[1:], strict=False):
+                earliest = t[(first, res, "leave")] + gaps[res]
+                assert t[(second, res, "enter")] >= earliest - 1e-8 * earliest
+            for a in order:  # schedule.csv (six decimals) shows the same slots
+                row = next(s for s in files.schedule if s.agent == a and s.resource == res)
+                assert abs(row.enter - t[(a, res, "enter")]) <= 1e-6 and abs(row.leave - t[(a, res, "leave")]) <= 1e-6
+        limits = {b.block: b.limit for b in files.resources if b.resource == "grid"}
+        assert list(limits.values()) == [200e3, 150e3, 150e3, 250e3]
+        for p in files.prices:
+            assert p.kind != "share" or p.value <= limits[p.block] * (1 + 1e-8)
+        for k, lim in limits.items():
+            total = sum(p.value for p in files.prices if p.resource == "grid" and p.block == k)
+            assert total <= lim * (1 + 1e-8)
+
+    def test_summary_has_the_run(self, run: RunResult, files: RunFiles) -> None:
+        """run.json has the status, rounds, solves and the centralized gap the report shows."""
+        s = files.summary
+        assert s["status"] == run.coordination.status and s["rounds"] == run.coordination.rounds
+        assert s["agent_solves"] == run.coordination.agent_solves
+        assert s["relative_gap"] == run.gap and s["total_cost"] == run.total
+
+
+def _images(html: str) -> list[str]:
+    return re.findall(r'<img src="([^"]*)"', html)
+
+
+class TestReport:
+    """report.html: self-contained, complete, reproducible from the files."""
+
+    def test_self_contained(self, folder: Path) -> None:
+        """No network fetch or script: every image is an embedded PNG that decodes to a picture."""
+        from PIL import Image
+
+        html = (folder / "report.html").read_text(encoding="utf-8")
+        for bad in ("http://", "https://", "<script", "<link", "url(", "@import"):
+            assert bad not in html, bad
+        srcs = _images(html)
+        assert srcs
+        for src in srcs:
+            assert src.startswith("data:image/png;base64,")
+            data = base64.b64decode(src.split(",", 1)[1], validate=True)
+            with Image.open(io.BytesIO(data)) as im:
+                assert im.format == "PNG" and im.width >= 600 and im.height >= 150
+
+    def test_contents(self, run: RunResult, folder: Path) -> None:
+        """One chart per resource, the convergence chart, one per agent; the tables, units and caution."""
+        html = (folder / "report.html").read_text(encoding="utf-8")
+        # 2 exclusive + 1 capacity + convergence + 6 agents
+        assert len(_images(html)) == 2 + 1 + 1 + len(run.agents)
+        for table in ("summary-table", "agents-table", "slot-prices", "prices-grid"):
+            assert f'<table id="{table}"' in html, table
+        assert html.count("<table") == 4
+        assert "dV/d(enter) (cost/s)" in html and "dV/d(leave) (cost/s)" in html
+        assert "dV/d(share) per block (cost/W)" in html
+        for a in run.agents:
+            assert f"<td>{a.name}</td>" in html
+        assert CAUTION in html
+        assert "relative gap to it" in html
+
+    def test_report_command_rebuilds_it(self, folder: Path, tmp_path: Path) -> None:
+        """``negotiate report DIR`` on a copy without report.html writes the same bytes."""
+        copy = tmp_path / "copy"
+        shutil.copytree(folder, copy)
+        (copy / "report.html").unlink()
+        assert cli.main(["report", str(copy)]) == 0
+        assert (copy / "report.html").read_bytes() == (folder / "report.html").read_bytes()
+
+    def test_missing_files_named(self, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+        """A folder that is not a run folder: exit status 2 and the missing files named, no traceback."""
+        (tmp_path / "run.json").write_text("{}")
+        assert cli.main(["report", str(tmp_path)]) == 2
+        err = capsys.readouterr().err
+        assert "missing schedule.csv, history.csv, prices.csv, agents.csv, resources.csv" in err
+        assert "Traceback" not in err
+
+
+class TestNumbers:
+    """Rounding in the report tables."""
+
+    def test_significant_digits(self) -> None:
+        """Prices keep three significant digits, with thin-space thousands separators."""
+        assert _sig(-47097.27) == "-47\u2009100"
+        assert _sig(6.23721) == "6.24" and _sig(5.0) == "5.00" and _sig(0.0123456) == "0.0123"
+        assert _sig(2.5e-5) == "2.50e-05" and _sig(float("nan")) == "–" and _sig(0.0) == "0"
+
+    def test_costs_and_percent(self) -> None:
+        """Large costs as whole numbers, small ones with four digits; increases as signed percent."""
+        assert _cost(429217668.79) == "429\u2009217\u2009669" and _cost(12.3456) == "12.35"
+        assert _pct(2.2) == "+220 %" and _pct(0.0744) == "+7.4 %" and _pct(-0.5) == "-50 %"
