@@ -98,13 +98,20 @@ class TestAgainstCentralized:
         ref = solve_centralized(trucks, res.evaluation.feasible)
         assert res.total - ref.total <= 1e-4 * abs(ref.total)
 
-    def test_newton_needs_fewer_rounds_than_gradient(self, trucks):
-        """With every certificate smooth, value Hessians save rounds over the gradient method."""
-        bridge = [ExclusiveResource("bridge", gap=5.0)]
-        newton = coordinate(trucks, bridge, settings("newton", tolerance=1e-8))
-        grad = coordinate(trucks, bridge, settings("gradient", tolerance=1e-8, max_rounds=150))
-        assert newton.success
+    def test_newton_needs_fewer_rounds_than_gradient(self):
+        """With every certificate smooth, value Hessians save rounds over the gradient method (charging depot)."""
+        from pathlib import Path
+
+        from negotiate.fleet import build_agents, load_fleet
+
+        spec = load_fleet(Path(__file__).parents[1] / "examples" / "charging_depot.toml")
+        agents = build_agents(spec)
+        newton = coordinate(agents, spec.resources, settings("newton", tolerance=1e-8))
+        grad = coordinate(agents, spec.resources, settings("gradient", tolerance=1e-8, max_rounds=150))
+        assert newton.success, newton.message
         assert newton.rounds < grad.rounds, (newton.rounds, grad.rounds)
+        ref = solve_centralized(agents, newton.evaluation.feasible)
+        assert abs(newton.total - ref.total) <= 1e-6 * abs(ref.total)
 
     def test_schedule_respects_the_gap(self, trucks):
         """Consecutive users of the bridge are at least the gap apart."""
