@@ -29,13 +29,14 @@ from __future__ import annotations
 import time
 from abc import ABC, abstractmethod
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, ClassVar
 
 import numpy as np
 
 from negotiate.agent import AgentModel
 from negotiate.coupling import FeasibleSet, build_feasible_set, fcfs_orders
+from negotiate.executor import AgentOutcome, Executor, InProcessExecutor
 from negotiate.guard import GuardReport, guard
 from negotiate.kkt import Certificate
 from negotiate.nlp import LocalResult
@@ -45,6 +46,7 @@ from negotiate.status import Status
 __all__ = [
     "AgentReport",
     "CoordinationResult",
+    "EngineState",
     "Evaluation",
     "Method",
     "Proposal",
@@ -249,7 +251,12 @@ class CoordinationResult:
 
 
 class Oracle:
-    """Evaluates all agents at a stacked point: warm-started solves, then the nonsmooth guard."""
+    """Evaluates all agents at a stacked point: warm-started solves, then the nonsmooth guard.
+
+    With an :class:`~negotiate.executor.Executor` the guard's probes and the value Hessians are computed by
+    the executor, where the agents' solvers live (possibly other processes); with a plain callable
+    ``executor(agents, params, warm) -> results`` they are computed here from ``agent.problem``.
+    """
 
     def __init__(
         self,
@@ -257,38 +264,47 @@ class Oracle:
         feasible: FeasibleSet,
         use_guard: bool = True,
         want_hessian: bool = False,
-        executor: Callable[[Sequence[AgentModel], list[np.ndarray], list[LocalResult | None]], list[LocalResult]]
+        executor: Executor
+        | Callable[[Sequence[AgentModel], list[np.ndarray], list[LocalResult | None]], list[LocalResult]]
         | None = None,
     ) -> None:
         self.agents = list(agents)
         self.feasible = feasible
         self.use_guard = use_guard
         self.want_hessian = want_hessian
-        self.executor = executor or _solve_in_process
+        self.executor = executor if executor is not None else InProcessExecutor()
         self.last: list[LocalResult | None] = [None] * len(self.agents)
         self.solves = 0
+
+    def _outcomes(self, parts: list[np.ndarray], warm: list[LocalResult | None]) -> list[AgentOutcome]:
+        if isinstance(self.executor, Executor):
+            return self.executor.evaluate(
+                self.agents, parts, warm, use_guard=self.use_guard, want_hessian=self.want_hessian
+            )
+        results = self.executor(self.agents, parts, warm)
+        outs = []
+        for a, res, w in zip(self.agents, results, warm, strict=True):
+            rep = guard(a.problem, res, w) if self.use_guard else None
+            hess = None
+            cert = res.certificate
+            if self.want_hessian and res.success and cert is not None and cert.verdict == "smooth":
+                sens = res.sensitivity()
+                hess = sens.value_hessian if sens.available else None
+            outs.append(AgentOutcome(res, rep, hess, 1 + (rep.solves if rep is not None else 0)))
+        return outs
 
     def __call__(self, P: np.ndarray) -> Evaluation:
         parts = self.feasible.layout.split(P)
         warm = [r if r is not None and r.success else None for r in self.last]
-        results = self.executor(self.agents, parts, warm)
-        self.solves += len(results)
+        outcomes = self._outcomes(parts, warm)
         reports = []
-        for i, (a, res) in enumerate(zip(self.agents, results, strict=True)):
-            rep = guard(a.problem, res, self.last[i]) if self.use_guard else None
-            if rep is not None:
-                self.solves += rep.solves
-            hess = None
-            if (
-                self.want_hessian
-                and res.success
-                and res.certificate is not None
-                and res.certificate.verdict == "smooth"
-            ):
-                sens = res.sensitivity()
-                hess = sens.value_hessian if sens.available else None
+        for i, (a, out) in enumerate(zip(self.agents, outcomes, strict=True)):
+            res, rep = out.result, out.guard
+            self.solves += out.solves
             reports.append(
-                AgentReport(a.name, parts[i], res.value, res.gradient, res.status, res.certificate, rep, res, hess)
+                AgentReport(
+                    a.name, parts[i], res.value, res.gradient, res.status, res.certificate, rep, res, out.hessian
+                )
             )
             if res.success:
                 self.last[i] = res
@@ -301,10 +317,26 @@ class Oracle:
         )
 
 
-def _solve_in_process(
-    agents: Sequence[AgentModel], parts: list[np.ndarray], warm: list[LocalResult | None]
-) -> list[LocalResult]:
-    return [a.problem.solve(p, warm=w) for a, p, w in zip(agents, parts, warm, strict=True)]
+@dataclass(frozen=True)
+class EngineState:
+    """The engine between two rounds: everything needed to continue a run exactly where it stopped.
+
+    Handed to the ``checkpoint`` callback of :func:`coordinate` after the start and after every round, and
+    accepted back as ``resume``. ``round`` is the number of the next proposal, ``rounds`` the evaluations
+    after the start so far, ``method`` the method object itself (its bundles, metric, step sizes),
+    ``latest`` the evaluation the method has not seen yet, ``last`` each agent's latest converged result
+    (the warm-start data), ``solves`` the agent solves so far and ``elapsed`` the run's wall time so far, s.
+    """
+
+    round: int
+    rounds: int
+    method: Method
+    latest: Evaluation
+    last: tuple[LocalResult | None, ...]
+    solves: int
+    history: tuple[RoundRecord, ...]
+    orders: dict[str, list[str]]
+    elapsed: float
 
 
 def coordinate(
@@ -316,6 +348,8 @@ def coordinate(
     start: np.ndarray | None = None,
     executor: Any = None,
     progress: Callable[[RoundRecord], None] | None = None,
+    checkpoint: Callable[[EngineState], None] | None = None,
+    resume: EngineState | None = None,
 ) -> CoordinationResult:
     """Coordinate ``agents`` on ``resources`` with the method named in ``settings.method``.
 
@@ -329,33 +363,64 @@ def coordinate(
         Order of users per exclusive resource; first-come-first-served by free optimum when omitted.
     start : array, optional
         Stacked starting parameters (projected onto the feasible set); the free optima when omitted.
-    executor : callable, optional
-        ``executor(agents, params, warm) -> results`` solving the agents (in process when omitted).
+    executor : Executor or callable, optional
+        An :class:`~negotiate.executor.Executor` (in-process, worker processes, Dask), or any callable
+        ``executor(agents, params, warm) -> results``; in process when omitted.
     progress : callable, optional
         Called with each :class:`RoundRecord` as it is made.
+    checkpoint : callable, optional
+        Called with an :class:`EngineState` after the start and after every round (e.g. to save it:
+        :mod:`negotiate.checkpoint`).
+    resume : EngineState, optional
+        Continue from this state (same agents, settings and orders) instead of starting afresh; the run
+        then ends exactly as the uninterrupted run would have.
 
     Raises
     ------
     DeadlockError
         If the orders and the agents' routes form a cycle.
     ValueError
-        For an unknown method name.
+        For an unknown method name, or a ``resume`` state made for other orders or agents.
     """
-    t0 = time.perf_counter()
+    t0 = time.perf_counter() - (resume.elapsed if resume is not None else 0.0)
     settings = settings or CoordinatorSettings()
     _load_builtins()
     if settings.method not in _METHODS:
         raise ValueError(f"unknown coordination method {settings.method!r}; expected one of {sorted(_METHODS)}")
     orders = orders if orders is not None else fcfs_orders(agents, resources)
     feasible = build_feasible_set(agents, resources, orders)
-    P0 = feasible.layout.stack([a.free_optimum for a in agents]) if start is None else np.asarray(start, float)
-    P0 = feasible.project(P0)
     method_cls = _METHODS[settings.method]
     oracle = Oracle(agents, feasible, settings.guard, method_cls.wants_hessian, executor)
-    method = method_cls(feasible, settings)
-    latest = oracle(P0)
-    method.start(latest)
     history: list[RoundRecord] = []
+    rounds, k0 = 0, 0
+    if resume is None:
+        P0 = feasible.layout.stack([a.free_optimum for a in agents]) if start is None else np.asarray(start, float)
+        P0 = feasible.project(P0)
+        method = method_cls(feasible, settings)
+        latest = oracle(P0)
+        method.start(latest)
+    else:
+        names = [a.name for a in agents]
+        if {k: list(v) for k, v in resume.orders.items()} != {k: list(v) for k, v in feasible.orders.items()}:
+            raise ValueError("the state to resume was made for other orders than the ones given")
+        if [r.name for r in resume.latest.reports] != names or type(resume.method) is not method_cls:
+            raise ValueError(f"the state to resume was made for other agents or another method than {names}")
+        method, latest, rounds, k0 = resume.method, resume.latest, resume.rounds, resume.round
+        history = list(resume.history)
+        oracle.solves = resume.solves
+        # Results come back from a checkpoint without their problems: re-attach the local ones.
+        oracle.last = [
+            None if r is None else replace(r, _problem=a.problem) for a, r in zip(agents, resume.last, strict=True)
+        ]
+
+    def save(k: int) -> None:
+        if checkpoint is not None:
+            checkpoint(
+                EngineState(
+                    k, rounds, method, latest, tuple(oracle.last), oracle.solves, tuple(history),
+                    {r: list(v) for r, v in feasible.orders.items()}, time.perf_counter() - t0,
+                )
+            )  # fmt: skip
 
     def record(k: int, ev: Evaluation, prop: Proposal) -> None:
         best = method.incumbent.total if method.incumbent is not None else float("inf")
@@ -367,9 +432,10 @@ def coordinate(
         if progress is not None:
             progress(rec)
 
+    if resume is None:
+        save(0)
     status, message = "max-rounds", f"stopped after {settings.max_rounds} rounds"
-    rounds = 0
-    for k in range(settings.max_rounds + 1):
+    for k in range(k0, settings.max_rounds + 1):
         prop = method.propose(latest)
         record(k, latest, prop)
         if prop.converged:
@@ -382,6 +448,7 @@ def coordinate(
             break
         latest = oracle(prop.point)
         rounds += 1
+        save(k + 1)
     inc = method.incumbent if method.incumbent is not None else latest
     if not inc.ok:
         status, message = "failed", f"no evaluation where all agents converged (failed: {', '.join(inc.failed)})"

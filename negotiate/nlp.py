@@ -87,6 +87,11 @@ class LocalResult:
     certificate: Certificate | None
     _problem: ParametricNLP | None = field(default=None, repr=False, compare=False)
 
+    def __getstate__(self) -> dict[str, Any]:
+        # A result travels between processes (worker replies, checkpoints) without its problem: the CasADi
+        # solvers stay where they were built. An unpickled result's ``sensitivity()`` says it is detached.
+        return {**self.__dict__, "_problem": None}
+
     @property
     def success(self) -> bool:
         """Whether the point is a certified-converged KKT point (a gradient is present)."""

@@ -1,0 +1,604 @@
+"""Executors: who solves the agents of a round (in this process, in local worker processes, on a Dask cluster).
+
+Agent solves within a round are independent, so the coordinator hands a whole round to an *executor*. All
+executors share one small interface, :class:`Executor`:
+
+``evaluate(agents, params, warm, *, use_guard, want_hessian) -> list[AgentOutcome]``
+    Solve agent ``i`` at ``params[i]``, warm-started from ``warm[i]`` (its previous converged
+    :class:`~negotiate.nlp.LocalResult`, or ``None``), and return, in the order of ``agents``, the result
+    plus -- when asked -- the nonsmooth guard's one-sided gradients (:func:`negotiate.guard.guard`) and the
+    value Hessian of a smooth agent. Both are computed where the agent's solver lives, by the same function
+    (:func:`evaluate_agent`) whatever the executor, so the schedule does not depend on the executor.
+``executor(agents, params, warm) -> list[LocalResult]``
+    The plain call (results only) that :func:`negotiate.coordinate.coordinate` also accepts from any
+    user-written callable.
+
+:class:`InProcessExecutor` (the default) solves ``agent.problem`` in the calling process.
+:class:`ProcessExecutor` runs ``workers`` local worker processes (``concurrent.futures`` with the
+``spawn`` start method); :class:`DaskExecutor` submits to a Dask distributed cluster (the optional
+``cluster`` extra: ``pip install 'negotiate[cluster]'``). Both remote executors ship *fleet records*, not
+solvers: each request carries the agent's :class:`~negotiate.spec.AgentSpec` (with the fleet's resources
+and the solver options, pickled once) and the warm-start data; a worker builds the agent's NLP the first
+time it sees that record and keeps it in a per-process cache keyed by a digest of the record, so each agent
+is built once per worker, never per round. Agent ``i`` is always sent to the same worker first (its
+``i mod workers``), which keeps the caches disjoint. Results are pickled without their CasADi problem and
+re-attached to the coordinator's copy of the agent, so ``result.sensitivity()`` keeps working there.
+
+Faults. A worker process that dies during a round (killed, out of memory, a crash in a solver) loses only
+its unanswered requests: they are sent again (to a fresh process) up to ``retries`` times, so the round
+completes with the answers it would have had. A solve has a wall-time limit ``time_limit`` (s) when one is
+given: inside the solver through IPOPT's ``max_wall_time`` option (the agent reports ``time-limit``), and
+for a request that gets no answer at all (a solve stuck outside IPOPT) through the request's future, after
+``time_limit`` per solve the request may make (the solve and the guard's probes) plus
+:data:`REPLY_GRACE` s. Such an agent is reported with status ``time-limit`` for that round and its worker
+is replaced; the run goes on.
+
+Determinism: the same fleet and settings give the same schedule with every executor. Each request is a
+pure function of (agent record, parameters, warm start), the answers are put back in the order of the
+agents, and nothing depends on which worker answered first.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import pickle
+import threading
+import time
+from collections import deque
+from collections.abc import Mapping, Sequence
+from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
+from dataclasses import dataclass, replace
+from typing import TYPE_CHECKING, Any, ClassVar
+
+import numpy as np
+
+from negotiate.guard import MAX_PROBED_ROWS, GuardReport, guard
+from negotiate.nlp import LocalResult, ParametricNLP
+from negotiate.spec import FleetSpec
+from negotiate.status import Status
+
+if TYPE_CHECKING:
+    from negotiate.agent import AgentModel
+
+__all__ = [
+    "REPLY_GRACE",
+    "AgentOutcome",
+    "DaskExecutor",
+    "Executor",
+    "InProcessExecutor",
+    "ProcessExecutor",
+    "evaluate_agent",
+    "make_executor",
+]
+
+REPLY_GRACE = 10.0
+"""Seconds added to a remote request's time budget for building the agent, certification and transport."""
+
+
+@dataclass(frozen=True)
+class AgentOutcome:
+    """One agent's answer in a round.
+
+    Attributes
+    ----------
+    result : LocalResult
+        The solve at the offered parameters.
+    guard : GuardReport or None
+        The nonsmooth guard's probes (``None``: not flagged, not asked, or the solve failed).
+    hessian : numpy.ndarray or None
+        The value Hessian (cost per unit p squared) when asked and the certificate is ``smooth``.
+    solves : int
+        Agent solves this answer took (1 plus the guard's probes).
+    """
+
+    result: LocalResult
+    guard: GuardReport | None = None
+    hessian: np.ndarray | None = None
+    solves: int = 1
+
+
+def evaluate_agent(
+    problem: ParametricNLP,
+    p: np.ndarray,
+    warm: LocalResult | None,
+    *,
+    use_guard: bool = False,
+    want_hessian: bool = False,
+) -> AgentOutcome:
+    """Solve one agent and, when asked, probe it with the guard and compute its value Hessian.
+
+    ``warm`` is the agent's previous converged result: the solver starts from it and the guard compares
+    active sets with it. Every executor calls this function where the agent's solver lives.
+    """
+    res = problem.solve(p, warm=warm)
+    rep = guard(problem, res, warm) if use_guard else None
+    hess = None
+    if want_hessian and res.success and res.certificate is not None and res.certificate.verdict == "smooth":
+        sens = problem.sensitivity(res)
+        hess = sens.value_hessian if sens.available else None
+    return AgentOutcome(res, rep, hess, 1 + (rep.solves if rep is not None else 0))
+
+
+class Executor:
+    """Base class of executors (see the module docstring); subclasses implement :meth:`evaluate`.
+
+    An executor may hold processes or a cluster connection: use it as a context manager, or call
+    :meth:`close` when done. ``remote`` is True when the agents are solved outside the calling process.
+    """
+
+    remote: ClassVar[bool] = False
+
+    def evaluate(
+        self,
+        agents: Sequence[AgentModel],
+        params: Sequence[np.ndarray],
+        warm: Sequence[LocalResult | None],
+        *,
+        use_guard: bool = False,
+        want_hessian: bool = False,
+    ) -> list[AgentOutcome]:
+        """Solve every agent once (see the module docstring); answers in the order of ``agents``."""
+        raise NotImplementedError
+
+    def __call__(
+        self, agents: Sequence[AgentModel], params: Sequence[np.ndarray], warm: Sequence[LocalResult | None]
+    ) -> list[LocalResult]:
+        return [o.result for o in self.evaluate(agents, params, warm)]
+
+    def close(self) -> None:
+        """Release processes or connections (nothing for the in-process executor)."""
+
+    def __enter__(self) -> Executor:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+class InProcessExecutor(Executor):
+    """Solve each ``agent.problem`` in the calling process, one after the other (the default).
+
+    A per-solve time limit here is IPOPT's own: build the agents with
+    ``build_agents(spec, solver_options={"ipopt.max_wall_time": seconds})``.
+    """
+
+    def evaluate(
+        self,
+        agents: Sequence[AgentModel],
+        params: Sequence[np.ndarray],
+        warm: Sequence[LocalResult | None],
+        *,
+        use_guard: bool = False,
+        want_hessian: bool = False,
+    ) -> list[AgentOutcome]:
+        return [
+            evaluate_agent(a.problem, p, w, use_guard=use_guard, want_hessian=want_hessian)
+            for a, p, w in zip(agents, params, warm, strict=True)
+        ]
+
+
+# ------------------------------------------------------------------------------------------------------
+# the worker side (runs in worker processes; module level so that it pickles by reference)
+# ------------------------------------------------------------------------------------------------------
+
+_CACHE: dict[str, tuple[ParametricNLP, threading.Lock]] = {}
+_CACHE_LOCK = threading.Lock()
+
+
+def _build_from_record(blob: bytes) -> ParametricNLP:
+    """Build one agent from its pickled (resources, AgentSpec, solver options) record, as build_agents does."""
+    from negotiate.fleet import build_report
+
+    resources, agent, solver_options = pickle.loads(blob)
+    built, problems = build_report(FleetSpec(f"worker:{agent.name}", resources, (agent,)), solver_options)
+    if problems or built[0].model is None:
+        raise RuntimeError("; ".join(str(p) for p in problems) or f"agent {agent.name!r} could not be built")
+    return built[0].model.problem
+
+
+def _cached(digest: str, blob: bytes) -> tuple[ParametricNLP, threading.Lock]:
+    with _CACHE_LOCK:
+        entry = _CACHE.get(digest)
+    if entry is None:
+        entry = (_build_from_record(blob), threading.Lock())
+        with _CACHE_LOCK:
+            entry = _CACHE.setdefault(digest, entry)
+    return entry
+
+
+def _serve(
+    digest: str, blob: bytes, p: np.ndarray, warm: LocalResult | None, use_guard: bool, want_hessian: bool
+) -> tuple[AgentOutcome, int]:
+    """One request in a worker: the cached agent's answer and the worker's process id."""
+    problem, lock = _cached(digest, blob)
+    with lock:  # a ParametricNLP is not thread-safe; Dask workers may run several threads
+        out = evaluate_agent(problem, p, warm, use_guard=use_guard, want_hessian=want_hessian)
+    return out, os.getpid()
+
+
+def cached_agents() -> int:
+    """Number of agents built in this process by executor requests (for tests and diagnostics)."""
+    with _CACHE_LOCK:
+        return len(_CACHE)
+
+
+# ------------------------------------------------------------------------------------------------------
+# the coordinator side of remote executors
+# ------------------------------------------------------------------------------------------------------
+
+
+def _time_options(time_limit: float | None, solver_options: Mapping[str, Any] | None) -> dict[str, Any] | None:
+    opts = dict(solver_options or {})
+    if time_limit is not None:
+        opts.setdefault("ipopt.max_wall_time", float(time_limit))
+    return opts or None
+
+
+def _failed(agent: AgentModel, p: np.ndarray, status: Status, message: str) -> AgentOutcome:
+    prob = agent.problem
+    nan_x, nan_g = np.full(prob.n_x, np.nan), np.full(prob.n_g, np.nan)
+    res = LocalResult(
+        np.asarray(p, dtype=float), np.nan, None, nan_x, nan_g, nan_x.copy(), nan_g.copy(), status, message,
+        0, 0.0, 0.0, None, prob,
+    )  # fmt: skip
+    return AgentOutcome(res, None, None, 1)
+
+
+class _RemoteExecutor(Executor):
+    """What the process and Dask executors share: fleet records, time budget, re-attachment."""
+
+    remote = True
+
+    def __init__(
+        self,
+        spec: FleetSpec,
+        *,
+        solver_options: Mapping[str, Any] | None = None,
+        time_limit: float | None = None,
+        retries: int = 2,
+    ) -> None:
+        if time_limit is not None and not time_limit > 0:
+            raise ValueError(f"'time_limit' must be a number of seconds > 0, got {time_limit!r}")
+        if not (isinstance(retries, int) and retries >= 0):
+            raise ValueError(f"'retries' must be an integer >= 0, got {retries!r}")
+        self.spec = spec
+        self.time_limit = time_limit
+        self.retries = retries
+        self.solver_options = _time_options(time_limit, solver_options)
+        self.lost_workers = 0
+        """Worker processes lost (died or replaced after a timeout) since the executor was made."""
+        self._records: dict[str, tuple[str, bytes]] = {}
+        for a in spec.agents:
+            blob = pickle.dumps((spec.resources, a, self.solver_options), protocol=pickle.HIGHEST_PROTOCOL)
+            self._records[a.name] = (hashlib.sha256(blob).hexdigest(), blob)
+
+    def _record(self, agent: AgentModel) -> tuple[str, bytes]:
+        try:
+            return self._records[agent.name]
+        except KeyError:
+            raise ValueError(
+                f"agent {agent.name!r} is not in fleet {self.spec.name!r}: remote executors build agents "
+                "from the fleet's records (use the in-process executor for hand-built agents)"
+            ) from None
+
+    def _budget(self, use_guard: bool) -> float | None:
+        """Seconds a request may take before it counts as hung (None: no limit)."""
+        if self.time_limit is None:
+            return None
+        solves = 1 + (2 * MAX_PROBED_ROWS if use_guard else 0)
+        return self.time_limit * solves + REPLY_GRACE
+
+    @staticmethod
+    def _attach(agent: AgentModel, out: AgentOutcome) -> AgentOutcome:
+        return replace(out, result=replace(out.result, _problem=agent.problem))
+
+    def _hung(self, agent: AgentModel, p: np.ndarray, budget: float) -> AgentOutcome:
+        return _failed(
+            agent, p, Status.TIME_LIMIT,
+            f"no answer from the worker within {budget:.3g} s (per-solve limit {self.time_limit:.3g} s); "
+            "the worker was replaced",
+        )  # fmt: skip
+
+
+class ProcessExecutor(_RemoteExecutor):
+    """Solve agents in ``workers`` local worker processes (``concurrent.futures``, ``spawn`` start method).
+
+    Parameters
+    ----------
+    spec : FleetSpec
+        The fleet whose agents are solved (the workers build them from its records).
+    workers : int
+        Number of worker processes (each a one-process pool, so that agent ``i`` always meets its own
+        cache in worker ``i mod workers``).
+    solver_options : mapping, optional
+        Solver options for every agent, as for :func:`negotiate.fleet.build_agents`.
+    time_limit : float, optional
+        Wall-time limit per solve, s (IPOPT's ``max_wall_time`` plus a timeout on each request).
+    retries : int
+        How often the requests of a lost worker are sent again within one round.
+    context : {"spawn", "forkserver"}
+        Start method of the worker processes (never ``fork``: CasADi and BLAS threads do not survive it).
+    """
+
+    def __init__(
+        self,
+        spec: FleetSpec,
+        workers: int = 2,
+        *,
+        solver_options: Mapping[str, Any] | None = None,
+        time_limit: float | None = None,
+        retries: int = 2,
+        context: str = "spawn",
+    ) -> None:
+        if not (isinstance(workers, int) and workers >= 1):
+            raise ValueError(f"'workers' must be an integer >= 1, got {workers!r}")
+        if context not in ("spawn", "forkserver"):
+            raise ValueError(f"'context' must be 'spawn' or 'forkserver', got {context!r}")
+        super().__init__(spec, solver_options=solver_options, time_limit=time_limit, retries=retries)
+        import multiprocessing
+
+        self.workers = workers
+        self._context = multiprocessing.get_context(context)
+        self._pools: list[ProcessPoolExecutor | None] = [None] * workers
+
+    def _pool(self, j: int) -> ProcessPoolExecutor:
+        pool = self._pools[j]
+        if pool is None:
+            pool = self._pools[j] = ProcessPoolExecutor(max_workers=1, mp_context=self._context)
+        return pool
+
+    def _replace(self, j: int, kill: bool) -> None:
+        """Drop worker ``j`` (killing its process when it hangs); the next request starts a fresh one."""
+        pool = self._pools[j]
+        self._pools[j] = None
+        self.lost_workers += 1
+        if pool is None:
+            return
+        if kill:
+            # concurrent.futures has no public way to stop a busy worker before Python 3.14.
+            for proc in list(getattr(pool, "_processes", {}).values()):
+                proc.kill()
+        pool.shutdown(wait=False, cancel_futures=True)
+
+    def worker_pids(self) -> list[int | None]:
+        """Process id of each running worker (``None`` where none has started yet)."""
+        pids: list[int | None] = []
+        for pool in self._pools:
+            procs = list(getattr(pool, "_processes", {}).values()) if pool is not None else []
+            pids.append(procs[0].pid if procs else None)
+        return pids
+
+    def evaluate(
+        self,
+        agents: Sequence[AgentModel],
+        params: Sequence[np.ndarray],
+        warm: Sequence[LocalResult | None],
+        *,
+        use_guard: bool = False,
+        want_hessian: bool = False,
+    ) -> list[AgentOutcome]:
+        n = len(agents)
+        records = [self._record(a) for a in agents]
+        budget = self._budget(use_guard)
+        out: list[AgentOutcome | None] = [None] * n
+        queues = [deque(i for i in range(n) if i % self.workers == j) for j in range(self.workers)]
+        futures: dict[int, Future[Any]] = {}
+        started = [0.0] * self.workers  # when the request at the head of each queue began, s
+        lost = [0] * self.workers
+
+        def submit(j: int) -> None:
+            pool = self._pool(j)
+            for i in queues[j]:
+                d, blob = records[i]
+                futures[i] = pool.submit(_serve, d, blob, params[i], warm[i], use_guard, want_hessian)
+            started[j] = time.perf_counter()
+
+        for j in range(self.workers):
+            if queues[j]:
+                submit(j)
+        while any(queues):
+            heads = {futures[q[0]]: j for j, q in enumerate(queues) if q}
+            timeout = None
+            if budget is not None:
+                timeout = max(0.0, min(started[j] + budget for j in heads.values()) - time.perf_counter())
+            done, _ = wait(heads, timeout=timeout, return_when=FIRST_COMPLETED)
+            now = time.perf_counter()
+            for fut, j in heads.items():
+                i = queues[j][0]
+                if fut in done:
+                    try:
+                        reply, _pid = fut.result()
+                    except BrokenProcessPool:
+                        # The worker died: its unanswered requests go again to a fresh process.
+                        self._replace(j, kill=False)
+                        lost[j] += 1
+                        if lost[j] > self.retries:
+                            for k in queues[j]:
+                                out[k] = _failed(agents[k], params[k], Status.FAILED,
+                                                 f"worker lost {lost[j]} times in this round")  # fmt: skip
+                            queues[j].clear()
+                        else:
+                            submit(j)
+                        continue
+                    out[i] = self._attach(agents[i], reply)
+                    queues[j].popleft()
+                    started[j] = now
+                elif budget is not None and now - started[j] >= budget:
+                    out[i] = self._hung(agents[i], params[i], budget)
+                    queues[j].popleft()
+                    self._replace(j, kill=True)
+                    if queues[j]:
+                        submit(j)
+        assert all(o is not None for o in out)
+        return out  # type: ignore[return-value]
+
+    def close(self) -> None:
+        for j, pool in enumerate(self._pools):
+            if pool is not None:
+                pool.shutdown(wait=True, cancel_futures=True)
+            self._pools[j] = None
+
+
+class DaskExecutor(_RemoteExecutor):
+    """Solve agents on a Dask distributed cluster (the optional ``cluster`` extra).
+
+    Parameters
+    ----------
+    spec : FleetSpec
+        The fleet whose agents are solved (the workers build them from its records).
+    scheduler : str, optional
+        Address of a running scheduler, ``tcp://HOST:PORT``. When omitted, a ``LocalCluster`` of
+        ``workers`` single-threaded worker processes is started on the loopback interface (127.0.0.1) and
+        closed with the executor.
+    workers : int
+        Number of workers of the local cluster.
+    solver_options, time_limit, retries
+        As for :class:`ProcessExecutor`.
+
+    Agent ``i`` is sent preferably to the ``i mod W``-th worker (by address); the scheduler may move it when
+    that worker is gone. Every worker keeps its own cache of built agents (a module-level dictionary of the
+    worker process). A lost worker's requests are rescheduled by Dask itself; a request that still fails
+    with a lost worker is sent again up to ``retries`` times.
+    """
+
+    def __init__(
+        self,
+        spec: FleetSpec,
+        scheduler: str | None = None,
+        workers: int = 2,
+        *,
+        solver_options: Mapping[str, Any] | None = None,
+        time_limit: float | None = None,
+        retries: int = 2,
+    ) -> None:
+        try:
+            import distributed
+        except ImportError as exc:
+            raise ImportError(
+                "the Dask executor needs the optional 'cluster' extra: pip install 'negotiate[cluster]'"
+            ) from exc
+        if not (isinstance(workers, int) and workers >= 1):
+            raise ValueError(f"'workers' must be an integer >= 1, got {workers!r}")
+        super().__init__(spec, solver_options=solver_options, time_limit=time_limit, retries=retries)
+        self._cluster = None
+        if scheduler is None:
+            import logging
+
+            self._cluster = distributed.LocalCluster(
+                n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
+                dashboard_address=None, silence_logs=logging.ERROR,
+            )  # fmt: skip
+            self.client = distributed.Client(self._cluster)
+        else:
+            self.client = distributed.Client(scheduler)
+        self._round = 0
+
+    def worker_addresses(self) -> list[str]:
+        """Addresses of the cluster's workers, sorted."""
+        return sorted(self.client.scheduler_info(n_workers=-1)["workers"])
+
+    def evaluate(
+        self,
+        agents: Sequence[AgentModel],
+        params: Sequence[np.ndarray],
+        warm: Sequence[LocalResult | None],
+        *,
+        use_guard: bool = False,
+        want_hessian: bool = False,
+    ) -> list[AgentOutcome]:
+        import distributed
+
+        n = len(agents)
+        records = [self._record(a) for a in agents]
+        budget = self._budget(use_guard)
+        self._round += 1
+        out: list[AgentOutcome | None] = [None] * n
+        pending = list(range(n))
+        attempt = 0
+        while pending:
+            addresses = self.worker_addresses()
+            futures = {}
+            for i in pending:
+                d, blob = records[i]
+                where = {"workers": [addresses[i % len(addresses)]], "allow_other_workers": True} if addresses else {}
+                futures[i] = self.client.submit(
+                    _serve, d, blob, params[i], warm[i], use_guard, want_hessian,
+                    key=f"negotiate-solve-{self._round}-{attempt}-{i}-{d[:12]}", pure=False, **where,
+                )  # fmt: skip
+            # Requests queue on single-threaded workers, so the budget covers the longest queue.
+            per_worker = -(-len(pending) // max(1, len(addresses)))
+            timeout = None if budget is None else budget * per_worker
+            _wait_quiet(distributed, list(futures.values()), timeout)
+            retry = []
+            stuck_workers: set[str] = set()
+            for i, fut in futures.items():
+                if fut.status == "finished":
+                    reply, _pid = fut.result()
+                    out[i] = self._attach(agents[i], reply)
+                elif fut.status == "error":
+                    exc = fut.exception()
+                    if isinstance(exc, distributed.KilledWorker) and attempt < self.retries:
+                        retry.append(i)
+                        self.lost_workers += 1
+                    else:
+                        out[i] = _failed(agents[i], params[i], Status.FAILED, f"worker error: {exc!r}")
+                else:  # still running or queued after the budget: counts as hung
+                    assert budget is not None
+                    out[i] = self._hung(agents[i], params[i], budget)
+                    stuck_workers.update(self._where(fut))
+                    fut.cancel()
+            if stuck_workers:
+                self.lost_workers += len(stuck_workers)
+                self.client.restart_workers(sorted(stuck_workers), raise_for_error=False)
+            pending = retry
+            attempt += 1
+        return out  # type: ignore[return-value]
+
+    def _where(self, fut: Any) -> list[str]:
+        """Workers processing ``fut`` (empty when unknown)."""
+        try:
+            info = self.client.who_has([fut])
+            processing = self.client.processing()
+        except Exception:  # noqa: BLE001 - diagnostics only
+            return []
+        where = [w for w, keys in processing.items() if fut.key in keys]
+        return where or list(info.get(fut.key, ()))
+
+    def close(self) -> None:
+        self.client.close()
+        if self._cluster is not None:
+            self._cluster.close()
+            self._cluster = None
+
+
+def _wait_quiet(distributed: Any, futures: list[Any], timeout: float | None) -> None:
+    try:
+        distributed.wait(futures, timeout=timeout)
+    except TimeoutError:
+        pass
+
+
+def make_executor(
+    spec: FleetSpec,
+    *,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    cluster: str | None = None,
+    time_limit: float | None = None,
+) -> Executor:
+    """The executor the command line asks for: ``scheduler`` (an address) or ``cluster="local"`` gives a
+    :class:`DaskExecutor` (``workers`` local workers, default 2), ``workers`` alone a
+    :class:`ProcessExecutor`, nothing the :class:`InProcessExecutor`."""
+    if scheduler is not None and cluster is not None:
+        raise ValueError("give either a scheduler address or --cluster local, not both")
+    if cluster is not None and cluster != "local":
+        raise ValueError(f"'cluster' must be 'local', got {cluster!r}")
+    if scheduler is not None and not scheduler.startswith(("tcp://", "tls://", "inproc://", "ucx://")):
+        raise ValueError(f"'scheduler' must be an address like tcp://HOST:PORT, got {scheduler!r}")
+    if scheduler is not None or cluster is not None:
+        return DaskExecutor(spec, scheduler, workers or 2, time_limit=time_limit)
+    if workers is not None:
+        return ProcessExecutor(spec, workers, time_limit=time_limit)
+    return InProcessExecutor()
