@@ -345,6 +345,8 @@ def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
     for i, n in enumerate(top):
         ax.plot(x[ok], sweep.multipliers[n][ok], color=colour(i), linewidth=1.4, label=n)
     ax.axhline(0.0, color="#999999", linewidth=0.8)
+    ax.yaxis.set_major_formatter(_eng(""))
+    ax.xaxis.set_major_formatter(_eng(""))
     ax.set_ylabel("multiplier")
     ax.set_xlabel(f"{sweep.param}{unit}")
     ax.set_title("multipliers of the constraints active somewhere on the path"
@@ -371,30 +373,42 @@ def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
 
 @_styled
 def compare_chart(rows: Sequence[Any], histories: Mapping[str, Sequence[Any]], reference: float | None) -> Figure:
-    """Methods side by side: best total against agent solves, and wall time per method.
+    """Methods side by side: progress against agent solves, and wall time per method.
 
     ``rows`` are :class:`negotiate.compare.MethodRow`; ``histories`` maps a method name to its rounds;
-    ``reference`` is the centralized optimum (drawn as a horizontal line), if any.
+    ``reference`` is the centralized optimum, if any. With a reference the left panel shows the relative
+    gap of each method's best total to it on a log scale (gaps at or below 1e-12, or negative, drawn at
+    1e-12); without one, the best total itself.
     """
     fig, axes = _figure(9.0, 3.4, ncols=2)
     ax = axes[0, 0]
+    floor = 1e-12
+    use_gap = reference is not None and np.isfinite(reference) and reference != 0
     for i, (name, hist) in enumerate(histories.items()):
         s = np.array([h.agent_solves for h in hist])
         b = np.array([h.best_total for h in hist], dtype=float)
         ok = np.isfinite(b)
-        ax.plot(s[ok], b[ok], "o-", color=colour(i), markersize=3.5, linewidth=1.4, label=name)
-    if reference is not None and np.isfinite(reference):
-        ax.axhline(reference, color=PALETTE[7], linestyle="--", linewidth=1.0, label="centralized")
+        if use_gap:
+            y = np.maximum((b - reference) / abs(reference), floor)
+            ax.semilogy(s[ok], y[ok], "o-", color=colour(i), markersize=3.5, linewidth=1.4, label=name)
+        else:
+            ax.plot(s[ok], b[ok], "o-", color=colour(i), markersize=3.5, linewidth=1.4, label=name)
+    if use_gap:
+        ax.set_ylabel("relative gap to centralized")
+        ax.set_title("gap per agent solve (log scale)")
+    else:
+        ax.set_ylabel("best weighted total cost")
+        ax.yaxis.set_major_formatter(_eng(""))
+        ax.set_title("best total per agent solve")
     ax.set_xlabel("agent solves")
-    ax.set_ylabel("best weighted total cost")
-    ax.yaxis.set_major_formatter(_eng(""))
-    ax.set_title("progress per agent solve")
     ax.legend()
     ax = axes[0, 1]
     names = [r.method for r in rows]
     times = [r.wall_time for r in rows]
     bars = ax.bar(names, times, color=[colour(i) for i in range(len(rows))])
-    ax.bar_label(bars, labels=[f"{t:.2g} s" for t in times], fontsize=8.5)
+    ax.bar_label(
+        bars, labels=[f"{t:.2g} s" if r.status != "error" else "error" for t, r in zip(times, rows, strict=True)]
+    )
     ax.set_ylabel("wall time (s)")
     ax.set_title("wall time")
     ax.grid(False, axis="x")

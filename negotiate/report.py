@@ -17,7 +17,7 @@ from collections.abc import Iterable, Sequence
 from pathlib import Path
 
 from negotiate import plots
-from negotiate.results import RunFiles, load_run
+from negotiate.results import PriceRow, RunFiles, load_run
 
 __all__ = ["CAUTION", "render_report", "write_report"]
 
@@ -50,6 +50,7 @@ span.verdict-nonsmooth { color: #A34400; font-weight: 600; }
 img { max-width: 100%; height: auto; display: block; margin: 6px 0 14px; }
 nav a { margin-right: 14px; color: #0072B2; }
 code { font-size: 0.92em; }
+small.share { color: #666; }
 """
 
 
@@ -237,8 +238,8 @@ def _prices(f: RunFiles) -> str:
         blocks = sorted({p.block for p in these if p.block is not None})
         unit = these[0].unit
         agents = list(dict.fromkeys(p.agent for p in these))
-        cell = {(p.agent, p.block): p.price for p in these}
-        rows = [[_e(a)] + [_sig(cell.get((a, b), math.nan)) for b in blocks] for a in agents]
+        cell = {(p.agent, p.block): p for p in these}
+        rows = [[_e(a)] + [_price_cell(cell.get((a, b))) for b in blocks] for a in agents]
         start = {b.block: b.start_s for b in f.resources if b.resource == name}
         header = [("agent", False)] + [(f"block {b}<br><small>from {_time(start.get(b, math.nan))} s</small>", True)
                                        for b in blocks]  # fmt: skip
@@ -251,6 +252,13 @@ def _prices(f: RunFiles) -> str:
         "a negative dV/d(share) is what one more unit of share would save it. Exact CSV values: prices.csv.</p>"
     )
     return "".join(out)
+
+
+def _price_cell(p: PriceRow | None) -> str:
+    """A capacity price with the share it was given, small, below it."""
+    if p is None:
+        return "–"
+    return f'{_sig(p.price)}<br><small class="share">share {_sig(p.value)} {_e(p.unit)}</small>'
 
 
 def _convergence(f: RunFiles) -> str:
