@@ -9,6 +9,7 @@ from __future__ import annotations
 import argparse
 import sys
 from collections.abc import Sequence
+from pathlib import Path
 
 import negotiate
 
@@ -176,7 +177,9 @@ def _run(args: argparse.Namespace) -> int:
         print(f"centralized: {ce.status} ({ce.message}), cost {_fmt(ce.total, 10)}, {ce.wall_time:.2f} s; "
               f"relative gap {'-' if gap is None else f'{gap:+.2e}'}")  # fmt: skip
     print("orders: " + "; ".join(f"{k}: {' > '.join(v)}" for k, v in c.orders.items()))
-    print("wrote " + ", ".join(str(p) for p in paths))
+    out = Path(args.out)
+    top = sorted({p.relative_to(out).parts[0] for p in paths})
+    print(f"wrote {len(paths)} files to {out}: " + ", ".join(t + ("/" if (out / t).is_dir() else "") for t in top))
     print("planning and research output, not a safety controller: check gaps and speeds against site rules")
     return 0 if c.success else 3
 
@@ -234,7 +237,9 @@ def _sweep(args: argparse.Namespace) -> int:
     weak = [f"{res.values[k]:g}" for k, w in enumerate(res.weakly_active) if w]
     if weak:
         print("weakly active constraint at: " + ", ".join(weak))
-    print("wrote " + ", ".join(str(p) for p in paths))
+    out = Path(args.out)
+    top = sorted({p.relative_to(out).parts[0] for p in paths})
+    print(f"wrote {len(paths)} files to {out}: " + ", ".join(t + ("/" if (out / t).is_dir() else "") for t in top))
     return 0 if ok == res.values.size else 3
 
 

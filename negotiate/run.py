@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import csv
 import importlib
+import importlib.util
 import json
 import time
 from collections.abc import Callable
@@ -106,14 +107,23 @@ class RunResult:
 
 
 def resolve_method(name: str) -> str:
-    """Accept a built-in method name or ``"package.module:ClassName"`` of a user :class:`Method` (imported
-    and registered; this imports and runs user code). Returns the registered name."""
+    """Accept a built-in method name, ``"package.module:ClassName"`` or ``"path/to/file.py:ClassName"`` of a
+    user :class:`Method` (imported and registered: this imports and runs user code). Returns the
+    registered name."""
     if ":" not in name:
         return name
-    module, _, attr = name.partition(":")
+    module, _, attr = name.rpartition(":")
     try:
-        cls = getattr(importlib.import_module(module), attr)
-    except (ImportError, AttributeError) as exc:
+        if module.endswith(".py"):
+            spec = importlib.util.spec_from_file_location(Path(module).stem, module)
+            if spec is None or spec.loader is None:
+                raise ImportError(f"no such file {module!r}")
+            mod = importlib.util.module_from_spec(spec)
+            spec.loader.exec_module(mod)
+        else:
+            mod = importlib.import_module(module)
+        cls = getattr(mod, attr)
+    except (ImportError, AttributeError, OSError) as exc:
         raise ValueError(f"cannot import coordination method {name!r}: {exc}") from exc
     if not (isinstance(cls, type) and issubclass(cls, Method)):
         raise ValueError(f"{name!r} is not a subclass of negotiate.coordinate.Method")
