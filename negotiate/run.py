@@ -167,6 +167,8 @@ def run_fleet(
     verify: bool = False,
     executor: Any = None,
     progress: Callable[[RoundRecord], None] | None = None,
+    checkpoint_dir: str | Path | None = None,
+    resume: bool = False,
 ) -> RunResult:
     """Coordinate a fleet.
 
@@ -181,23 +183,54 @@ def run_fleet(
     verify : bool
         Also solve the centralized NLP for the final orders and report the gap.
     executor, progress
-        Passed to :func:`negotiate.coordinate.coordinate`.
+        Passed to :func:`negotiate.coordinate.coordinate` (an :mod:`negotiate.executor` executor also
+        solves the agents at their free optima).
+    checkpoint_dir : path, optional
+        Run folder to keep ``checkpoint.bin`` in, written after every round (:mod:`negotiate.checkpoint`).
+    resume : bool
+        Continue from the checkpoint in ``checkpoint_dir`` (finished order trials are not redone, the trial
+        in progress continues from its last complete round). Raises
+        :class:`~negotiate.checkpoint.CheckpointError` when there is none, or it is of another fleet or
+        method, or damaged.
     """
     t0 = time.perf_counter()
+    if resume and checkpoint_dir is None:
+        raise ValueError("'resume' needs the run folder holding the checkpoint ('checkpoint_dir')")
+    settings = spec.coordinator
+    if method is not None:
+        settings = replace(settings, method=resolve_method(method))
+    book = None
+    if checkpoint_dir is not None:
+        from negotiate.checkpoint import RunBook
+
+        book = RunBook(checkpoint_dir, spec, settings.method, resume=resume)  # checked before building
     if agents is None:
         from negotiate.fleet import build_agents
 
         agents = build_agents(spec)
-    settings = spec.coordinator
-    if method is not None:
-        settings = replace(settings, method=resolve_method(method))
-    free = np.array([a.problem.solve(a.free_optimum).value for a in agents])
+    if executor is not None:
+        free_results = executor(agents, [a.free_optimum for a in agents], [None] * len(agents))
+        free = np.array([r.value for r in free_results])
+    else:
+        free = np.array([a.problem.solve(a.free_optimum).value for a in agents])
 
-    def one(orders: dict[str, list[str]], start: np.ndarray | None) -> tuple[float, np.ndarray, CoordinationResult]:
+    def one(
+        orders: dict[str, list[str]], start: np.ndarray | None
+    ) -> tuple[float, np.ndarray, CoordinationResult | None]:
+        k = book.next_trial() if book is not None else 0
+        if book is not None:
+            done = book.finished(k, orders, agents)
+            if done is not None:
+                return done
         r = coordinate(
-            agents, spec.resources, settings, orders=orders, start=start, executor=executor, progress=progress
-        )
-        return (r.total if r.evaluation.ok else float("inf")), r.P, r
+            agents, spec.resources, settings, orders=orders, start=start, executor=executor, progress=progress,
+            checkpoint=book.hook(k, orders) if book is not None else None,
+            resume=book.engine_state(k, orders) if book is not None else None,
+        )  # fmt: skip
+        total = r.total if r.evaluation.ok else float("inf")
+        if book is not None:
+            book.finish(k, orders, total, r)
+        return total, r.P, r
 
     best, _orders, trials = search_orders(agents, spec.resources, settings.order, one)
     assert isinstance(best, CoordinationResult)
