@@ -40,8 +40,10 @@ def build_parser() -> argparse.ArgumentParser:
         "centralized NLP for the final orders and report the gap. A planning and research tool, not a "
         "safety controller: gaps, speeds and site rules come from local codes and licensed practice.",
     )
-    run.add_argument("fleet", help="fleet file (TOML)")
-    run.add_argument("--out", required=True, metavar="DIR", help="folder for the output files (created)")
+    run.add_argument("fleet", nargs="?", help="fleet file (TOML); may be left out with --resume")
+    run.add_argument(
+        "--out", metavar="DIR", help="folder for the outputs and the checkpoint (created; required unless --resume)"
+    )
     run.add_argument(
         "--method",
         help="bundle, gradient, newton, or package.module:Class of your own Method (imports and runs it); "
@@ -49,6 +51,28 @@ def build_parser() -> argparse.ArgumentParser:
     )
     run.add_argument("--verify", action="store_true", help="compare with the centralized IPOPT solve")
     run.add_argument("--quiet", action="store_true", help="no progress bar")
+    run.add_argument("--workers", type=int, metavar="N", help="solve the agents in N local worker processes")
+    run.add_argument("--scheduler", metavar="tcp://HOST:PORT", help="solve the agents on this Dask scheduler's workers")
+    run.add_argument(
+        "--cluster", choices=["local"], help="start a Dask cluster on this machine (loopback; --workers workers, 2)"
+    )
+    run.add_argument(
+        "--resume",
+        metavar="DIR",
+        help="continue the run whose checkpoint is in DIR from its last complete round (outputs go to DIR)",
+    )
+
+    generate = commands.add_parser(
+        "generate",
+        help="write an invented fleet of N agents to standard output",
+        description="Write a fleet file (TOML) with N invented agents of one kind to standard output: haul "
+        "trucks at a single-lane bridge, machines through a furnace, or tractors charging from one grid "
+        "connection. Arrivals are spread out in proportion to N, so the fleet stays feasible as it grows. "
+        "The same kind, N and seed always give the same file.",
+    )
+    generate.add_argument("--kind", required=True, choices=["bridge", "furnace", "depot"], help="kind of fleet")
+    generate.add_argument("--agents", required=True, type=int, metavar="N", help="number of agents")
+    generate.add_argument("--seed", type=int, default=0, metavar="S", help="seed of the invented numbers (default 0)")
 
     report = commands.add_parser(
         "report",
@@ -114,21 +138,45 @@ def _table(header: list[str], rows: list[list[str]]) -> str:
 
 
 def _run(args: argparse.Namespace) -> int:
+    import signal
+
+    from negotiate.checkpoint import CheckpointError, RunBook
     from negotiate.coupling import DeadlockError
     from negotiate.errors import FleetError
+    from negotiate.executor import make_executor
     from negotiate.fleet import build_agents, load_fleet
     from negotiate.run import run_fleet, write_outputs
 
+    if args.fleet is None and args.resume is None:
+        print("negotiate run: give a fleet file, or --resume DIR", file=sys.stderr)
+        return 2
+    if args.out is not None and args.resume is not None and Path(args.out).resolve() != Path(args.resume).resolve():
+        print("negotiate run: --resume DIR writes its outputs to DIR; leave out --out", file=sys.stderr)
+        return 2
+    if args.out is None and args.resume is None:
+        print("negotiate run: --out DIR is required (the folder for the outputs and the checkpoint)", file=sys.stderr)
+        return 2
+    args.out = args.out or args.resume
     try:
-        spec = load_fleet(args.fleet)
+        spec = load_fleet(args.fleet) if args.fleet is not None else RunBook.saved_spec(args.resume)
     except OSError as exc:
         print(f"negotiate run: cannot read {args.fleet}: {exc.strerror or exc}", file=sys.stderr)
+        return 2
+    except CheckpointError as exc:
+        print(f"negotiate run: {exc}", file=sys.stderr)
         return 2
     except FleetError as exc:
         print(exc, file=sys.stderr)
         return 1
     bar = None
+    executor = None
+
+    def interrupted(signum, frame):  # type: ignore[no-untyped-def]
+        raise KeyboardInterrupt
+
+    previous = signal.signal(signal.SIGTERM, interrupted)
     try:
+        executor = make_executor(spec, workers=args.workers, scheduler=args.scheduler, cluster=args.cluster)
         agents = build_agents(spec)
         method = args.method or spec.coordinator.method
         print(f"fleet {spec.name}: {len(agents)} agents, {len(spec.resources)} resources; method {method}, "
@@ -147,12 +195,35 @@ def _run(args: argparse.Namespace) -> int:
                     refresh=False,
                 )
 
-        result = run_fleet(spec, agents, method=args.method, verify=args.verify, progress=progress)
+        result = run_fleet(
+            spec, agents, method=args.method, verify=args.verify, progress=progress, executor=executor,
+            checkpoint_dir=args.out, resume=args.resume is not None,
+        )  # fmt: skip
+    except CheckpointError as exc:
+        if bar is not None:
+            bar.close()
+        print(f"negotiate run: {exc}", file=sys.stderr)
+        return 2
+    except ImportError as exc:
+        if bar is not None:
+            bar.close()
+        print(f"negotiate run: {exc}", file=sys.stderr)
+        return 2
     except (FleetError, DeadlockError, ValueError) as exc:
         if bar is not None:
             bar.close()
         print(exc, file=sys.stderr)
         return 1
+    except KeyboardInterrupt:
+        if bar is not None:
+            bar.close()
+        print(f"negotiate run: interrupted; the last complete round is saved: negotiate run --resume {args.out}",
+              file=sys.stderr)  # fmt: skip
+        return 130
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+        if executor is not None:
+            executor.close()
     if bar is not None:
         bar.close()
     paths = write_outputs(result, args.out)
@@ -263,6 +334,18 @@ def _compare(args: argparse.Namespace) -> int:
     return 0
 
 
+def _generate(args: argparse.Namespace) -> int:
+    from negotiate.generate import generate_fleet
+
+    try:
+        text = generate_fleet(args.kind, args.agents, args.seed)
+    except ValueError as exc:
+        print(f"negotiate generate: {exc}", file=sys.stderr)
+        return 2
+    sys.stdout.write(text)
+    return 0
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -273,6 +356,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         return _check(args)
     if args.command == "run":
         return _run(args)
+    if args.command == "generate":
+        return _generate(args)
     if args.command == "report":
         return _report(args)
     if args.command == "sweep":
