@@ -30,14 +30,13 @@ makes the thresholds above safe margins rather than knife edges.
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Literal
 
 import numpy as np
 import scipy.linalg
-import scipy.sparse
-import scipy.sparse.linalg
 
 __all__ = ["Certificate", "ConstraintRef", "Tolerances", "certify", "polish"]
 
@@ -295,26 +294,19 @@ def _residuals(pt: Point, bnd: Bounds, cl: _Classes) -> tuple[float, float, floa
     return stat, feas, comp, sign
 
 
-def _kkt_error(pt: Point, bnd: Bounds, tol: Tolerances) -> float:
-    return max(_residuals(pt, bnd, _classify(pt, bnd, tol)))
-
-
 def _solve_kkt(H: np.ndarray, C: np.ndarray, rhs: np.ndarray) -> np.ndarray:
-    """Solve ``[[H, C^T], [C, 0]] z = rhs`` with a sparse LU; least squares when singular (LICQ failure)."""
+    """Solve ``[[H, C^T], [C, 0]] z = rhs`` (dense LU); least squares when it is singular (LICQ failure)."""
     k = C.shape[0]
-    K = scipy.sparse.bmat(
-        [[scipy.sparse.csc_matrix(H), scipy.sparse.csc_matrix(C.T)], [scipy.sparse.csc_matrix(C), None]],
-        format="csc",
-    )
-    if K.shape[0] != H.shape[0] + k:  # bmat drops nothing, but keep the shape honest for empty blocks
-        K = scipy.sparse.csc_matrix(np.block([[H, C.T], [C, np.zeros((k, k))]]))
+    K = np.block([[H, C.T], [C, np.zeros((k, k))]])
     try:
-        sol = scipy.sparse.linalg.splu(K).solve(rhs)
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", scipy.linalg.LinAlgWarning)  # singular: take least squares below
+            sol = scipy.linalg.lu_solve(scipy.linalg.lu_factor(K, check_finite=False), rhs, check_finite=False)
         if np.all(np.isfinite(sol)) and np.allclose(K @ sol, rhs, rtol=1e-8, atol=1e-10 * max(1.0, np.abs(rhs).max())):
             return sol
-    except RuntimeError:  # exactly singular
+    except (np.linalg.LinAlgError, ValueError, scipy.linalg.LinAlgWarning):
         pass
-    return np.linalg.lstsq(K.toarray(), rhs, rcond=None)[0]
+    return np.linalg.lstsq(K, rhs, rcond=None)[0]
 
 
 # --------------------------------------------------------------------------------------------------------
@@ -334,16 +326,16 @@ def polish(pt: Point, bnd: Bounds, evaluate: Evaluate, tol: Tolerances, max_newt
     """
     cl = _classify(pt, bnd, tol)
     guess = (cl.side == 2) | ((cl.side != 0) & ((cl.slack <= cl.mult) | (cl.slack <= tol.active)))
-    err0 = _kkt_error(pt, bnd, tol)
+    err0 = max(_residuals(pt, bnd, cl))
     n, m = pt.x.size, bnd.m
     for _attempt in range(3):
         A = np.flatnonzero(guess)
         target = np.where(cl.side[A] == 1, bnd.up[A], bnd.lo[A])
         x, lam = pt.x.copy(), np.zeros(m + n)
         lam[A] = pt.lam[A]
-        cur = pt
-        if not np.array_equal(lam, pt.lam):
-            cur = evaluate(x, lam[:m], lam[m:])
+        # The other multipliers are set to zero; the Hessian keeps their (tiny) curvature until the first
+        # re-evaluation, which does not matter for a Newton step.
+        cur = replace(pt, lam_g=lam[:m].copy(), lam_x=lam[m:].copy())
         for _ in range(max_newton):
             C = cur.rows()[A]
             r = np.concatenate([cur.grad_lagrangian(), cur.values[A] - target])
@@ -358,7 +350,7 @@ def polish(pt: Point, bnd: Bounds, evaluate: Evaluate, tol: Tolerances, max_newt
         violated = ~guess & (viol > tol.active)
         wrong = guess & (new.wrong_sign > tol.multiplier)
         if not violated.any() and not wrong.any():
-            if _kkt_error(cur, bnd, tol) <= max(err0, 1e-12):
+            if max(_residuals(cur, bnd, new)) <= max(err0, 1e-12):
                 return cur, True
             return pt, False
         guess = (guess | violated) & ~wrong
