@@ -21,7 +21,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.patches import Patch  # noqa: E402
-from matplotlib.ticker import EngFormatter, FuncFormatter, ScalarFormatter  # noqa: E402
+from matplotlib.ticker import EngFormatter, FuncFormatter, NullFormatter, ScalarFormatter  # noqa: E402
 
 __all__ = [
     "PALETTE",
@@ -142,7 +142,7 @@ def slot_chart(resource: str, slots: Sequence[Any], gap: float, free: Mapping[st
     ax = axes[0, 0]
     for i, r in enumerate(rows):
         y = n - 1 - i
-        c = colour(i)
+        c = PALETTE[0]  # one colour: the rows are labelled, and a cycling palette would repeat colours
         ax.barh(y, r.leave - r.enter, left=r.enter, height=0.6, color=c, edgecolor="white")
         if gap > 0:
             ax.barh(y, gap, left=r.leave, height=0.6, color="none", edgecolor="#777777", hatch="////", linewidth=0)
@@ -211,10 +211,16 @@ def convergence_chart(history: Sequence[Any]) -> Figure:
     ax.plot(k[ok], trial[ok], "o", color=PALETTE[1], markersize=4, label="trial point")
     okb = np.isfinite(best)
     ax.plot(k[okb], best[okb], "-", color=PALETTE[0], linewidth=1.8, label="best so far")
+    finite = np.r_[trial[ok], best[okb]]
+    if finite.size and finite.min() > 0 and finite.max() > 5 * finite.min():
+        ax.set_yscale("log")  # early rounds far above the end: a linear axis would flatten the rest
+        ax.set_title("total cost (log scale)")
+    else:
+        ax.set_title("total cost")
     ax.set_xlabel("round")
     ax.set_ylabel("weighted total cost")
     ax.yaxis.set_major_formatter(_eng(""))
-    ax.set_title("total cost")
+    ax.yaxis.set_minor_formatter(NullFormatter())
     ax.legend()
     ax = axes[0, 1]
     pos = np.isfinite(meas) & (meas > 0)
@@ -283,8 +289,8 @@ def trajectory_chart(agent: str, series: Mapping[str, np.ndarray], slots: Sequen
         if col == "power_W" and shares:
             sh = sorted(shares, key=lambda s: s.enter)
             edges = np.r_[[s.enter for s in sh], sh[-1].leave]
-            ax.stairs([s.share for s in sh], edges, color=PALETTE[3], linewidth=1.3, linestyle="--",
-                      label="allocated share", baseline=None)  # fmt: skip
+            ax.stairs([s.share for s in sh], edges, color=PALETTE[3], linewidth=5, alpha=0.35,
+                      label="allocated share", baseline=None, zorder=1)  # fmt: skip
         _axis_format(ax, unit)
         if np.nanmin(y) >= 0:  # rates, speeds, progress, power, charge: read against zero
             ax.set_ylim(bottom=0, top=max(ax.get_ylim()[1], 1.08 * float(np.nanmax(y)), 1e-12))
@@ -293,7 +299,7 @@ def trajectory_chart(agent: str, series: Mapping[str, np.ndarray], slots: Sequen
         ax.set_title(title)
     handles = [Patch(facecolor=colour(1 + i), alpha=0.4, label=f"slot on {r}") for i, r in enumerate(resources)]
     if shares:
-        handles.append(plt.Line2D([], [], color=PALETTE[3], linestyle="--", label="allocated share"))
+        handles.append(plt.Line2D([], [], color=PALETTE[3], linewidth=5, alpha=0.35, label="allocated share"))
     if handles:
         fig.legend(handles=handles, loc="outside lower center", ncols=min(4, len(handles)))
     fig.suptitle(agent, fontsize=11, fontweight="bold", x=0.01, ha="left")

@@ -40,6 +40,7 @@ div.caution { border-left: 5px solid #E69F00; background: #FFF8E8; padding: 8px 
 table { border-collapse: collapse; margin: 6px 0 10px; font-size: 0.88em; }
 th, td { padding: 4px 8px; border-bottom: 1px solid #DDD; text-align: left; vertical-align: top; }
 th { background: #F2F5F8; font-weight: 600; border-bottom: 1px solid #AAB; }
+th small, small.share { white-space: nowrap; }
 td:first-child { white-space: nowrap; }
 td.n { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
 th.n { text-align: right; }
@@ -83,6 +84,13 @@ def _cost(v: float) -> str:
 
 def _time(v: float) -> str:
     return "–" if not math.isfinite(v) else f"{v:,.1f}".replace(",", "\u2009")
+
+
+def _whole(v: float) -> str:
+    """A time in s without decimals when it is whole (block starts), else one decimal."""
+    if math.isfinite(v) and v == round(v):
+        return f"{v:,.0f}".replace(",", "\u2009")
+    return _time(v)
 
 
 def _pct(v: float) -> str:
@@ -228,7 +236,7 @@ def _prices(f: RunFiles) -> str:
     if slot:
         rows = [[_e(a), _e(r), _time(d.get("enter", math.nan)), _time(d.get("leave", math.nan)),
                  _sig(d.get("d_enter", math.nan)), _sig(d.get("d_leave", math.nan))]
-                for (a, r), d in slot.items()]  # fmt: skip
+                for (a, r), d in sorted(slot.items(), key=lambda kv: (kv[0][1], kv[1].get("enter", 0.0)))]  # fmt: skip
         header = [("agent", False), ("resource", False), ("enter (s)", True), ("leave (s)", True),
                   ("dV/d(enter) (cost/s)", True), ("dV/d(leave) (cost/s)", True)]  # fmt: skip
         out.append(_table(header, rows, "slot-prices"))
@@ -241,24 +249,40 @@ def _prices(f: RunFiles) -> str:
         cell = {(p.agent, p.block): p for p in these}
         rows = [[_e(a)] + [_price_cell(cell.get((a, b))) for b in blocks] for a in agents]
         start = {b.block: b.start_s for b in f.resources if b.resource == name}
-        header = [("agent", False)] + [(f"block {b}<br><small>from {_time(start.get(b, math.nan))} s</small>", True)
+        header = [("agent", False)] + [(f"block {b}<br><small>from {_whole(start.get(b, math.nan))} s</small>", True)
                                        for b in blocks]  # fmt: skip
         out.append(f"<h3>{_e(name)}: dV/d(share) per block (cost/{_e(unit)})</h3>")
         out.append(_table(header, rows, f"prices-{name}"))
-    out.append(
-        '<p class="note">A price is the agent\'s value gradient at the coordinated point: moving the parameter by '
-        "d changes the agent's cost by about price &times; d. A negative dV/d(enter) means the agent would "
-        "gain from entering later; a positive dV/d(leave) means it would pay for leaving later, and "
-        "a negative dV/d(share) is what one more unit of share would save it. Exact CSV values: prices.csv.</p>"
-    )
+    note = [
+        "A price is the agent's value gradient at the coordinated point: moving the parameter by d changes the "
+        "agent's cost by about price &times; d."
+    ]
+    if slot:
+        note.append("A negative dV/d(enter) means the agent would gain from entering later; a positive "
+                    "dV/d(leave) means it would pay for leaving later.")  # fmt: skip
+    if cap:
+        note.append("A negative dV/d(share) is what one more unit of share would save the agent; 0 means the "
+                    "share is not what limits it.")  # fmt: skip
+    note.append("Exact values: prices.csv.")
+    out.append(f'<p class="note">{" ".join(note)}</p>')
     return "".join(out)
+
+
+def _si(v: float, unit: str) -> str:
+    """Three significant digits with an SI prefix for large values (93.0 kW, 1.20 MW)."""
+    if not math.isfinite(v):
+        return "–"
+    for scale, prefix in ((1e9, "G"), (1e6, "M"), (1e3, "k")):
+        if abs(v) >= scale:
+            return f"{_sig(v / scale)} {prefix}{unit}"
+    return f"{_sig(v)} {unit}"
 
 
 def _price_cell(p: PriceRow | None) -> str:
     """A capacity price with the share it was given, small, below it."""
     if p is None:
         return "–"
-    return f'{_sig(p.price)}<br><small class="share">share {_sig(p.value)} {_e(p.unit)}</small>'
+    return f'{_sig(p.price)}<br><small class="share">share {_e(_si(p.value, p.unit))}</small>'
 
 
 def _convergence(f: RunFiles) -> str:
@@ -273,9 +297,13 @@ def _convergence(f: RunFiles) -> str:
 
 
 def _trajectories(f: RunFiles) -> str:
-    out = ['<h2 id="trajectories">Trajectories</h2>',
-           '<p class="note">Each agent\'s planned trajectory at the coordinated parameters; shaded bands are its '
-           "slots, a dashed line its allocated capacity share.</p>"]  # fmt: skip
+    marks = []
+    if any(not math.isfinite(s.share) for s in f.schedule):
+        marks.append("shaded bands are its slots")
+    if any(math.isfinite(s.share) for s in f.schedule):
+        marks.append("a wide light red line its allocated capacity share")
+    text = "Each agent's planned trajectory at the coordinated parameters; " + ", ".join(marks) + "."
+    out = ['<h2 id="trajectories">Trajectories</h2>', f'<p class="note">{text}</p>']
     missing = []
     for a in f.agents:
         series = f.trajectories.get(a.agent)
@@ -297,6 +325,7 @@ def render_report(files: RunFiles) -> str:
     title = f"negotiate run report: {s.get('fleet', '')}"
     n_agents = len(files.agents)
     n_res = len({r.resource for r in files.resources})
+    counts = f"{n_agents} agent{'s' * (n_agents != 1)}, {n_res} resource{'s' * (n_res != 1)}"
     nav = "".join(f'<a href="#{k}">{v}</a>' for k, v in (("summary", "summary"), ("schedule", "schedule"),
                   ("agents", "agents"), ("prices", "prices"), ("convergence", "convergence"),
                   ("trajectories", "trajectories")))  # fmt: skip
@@ -306,7 +335,7 @@ def render_report(files: RunFiles) -> str:
         '<meta name="viewport" content="width=device-width, initial-scale=1">',
         f"<title>{_e(title)}</title><style>{_CSS}</style></head><body><main>",
         f"<h1>{_e(title)}</h1>",
-        f'<p class="sub">{n_agents} agents, {n_res} resources; fleet file <code>{_e(s.get("source", ""))}</code>. '
+        f'<p class="sub">{counts}; fleet file <code>{_e(s.get("source", ""))}</code>. '
         "Units are SI (s, W, kg, m); costs are in each agent's own cost unit.</p>",
         f'<div class="caution"><b>Caution.</b> {_e(CAUTION)}</div>',
         f"<nav>{nav}</nav>",
