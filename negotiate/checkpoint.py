@@ -206,6 +206,8 @@ class RunBook:
         self.state = RunState(spec, method)
         self._best = float("inf")
         self._next = 0
+        self.unsaved: str | None = None
+        """Why rounds are not being saved (None while they are)."""
 
     @classmethod
     def saved_spec(cls, folder: str | Path) -> FleetSpec:
@@ -241,8 +243,17 @@ class RunBook:
         """The coordinator's ``checkpoint`` callback for trial ``k``."""
 
         def save(state: EngineState) -> None:
+            if self.unsaved is not None:
+                return
             self.state.current = (k, {r: list(v) for r, v in orders.items()}, state)
-            write_checkpoint(self.folder, self.state)
+            try:
+                write_checkpoint(self.folder, self.state)
+            except CheckpointError as exc:
+                # A method object that does not pickle (e.g. a class loaded from a file path) cannot be
+                # saved mid-trial: the checkpoint then holds the finished trials only.
+                self.unsaved = str(exc)
+                self.state.current = None
+                write_checkpoint(self.folder, self.state)
 
         return save
 

@@ -258,6 +258,7 @@ class _RemoteExecutor(Executor):
         solver_options: Mapping[str, Any] | None = None,
         time_limit: float | None = None,
         retries: int = 2,
+        grace: float = REPLY_GRACE,
     ) -> None:
         if time_limit is not None and not time_limit > 0:
             raise ValueError(f"'time_limit' must be a number of seconds > 0, got {time_limit!r}")
@@ -266,6 +267,7 @@ class _RemoteExecutor(Executor):
         self.spec = spec
         self.time_limit = time_limit
         self.retries = retries
+        self.grace = float(grace)
         self.solver_options = _time_options(time_limit, solver_options)
         self.lost_workers = 0
         """Worker processes lost (died or replaced after a timeout) since the executor was made."""
@@ -288,7 +290,7 @@ class _RemoteExecutor(Executor):
         if self.time_limit is None:
             return None
         solves = 1 + (2 * MAX_PROBED_ROWS if use_guard else 0)
-        return self.time_limit * solves + REPLY_GRACE
+        return self.time_limit * solves + self.grace
 
     @staticmethod
     def _attach(agent: AgentModel, out: AgentOutcome) -> AgentOutcome:
@@ -318,6 +320,8 @@ class ProcessExecutor(_RemoteExecutor):
         Wall-time limit per solve, s (IPOPT's ``max_wall_time`` plus a timeout on each request).
     retries : int
         How often the requests of a lost worker are sent again within one round.
+    grace : float
+        Seconds added to a request's time budget (building the agent, certification, transport).
     context : {"spawn", "forkserver"}
         Start method of the worker processes (never ``fork``: CasADi and BLAS threads do not survive it).
     """
@@ -330,13 +334,14 @@ class ProcessExecutor(_RemoteExecutor):
         solver_options: Mapping[str, Any] | None = None,
         time_limit: float | None = None,
         retries: int = 2,
+        grace: float = REPLY_GRACE,
         context: str = "spawn",
     ) -> None:
         if not (isinstance(workers, int) and workers >= 1):
             raise ValueError(f"'workers' must be an integer >= 1, got {workers!r}")
         if context not in ("spawn", "forkserver"):
             raise ValueError(f"'context' must be 'spawn' or 'forkserver', got {context!r}")
-        super().__init__(spec, solver_options=solver_options, time_limit=time_limit, retries=retries)
+        super().__init__(spec, solver_options=solver_options, time_limit=time_limit, retries=retries, grace=grace)
         import multiprocessing
 
         self.workers = workers
@@ -454,7 +459,7 @@ class DaskExecutor(_RemoteExecutor):
         closed with the executor.
     workers : int
         Number of workers of the local cluster.
-    solver_options, time_limit, retries
+    solver_options, time_limit, retries, grace
         As for :class:`ProcessExecutor`.
 
     Agent ``i`` is sent preferably to the ``i mod W``-th worker (by address); the scheduler may move it when
@@ -472,6 +477,7 @@ class DaskExecutor(_RemoteExecutor):
         solver_options: Mapping[str, Any] | None = None,
         time_limit: float | None = None,
         retries: int = 2,
+        grace: float = REPLY_GRACE,
     ) -> None:
         try:
             import distributed
@@ -481,8 +487,9 @@ class DaskExecutor(_RemoteExecutor):
             ) from exc
         if not (isinstance(workers, int) and workers >= 1):
             raise ValueError(f"'workers' must be an integer >= 1, got {workers!r}")
-        super().__init__(spec, solver_options=solver_options, time_limit=time_limit, retries=retries)
+        super().__init__(spec, solver_options=solver_options, time_limit=time_limit, retries=retries, grace=grace)
         self._cluster = None
+        self._tag = os.urandom(4).hex()  # task keys unique to this executor on a shared scheduler
         if scheduler is None:
             import logging
 
@@ -525,7 +532,7 @@ class DaskExecutor(_RemoteExecutor):
                 where = {"workers": [addresses[i % len(addresses)]], "allow_other_workers": True} if addresses else {}
                 futures[i] = self.client.submit(
                     _serve, d, blob, params[i], warm[i], use_guard, want_hessian,
-                    key=f"negotiate-solve-{self._round}-{attempt}-{i}-{d[:12]}", pure=False, **where,
+                    key=f"negotiate-{self._tag}-{self._round}-{attempt}-{i}", pure=False, **where,
                 )  # fmt: skip
             # Requests queue on single-threaded workers, so the budget covers the longest queue.
             per_worker = -(-len(pending) // max(1, len(addresses)))

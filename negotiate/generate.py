@@ -97,7 +97,7 @@ def _bridge(n: int, rng: random.Random, width: int) -> list[str]:
         lines += [f"[agents.{name}]", 'model = "vehicle"']
         if loaded:
             lines += [
-                f"payload = {_num(100.0 * round(rng.uniform(340.0, 380.0)))}",
+                f"payload = {_num(rng.choice((34000.0, 36000.0, 38000.0)))}",
                 "max_accel = 0.5",
                 "initial_speed = 6.0",
             ]
