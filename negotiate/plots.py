@@ -37,6 +37,10 @@ __all__ = [
 # Okabe & Ito's colour-blind-safe palette, ordered so that neighbours differ strongly (black kept for limits).
 PALETTE = ("#0072B2", "#E69F00", "#009E73", "#D55E00", "#CC79A7", "#56B4E9", "#F0E442", "#000000")
 INK = "#222222"
+MAX_LABELLED_ROWS = 40
+"""Slot charts with more users number the rows instead of naming them."""
+MAX_LEGEND_USERS = 12
+"""Share charts with more users have no legend of users."""
 GRID = "#DDDDDD"
 
 _STYLE = {
@@ -128,17 +132,18 @@ def _axis_format(ax: Any, unit: str) -> None:
 
 
 @_styled
-def slot_chart(resource: str, slots: Sequence[Any], gap: float, free: Mapping[str, tuple[float, float]] | None = None
-               ) -> Figure:  # fmt: skip
+def slot_chart(resource: str, slots: Sequence[Any], gap: float, free: Mapping[str, tuple[float, float]] | None = None,
+               part: str | None = None) -> Figure:  # fmt: skip
     """Slots on one exclusive resource: time on x, one row per user (in order of entry).
 
     ``slots`` have ``agent``, ``enter`` and ``leave`` (s); ``gap`` (s) is drawn after each slot as the
     required clearance; ``free`` optionally maps an agent to its free-optimum (enter, leave), drawn as an
-    outline so that the shift is visible.
+    outline so that the shift is visible. ``part`` names the group of users drawn (e.g. "users 31–60").
     """
     rows = sorted(slots, key=lambda r: r.enter)
     n = len(rows)
-    fig, axes = _figure(9.0, 1.4 + 0.42 * max(n, 1))
+    per_row = min(0.42, 12.0 / max(n, 1))  # inches; a long queue is compressed to about 13 in in all
+    fig, axes = _figure(9.0, 1.4 + per_row * max(n, 1))
     ax = axes[0, 0]
     for i, r in enumerate(rows):
         y = n - 1 - i
@@ -150,11 +155,16 @@ def slot_chart(resource: str, slots: Sequence[Any], gap: float, free: Mapping[st
             f0, f1 = free[r.agent]
             ax.barh(y, f1 - f0, left=f0, height=0.84, color="none", edgecolor=INK, linewidth=0.9, linestyle=":")
     ax.margins(x=0.02)
-    ax.set_yticks(range(n), [r.agent for r in reversed(rows)])
+    if n <= MAX_LABELLED_ROWS:
+        ax.set_yticks(range(n), [r.agent for r in reversed(rows)])
+    else:  # names would overlap: number the rows in order of entry instead
+        ticks = list(range(0, n, max(1, n // 10)))
+        ax.set_yticks([n - 1 - k for k in ticks], [f"#{k + 1}" for k in ticks])
+        ax.set_ylabel("users in order of entry")
     ax.set_ylim(-0.7, n - 0.3)
     ax.grid(False, axis="y")
     ax.set_xlabel("time (s)")
-    ax.set_title(f"{resource}: slots in order of entry")
+    ax.set_title(f"{resource}: slots in order of entry" + (f", {part}" if part else ""))
     handles = [Patch(facecolor=colour(0), label="coordinated slot")]
     if gap > 0:
         handles.append(Patch(facecolor="none", edgecolor="#777777", hatch="////", label=f"required gap {gap:g} s"))
@@ -193,8 +203,11 @@ def capacity_chart(resource: str, unit: str, blocks: Sequence[Any], shares: Sequ
     ax.yaxis.set_major_formatter(_eng(unit))
     ax.set_xlabel("time (s)")
     ax.set_ylabel(f"share ({unit})")
-    ax.set_title(f"{resource}: shares per block and limit")
-    ax.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0))
+    if len(users) <= MAX_LEGEND_USERS:
+        ax.set_title(f"{resource}: shares per block and limit")
+        ax.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0))
+    else:
+        ax.set_title(f"{resource}: shares of {len(users)} users per block (stacked) and limit (black)")
     return fig
 
 

@@ -19,7 +19,14 @@ from pathlib import Path
 from negotiate import plots
 from negotiate.results import PriceRow, RunFiles, load_run
 
-__all__ = ["CAUTION", "render_report", "write_report"]
+__all__ = ["CAUTION", "MAX_TRAJECTORIES", "render_report", "write_report"]
+
+SLOT_ROWS = 30
+"""Users per slot chart (a longer queue is split into several charts)."""
+MAX_SLOT_CHARTS = 4
+"""Slot charts per resource at most."""
+MAX_TRAJECTORIES = 24
+"""Larger fleets show the trajectories of the agents whose cost rose most (all are in the CSV files)."""
 
 CAUTION = (
     "negotiate is a planning and research tool, not a safety controller. Gaps, headways, speed limits and "
@@ -166,7 +173,10 @@ def _summary(f: RunFiles) -> str:
     else:
         rows.append(("centralized optimum", "not computed (run with --verify)"))
     for res, order in (s.get("orders") or {}).items():
-        rows.append((f"order on {_e(res)}", " → ".join(_e(a) for a in order)))
+        shown = " → ".join(_e(a) for a in order[:12])
+        if len(order) > 12:
+            shown += f" → … ({len(order)} users in all; the full order is in run.json)"
+        rows.append((f"order on {_e(res)}", shown))
     body = "".join(f"<tr><th>{k}</th><td>{v}</td></tr>" for k, v in rows)
     return f'<h2 id="summary">Run summary</h2><table id="summary-table" class="kv"><tbody>{body}</tbody></table>'
 
@@ -187,9 +197,18 @@ def _schedule(f: RunFiles) -> str:
         if not slots:
             continue
         fr = {a: (v[0], v[1]) for a, v in free.get(r.resource, {}).items() if all(map(math.isfinite, v))}
-        fig = plots.slot_chart(r.resource, slots, r.gap_s if math.isfinite(r.gap_s) else 0.0, fr)
-        out.append(f"<h3>{_e(r.resource)} (exclusive, gap {r.gap_s:g} s)</h3>")
-        out.append(_img(plots.png(fig), f"slots on {r.resource}"))
+        gap = r.gap_s if math.isfinite(r.gap_s) else 0.0
+        out.append(f"<h3>{_e(r.resource)} (exclusive, gap {r.gap_s:g} s, {len(slots)} users)</h3>")
+        slots.sort(key=lambda s: s.enter)
+        # a long queue in one chart would shrink every slot and gap to a dot: a chart per group of users
+        groups = [slots[i : i + SLOT_ROWS] for i in range(0, len(slots), SLOT_ROWS)]
+        for g, part in enumerate(groups[:MAX_SLOT_CHARTS]):
+            title = None if len(groups) == 1 else f"users {g * SLOT_ROWS + 1}–{g * SLOT_ROWS + len(part)}"
+            fig = plots.slot_chart(r.resource, part, gap, fr, part=title)
+            out.append(_img(plots.png(fig), f"slots on {r.resource}" + (f", {title}" if title else "")))
+        if len(groups) > MAX_SLOT_CHARTS:
+            out.append(f'<p class="note">The first {MAX_SLOT_CHARTS * SLOT_ROWS} of {len(slots)} users are drawn; '
+                       "every slot is in the price table and in prices.csv.</p>")  # fmt: skip
     for name in f.capacity_names():
         blocks = [b for b in f.resources if b.resource == name]
         shares = [s for s in f.schedule if s.resource == name and math.isfinite(s.share)]
@@ -305,7 +324,13 @@ def _trajectories(f: RunFiles) -> str:
     text = "Each agent's planned trajectory at the coordinated parameters; " + ", ".join(marks) + "."
     out = ['<h2 id="trajectories">Trajectories</h2>', f'<p class="note">{text}</p>']
     missing = []
-    for a in f.agents:
+    shown = f.agents
+    if len(shown) > MAX_TRAJECTORIES:
+        shown = tuple(sorted(shown, key=lambda a: -a.increase if math.isfinite(a.increase) else 0.0)
+                      [:MAX_TRAJECTORIES])  # fmt: skip
+        out.append(f'<p class="note">{len(f.agents)} agents: shown are the {MAX_TRAJECTORIES} whose cost rose '
+                   "most with coordination; every agent's trajectory is in trajectories/.</p>")  # fmt: skip
+    for a in shown:
         series = f.trajectories.get(a.agent)
         if not series or "time_s" not in series:
             missing.append(a.agent)

@@ -315,3 +315,37 @@ class TestNumbers:
         """Large costs as whole numbers, small ones with four digits; increases as signed percent."""
         assert _cost(429217668.79) == "429\u2009217\u2009669" and _cost(12.3456) == "12.35"
         assert _pct(2.2) == "+220 %" and _pct(0.0744) == "+7.4 %" and _pct(-0.5) == "-50 %"
+
+
+class TestLargeFleet:
+    """A fleet too large for one chart per agent or one slot chart per resource (copies of one truck)."""
+
+    def test_charts_are_split_and_capped(self, files: RunFiles, monkeypatch: pytest.MonkeyPatch) -> None:
+        """36 bridge users: two slot charts (30 + 6); trajectories only for the agents whose cost rose most."""
+        import dataclasses
+
+        from negotiate import report
+
+        monkeypatch.setattr(report, "MAX_TRAJECTORIES", 3)  # keeps the test fast; the rule is the same
+        truck = next(a for a in files.agents if a.agent == "truck-a")
+        copies = [f"truck-a{k:02d}" for k in range(34)]
+        extra_agents = tuple(dataclasses.replace(truck, agent=n, increase=1e9 + k)
+                             for k, n in enumerate(copies))  # fmt: skip
+        extra_slots = tuple(dataclasses.replace(s, agent=n) for s in files.schedule if s.agent == "truck-a"
+                            for n in copies)  # fmt: skip
+        extra_prices = tuple(dataclasses.replace(p, agent=n) for p in files.prices if p.agent == "truck-a"
+                             for n in copies)  # fmt: skip
+        big = dataclasses.replace(
+            files,
+            agents=files.agents + extra_agents,
+            schedule=files.schedule + extra_slots,
+            prices=files.prices + extra_prices,
+            trajectories={**files.trajectories, **{n: files.trajectories["truck-a"] for n in copies}},
+        )
+        html = report.render_report(big)
+        assert "bridge: slots" not in html  # titles live in the images; the alt texts name the parts
+        assert 'alt="slots on bridge, users 1–30"' in html and 'alt="slots on bridge, users 31–36"' in html
+        assert "(exclusive, gap 6 s, 36 users)" in html
+        traj = re.findall(r'alt="trajectories of ([^"]+)"', html)
+        assert traj == ["truck-a33", "truck-a32", "truck-a31"]  # the largest increases, largest first
+        assert "40 agents: shown are the 3 whose cost rose most" in html
