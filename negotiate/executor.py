@@ -551,11 +551,16 @@ class DaskExecutor(_RemoteExecutor):
                         self.lost_workers += 1
                     else:
                         out[i] = _failed(agents[i], params[i], Status.FAILED, f"worker error: {exc!r}")
-                else:  # still running or queued after the budget: counts as hung
-                    assert budget is not None
+                elif budget is not None and fut.status in ("pending", "processing"):
+                    # Still running or queued after the budget: counts as hung.
                     out[i] = self._hung(agents[i], params[i], budget)
                     stuck_workers.update(self._where(fut))
                     fut.cancel()
+                elif attempt < self.retries:  # lost with its worker or cancelled by the cluster
+                    retry.append(i)
+                    self.lost_workers += 1
+                else:
+                    out[i] = _failed(agents[i], params[i], Status.FAILED, f"no answer (request {fut.status})")
             if stuck_workers:
                 self.lost_workers += len(stuck_workers)
                 self.client.restart_workers(sorted(stuck_workers), raise_for_error=False)
