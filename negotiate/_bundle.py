@@ -21,12 +21,13 @@ so every cut passes below the value at the centre and the predicted decrease is 
 re-shifted whenever the centre moves. A cut is only ever taken from a converged solve; the nonsmooth
 guard's one-sided gradients enter as extra cuts at the same point.
 
-The proximal term is a variable metric, one block per agent: ``kappa/2 sum_i (u_i - u_ci)^T M_i (u_i - u_ci)``
-with ``M_i`` a damped BFGS estimate of agent i's scaled value Hessian, updated from successive gradients of
-that agent (Powell's damping keeps it positive definite where ``V_i`` is not convex), in the manner of the
-variable-metric bundle methods of Lemarechal & Sagastizabal (1997, Math. Programming 76:393-410). The
-cutting planes still carry the kinks; the metric supplies the curvature that plain cuts need many rounds to
-learn on smooth pieces.
+The proximal term is a variable metric, one block per agent: ``kappa/2 sum_i (u_i - u_ci)^T M_i (u_i - u_ci)``,
+in the manner of the variable-metric bundle methods of Lemarechal & Sagastizabal (1997, Math. Programming
+76:393-410). Where agent i certifies ``smooth``, ``M_i`` is its value Hessian from the KKT sensitivity
+system, made positive definite (eigenvalues raised to a floor); elsewhere it is a damped BFGS estimate
+updated from successive gradients of that agent (Powell's damping keeps it positive definite where ``V_i``
+is not convex). The cutting planes still carry the kinks; the metric supplies the curvature that plain cuts
+need many rounds to learn on smooth pieces.
 
 Serious step when the trial total is at most ``total(c) - m * delta`` (``delta`` = predicted decrease, the
 centre's total minus the model's value at the trial), null step otherwise. The proximity factor ``kappa``
@@ -38,7 +39,8 @@ it stops, the method resets the metric to that of a plain first step from the ce
 (a learned metric can overstate the curvature on kinked or flat pieces and so promise too little).
 
 Options: ``serious`` (m = 0.1), ``downshift`` (gamma relative to the initial metric scale, 1e-3),
-``max_cuts`` (per agent, 25), ``first_step`` (0.1, scaled length of the first step).
+``max_cuts`` (per agent, 25), ``first_step`` (0.1, scaled length of the first step), ``hessian_metric``
+(True: use smooth agents' value Hessians as their metric).
 """
 
 from __future__ import annotations
@@ -52,6 +54,7 @@ from negotiate.qp import solve_qp
 @register_method
 class ProximalBundle(Method):
     name = "bundle"
+    wants_hessian = True
 
     def start(self, first: Evaluation) -> None:
         self.s = self.feasible.scale
@@ -59,6 +62,7 @@ class ProximalBundle(Method):
         self.gamma_rel = float(self.options.get("downshift", 1e-3))
         self.max_cuts = int(self.options.get("max_cuts", 25))
         self.first_step = float(self.options.get("first_step", 0.1))
+        self.use_hessian = bool(self.options.get("hessian_metric", True))
         self.lay = self.feasible.layout
         self.cuts: list[list[tuple[np.ndarray, float, np.ndarray]]] = [[] for _ in self.lay.names]
         self.center = first if first.ok else None
@@ -78,7 +82,7 @@ class ProximalBundle(Method):
             self.update_metric(first)
 
     def update_metric(self, ev: Evaluation) -> None:
-        """Damped BFGS update of each agent's metric from its previous and its new gradient."""
+        """Each agent's metric: its value Hessian where it is smooth, else a damped BFGS update."""
         assert self.mu is not None
         for i, rep in enumerate(ev.reports):
             if rep.gradient is None:
@@ -86,6 +90,12 @@ class ProximalBundle(Method):
             sl = self.lay.slice(i)
             u, g = rep.p / self.s[sl], ev.weights[i] * rep.gradient * self.s[sl]
             prev, self.last[i] = self.last[i], (u, g)
+            if self.use_hessian and rep.hessian is not None and not rep.flagged:
+                Hu = ev.weights[i] * rep.hessian * np.outer(self.s[sl], self.s[sl])
+                lam, Q = np.linalg.eigh(0.5 * (Hu + Hu.T))
+                floor = max(1e-6 * float(np.max(np.abs(lam), initial=0.0)), 1e-3 * self.mu)
+                self.M[i] = (Q * np.clip(lam, floor, 1e8 * self.mu)) @ Q.T
+                continue
             if prev is None:
                 continue
             d, y = u - prev[0], g - prev[1]

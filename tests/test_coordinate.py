@@ -247,7 +247,8 @@ class TestFailedAgents:
         res = coordinate([fragile_agent()], grid, settings(method, max_rounds=40, tolerance=1e-8))
         assert res.evaluation.ok  # the incumbent is a converged point
         assert any(h.failed for h in res.history)  # the failures were seen and reported
-        assert res.P[0] <= 1.5 + 1e-9
+        # the agent's own solve accepts p - 1.5 <= 0 up to the re-check's feasibility tolerance (1e-6 relative)
+        assert res.P[0] <= 1.5 + 2e-6
         # The optimum sits on the edge where solves start to fail: a method learns of that edge only through
         # failed trials and halved steps, so its distance to it is limited by the halvings it had time for.
         np.testing.assert_allclose(res.P, [1.5], atol=1e-2)
