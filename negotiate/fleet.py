@@ -743,6 +743,7 @@ def _parse(data: Any, source: str) -> tuple[FleetSpec, str]:
         agents=tuple(agents),
         coordinator=coordinator,
         source=source,
+        description=str(description),
     )
     return spec, description
 

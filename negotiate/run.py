@@ -85,6 +85,7 @@ class RunResult:
         c = self.coordination
         out: dict[str, Any] = {
             "fleet": self.spec.name,
+            "description": self.spec.description,
             "source": self.spec.source,
             "settings": {**asdict(self.spec.coordinator), "method": c.method},
             "status": c.status,

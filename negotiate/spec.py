@@ -156,13 +156,15 @@ class AgentSpec:
 
 @dataclass(frozen=True)
 class FleetSpec:
-    """A whole fleet: resources, agents and coordinator settings, plus where it was read from."""
+    """A whole fleet: resources, agents and coordinator settings, plus where it was read from and what it
+    describes."""
 
     name: str
     resources: tuple[Resource, ...]
     agents: tuple[AgentSpec, ...]
     coordinator: CoordinatorSettings = field(default_factory=CoordinatorSettings)
     source: str = "<memory>"
+    description: str = ""
 
     def resource(self, name: str) -> Resource:
         """The resource called ``name`` (KeyError if there is none)."""
