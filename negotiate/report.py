@@ -41,6 +41,7 @@ main { max-width: 940px; margin: 0 auto; padding: 24px 20px 48px; }
 h1 { font-size: 1.55em; margin: 0 0 4px; }
 h2 { font-size: 1.2em; margin: 34px 0 8px; padding-bottom: 3px; border-bottom: 2px solid #0072B2; }
 h3 { font-size: 1.0em; margin: 18px 0 6px; }
+p.desc { margin: 0 0 4px; font-size: 1.05em; }
 p.sub { color: #555; margin: 0 0 14px; }
 p.note { color: #555; font-size: 0.9em; margin: 6px 0 10px; }
 div.caution { border-left: 5px solid #E69F00; background: #FFF8E8; padding: 8px 12px; margin: 12px 0 18px; }
@@ -360,6 +361,7 @@ def render_report(files: RunFiles) -> str:
         '<meta name="viewport" content="width=device-width, initial-scale=1">',
         f"<title>{_e(title)}</title><style>{_CSS}</style></head><body><main>",
         f"<h1>{_e(title)}</h1>",
+        f'<p class="desc">{_e(s["description"])}</p>' if s.get("description") else "",
         f'<p class="sub">{counts}; fleet file <code>{_e(s.get("source", ""))}</code>. '
         "Units are SI (s, W, kg, m); costs are in each agent's own cost unit.</p>",
         f'<div class="caution"><b>Caution.</b> {_e(CAUTION)}</div>',
