@@ -138,6 +138,7 @@ def _table(header: list[str], rows: list[list[str]]) -> str:
 
 
 def _run(args: argparse.Namespace) -> int:
+    import os
     import signal
 
     from negotiate.checkpoint import CheckpointError, RunBook
@@ -171,23 +172,32 @@ def _run(args: argparse.Namespace) -> int:
     bar = None
     executor = None
 
-    def interrupted(signum, frame):  # type: ignore[no-untyped-def]
-        raise KeyboardInterrupt
+    # A signal is acted on after the current round, once its checkpoint is written: raising inside a solve
+    # would end it as a failed solve (CasADi turns the interrupt into a solver status). A second signal
+    # exits at once; the checkpoint on disk is the last complete round either way.
+    stop: list[int] = []
 
-    previous = signal.signal(signal.SIGTERM, interrupted)
+    def interrupted(signum, frame):  # type: ignore[no-untyped-def]
+        if stop:
+            os._exit(130)
+        stop.append(signum)
+
+    previous = {s: signal.signal(s, interrupted) for s in (signal.SIGINT, signal.SIGTERM)}
     try:
         executor = make_executor(spec, workers=args.workers, scheduler=args.scheduler, cluster=args.cluster)
         agents = build_agents(spec)
         method = args.method or spec.coordinator.method
         print(f"fleet {spec.name}: {len(agents)} agents, {len(spec.resources)} resources; method {method}, "
               f"orders {spec.coordinator.order}")  # fmt: skip
-        progress = None
         if not args.quiet:
             from tqdm import tqdm
 
             bar = tqdm(total=None, unit="round", file=sys.stderr, dynamic_ncols=True, leave=False)
 
-            def progress(rec):  # type: ignore[no-untyped-def]
+        def progress(rec):  # type: ignore[no-untyped-def]
+            if stop:
+                raise KeyboardInterrupt
+            if bar is not None:
                 bar.update(1)
                 bar.set_postfix_str(
                     f"total {_fmt(rec.best_total, 9)}  measure {rec.measure:.1e}  flagged {len(rec.flagged)}"
@@ -221,7 +231,8 @@ def _run(args: argparse.Namespace) -> int:
               file=sys.stderr)  # fmt: skip
         return 130
     finally:
-        signal.signal(signal.SIGTERM, previous)
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
         if executor is not None:
             executor.close()
     if bar is not None:

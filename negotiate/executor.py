@@ -198,6 +198,13 @@ def _build_from_record(blob: bytes) -> ParametricNLP:
     return built[0].model.problem
 
 
+def _ignore_interrupts() -> None:
+    """Worker processes leave Ctrl-C to the coordinator (an interrupt inside IPOPT ends the solve as failed)."""
+    import signal
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
 def _cached(digest: str, blob: bytes) -> tuple[ParametricNLP, threading.Lock]:
     with _CACHE_LOCK:
         entry = _CACHE.get(digest)
@@ -351,7 +358,9 @@ class ProcessExecutor(_RemoteExecutor):
     def _pool(self, j: int) -> ProcessPoolExecutor:
         pool = self._pools[j]
         if pool is None:
-            pool = self._pools[j] = ProcessPoolExecutor(max_workers=1, mp_context=self._context)
+            pool = self._pools[j] = ProcessPoolExecutor(
+                max_workers=1, mp_context=self._context, initializer=_ignore_interrupts
+            )
         return pool
 
     def _replace(self, j: int, kill: bool) -> None:
