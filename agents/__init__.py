@@ -26,10 +26,10 @@ the value and vertices / random points of a reachable set.
 
 from __future__ import annotations
 
-from agents.capacity import build_capacity
-from agents.machine import build_machine
+from importlib import import_module
+from typing import Any
+
 from agents.params import CapacityParams, MachineParams, StationParams, VehicleParams, ZoneParams
-from agents.vehicle import build_vehicle
 
 __all__ = [
     "MODELS",
@@ -44,5 +44,17 @@ __all__ = [
     "build_vehicle",
 ]
 
-MODELS = {"vehicle": build_vehicle, "machine": build_machine, "capacity": build_capacity}
 PARAMETERS = {"vehicle": VehicleParams, "machine": MachineParams, "capacity": CapacityParams}
+
+# The builders import CasADi; they are loaded on first use so that the parameter records (and the fleet
+# parser that reads them) stay free of it.
+_BUILDERS = {"build_vehicle": "agents.vehicle", "build_machine": "agents.machine", "build_capacity": "agents.capacity"}
+
+
+def __getattr__(name: str) -> Any:
+    if name in _BUILDERS:
+        return getattr(import_module(_BUILDERS[name]), name)
+    if name == "MODELS":
+        return {"vehicle": __getattr__("build_vehicle"), "machine": __getattr__("build_machine"),
+                "capacity": __getattr__("build_capacity")}  # fmt: skip
+    raise AttributeError(f"module 'agents' has no attribute {name!r}")

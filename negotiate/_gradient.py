@@ -13,7 +13,10 @@ feasible set, so the direction is the constrained steepest descent over the gene
 diminishing length ``alpha_k = alpha_0 / (1 + k)`` and no line search (a subgradient step need not
 descend); the best point seen is kept as the incumbent. Stopping measure: the first-order predicted
 decrease ``g . (P - Proj(P - alpha scale^2 g))`` of a step of unit length in scaled units
-(``alpha = 1 / max|scale g|``; not the backtracked step), relative to ``max(1, |total|)``.
+(``alpha = 1 / max|scale g|``; not the backtracked step), relative to ``max(1, |total|)``; in a
+subgradient step, the decrease its local model promises for a step of that length. Because the step is
+normalised by the largest entry, parameters with much smaller gradients move little in it: the test can
+stop early when one agent's gradient dominates (the bundle and Newton methods do not share this).
 
 Options (``[coordinator.options]``): ``armijo`` (1e-4), ``first_step`` (0.05, length of the first step in
 scaled units), ``guard_fallback`` (True: take subgradient steps when agents are flagged).
@@ -64,20 +67,23 @@ class ProjectedGradient(Method):
         assert self.x is not None
         x, s, lay, fs = self.x, self.s, self.feasible.layout, self.feasible
         n, N = lay.n, len(lay.names)
+        # Variables (u, alpha * rho_i): the objective alpha * (sum_i rho_i) + ||u - u_x||^2 / 2 keeps every
+        # variable of order one, so a small term 1e-6/2 (alpha rho)^2 makes the QP strictly convex without
+        # biasing rho (a term in rho itself would be scaled by the costs and suppress the model's decrease).
         rows, ub = [], []
         for i, rep in enumerate(x.reports):
             sl = lay.slice(i)
             for g in self.local_gradients(rep):
                 row = np.zeros(n + N)
-                row[sl] = x.weights[i] * g * s[sl]
+                row[sl] = alpha * x.weights[i] * g * s[sl]
                 row[n + i] = -1.0
                 rows.append(row)
-                ub.append(float(x.weights[i] * g @ x.P[sl]))
+                ub.append(float(alpha * x.weights[i] * g @ x.P[sl]))
         A = np.vstack([np.array(rows), np.hstack([fs.A * s[None, :], np.zeros((fs.A.shape[0], N))])])
         uba = np.concatenate([ub, fs.b])
-        H = np.diag(np.concatenate([np.full(n, 1.0 / alpha), np.full(N, 1e-9 / alpha)]))
+        H = np.diag(np.concatenate([np.ones(n), np.full(N, 1e-6)]))
         u = x.P / s
-        q = np.concatenate([-u / alpha, np.ones(N)])
+        q = np.concatenate([-u, np.ones(N)])
         big = 1e20
         res = solve_qp(
             H, q, A, np.full(uba.size, -np.inf), uba,
@@ -117,10 +123,9 @@ class ProjectedGradient(Method):
             self.n_sub += 1
             return Proposal(Pn, measure, False, (note + " subgradient step").strip())
         # The stopping measure uses a step of unit length in scaled units along the largest gradient entry
-        # (up to one window width), so that it does not shrink just because the line search shortened the
-        # step (it would "converge" at a kink it cannot resolve).
-        alpha_ref = 1.0 / max(gu, 1e-300)
-        _P_ref, pred_ref = self.trial(g, alpha_ref)
+        # (up to one window width, so the projection QP stays well scaled), so that it does not shrink just
+        # because the line search shortened the step (it would "converge" at a kink it cannot resolve).
+        _P_ref, pred_ref = self.trial(g, 1.0 / max(gu, 1e-300))
         measure = pred_ref / scale
         if self.tolerance_reached(measure):
             return Proposal(None, measure, True, "predicted decrease below tolerance")

@@ -11,7 +11,9 @@ step (V_i need not be convex, and is linear in places), in scaled coordinates. T
 backtracked (Armijo on the true total) along the segment to the QP's solution, which stays feasible.
 Where some agent is not smooth, or is flagged by the nonsmooth guard, that round falls back to the
 projected-gradient step of :mod:`negotiate._gradient`. Stopping measure: the
-QP's predicted decrease ``-(g.d + d.B.d / 2)`` relative to ``max(1, |total|)``.
+QP's predicted decrease ``-(g.d + d.B.d / 2)`` relative to ``max(1, |total|)``; it stops only when the
+gradient method's step-independent measure is below the tolerance too (a Hessian that overstates the
+curvature near a kink would promise too little).
 """
 
 from __future__ import annotations
@@ -66,7 +68,13 @@ class ProjectedNewton(ProjectedGradient):
         pred = -float(gu @ d + 0.5 * d @ B @ d)
         measure = pred / max(1.0, abs(self.x.total))
         if self.tolerance_reached(measure):
-            return Proposal(None, measure, True, "Newton predicted decrease below tolerance")
+            # A Hessian that overstates the curvature (near a kink) promises too little: stop only if the
+            # gradient method's step-independent measure agrees, else take a gradient step from here.
+            g = self.x.gradient
+            _P, pred_ref = self.trial(g, 1.0 / max(float(np.max(np.abs(g * s))), 1e-300))
+            if self.tolerance_reached(pred_ref / max(1.0, abs(self.x.total))):
+                return Proposal(None, measure, True, "Newton predicted decrease below tolerance")
+            return None
         self.t = 1.0
         self.newton_pending = (d * s, float(self.x.gradient @ (d * s)))
         self.newton_steps += 1
