@@ -309,8 +309,10 @@ def _sweep(args: argparse.Namespace) -> int:
     paths = write_sweep(res, args.out)
     ok = int(res.converged.sum())
     if res.window is not None:
-        print(f"reachable window of {res.param}: {res.window[0]:g} .. {res.window[1]:g} {res.unit} "
-              "(outside it the agent may have no feasible plan)")  # fmt: skip
+        print(f"reachable window of {res.param} with the other parameters at the free optimum: "
+              f"{res.window[0]:g} .. {res.window[1]:g} {res.unit}")  # fmt: skip
+        if not (res.window[0] <= min(args.start, args.stop) and max(args.start, args.stop) <= res.window[1]):
+            print("  the sweep leaves that window: the agent may have no feasible plan there")
     print(f"{res.agent}: {res.param} from {args.start:g} to {args.stop:g} {res.unit} in {res.values.size} points; "
           f"{ok} converged, {res.values.size - ok} failed")  # fmt: skip
     if res.changes:

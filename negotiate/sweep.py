@@ -201,7 +201,25 @@ def sweep_agent(
     values = np.linspace(float(start), float(stop), int(steps))
     b = agent.free_optimum if base is None else np.asarray(base, dtype=float)
     res = sweep_problem(agent.problem, b, k, values, agent=agent.name, unit=agent.params[k].unit)
-    return replace(res, param=param, window=(float(agent.reachable.lower[k]), float(agent.reachable.upper[k])))
+    return replace(res, param=param, window=line_window(agent, b, k))
+
+
+def line_window(agent: AgentModel, base: np.ndarray, index: int) -> tuple[float, float]:
+    """Interval of parameter ``index`` inside the agent's reachable set with the others held at ``base``.
+
+    The reachable set is ``lower <= p <= upper, A p <= b``; along ``p = base + t e_index`` each row gives
+    one bound on ``t``. An empty interval comes back as ``(nan, nan)``."""
+    R = agent.reachable
+    lo, hi = float(R.lower[index]), float(R.upper[index])
+    if R.A.shape[0]:
+        a = R.A[:, index]
+        rest = R.b - R.A @ base + a * base[index]  # a_k * v <= b - sum_{j != k} a_j base_j
+        for ak, rk in zip(a, rest, strict=True):
+            if ak > 0:
+                hi = min(hi, rk / ak)
+            elif ak < 0:
+                lo = max(lo, rk / ak)
+    return (lo, hi) if lo <= hi else (float("nan"), float("nan"))
 
 
 def sweep_fleet(spec: FleetSpec, agent: str, param: str, start: float, stop: float, steps: int) -> SweepResult:
