@@ -25,10 +25,10 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from negotiate.coordinate import RoundRecord
 from negotiate.spec import CapacityResource, ExclusiveResource
 
 if TYPE_CHECKING:
-    from negotiate.coordinate import RoundRecord
     from negotiate.run import RunResult
 
 __all__ = [
@@ -40,7 +40,7 @@ __all__ = [
     "PriceRow",
     "ResourceRow",
     "RunFiles",
-    "SlotRow",
+    "ScheduleRow",
     "load_run",
     "trajectory_filename",
     "write_agents",
@@ -198,8 +198,15 @@ def write_result_files(run: RunResult, out_dir: str | Path) -> list[Path]:
 
 
 @dataclass(frozen=True)
-class SlotRow:
-    """One row of ``schedule.csv``: a slot (``share`` nan) or a capacity share in one block."""
+class ScheduleRow:
+    """One slot (or capacity share) of the schedule, with the agent's value and prices (a row of
+    ``schedule.csv``).
+
+    ``enter``/``leave`` in s (for a capacity share: the block's start and end), ``share`` in the
+    resource's unit (``nan`` for slots), ``value`` the agent's optimal cost there, ``d_enter``/``d_leave``
+    its value gradient w.r.t. the slot's entry and exit (cost per s), ``d_share`` w.r.t. the share (cost per
+    unit of share).
+    """
 
     agent: str
     resource: str
@@ -269,8 +276,8 @@ class RunFiles:
 
     folder: Path
     summary: Mapping[str, Any]
-    schedule: tuple[SlotRow, ...]
-    history: tuple[RoundRecordRow, ...]
+    schedule: tuple[ScheduleRow, ...]
+    history: tuple[RoundRecord, ...]
     prices: tuple[PriceRow, ...]
     agents: tuple[AgentRow, ...]
     resources: tuple[ResourceRow, ...]
@@ -281,20 +288,6 @@ class RunFiles:
 
     def capacity_names(self) -> list[str]:
         return list(dict.fromkeys(r.resource for r in self.resources if r.kind == "capacity"))
-
-
-@dataclass(frozen=True)
-class RoundRecordRow:
-    """One row of ``history.csv`` (costs are weighted fleet totals; ``measure`` is dimensionless)."""
-
-    round: int
-    trial_total: float
-    best_total: float
-    measure: float
-    agent_solves: int
-    flagged: tuple[str, ...]
-    failed: tuple[str, ...]
-    note: str
 
 
 class RunFolderError(FileNotFoundError):
@@ -319,13 +312,13 @@ def load_run(folder: str | Path) -> RunFiles:
         )
     summary = json.loads((d / "run.json").read_text())
     schedule = tuple(
-        SlotRow(r["agent"], r["resource"], _float(r["enter"]), _float(r["leave"]), _float(r["share"]),
+        ScheduleRow(r["agent"], r["resource"], _float(r["enter"]), _float(r["leave"]), _float(r["share"]),
                 _float(r["value"]), _float(r["free_value"]), _float(r["d_enter"]), _float(r["d_leave"]),
                 _float(r["d_share"]), r["verdict"])
         for r in _read_csv(d / "schedule.csv")
     )  # fmt: skip
     history = tuple(
-        RoundRecordRow(int(r["round"]), _float(r["trial_total"]), _float(r["best_total"]), _float(r["measure"]),
+        RoundRecord(int(r["round"]), _float(r["trial_total"]), _float(r["best_total"]), _float(r["measure"]),
                        int(r["agent_solves"]), _split(r["flagged"]), _split(r["failed"]), r["note"])
         for r in _read_csv(d / "history.csv")
     )  # fmt: skip

@@ -22,32 +22,10 @@ from negotiate.agent import AgentModel
 from negotiate.centralized import CentralizedResult, solve_centralized
 from negotiate.coordinate import CoordinationResult, Method, RoundRecord, coordinate, register_method
 from negotiate.orders import OrderTrial, search_orders
+from negotiate.results import ScheduleRow
 from negotiate.spec import CapacityResource, FleetSpec
 
 __all__ = ["RunResult", "ScheduleRow", "resolve_method", "run_fleet", "write_outputs"]
-
-
-@dataclass(frozen=True)
-class ScheduleRow:
-    """One slot (or capacity share) of the schedule, with the agent's value and prices.
-
-    ``enter``/``leave`` in s (for a capacity share: the block's start and end), ``share`` in the
-    resource's unit (``nan`` for slots), ``value`` the agent's optimal cost there, ``d_enter``/``d_leave``
-    its value gradient w.r.t. the slot's entry and exit (cost per s), ``d_share`` w.r.t. the share (cost per
-    unit of share).
-    """
-
-    agent: str
-    resource: str
-    enter: float
-    leave: float
-    share: float
-    value: float
-    free_value: float
-    d_enter: float
-    d_leave: float
-    d_share: float
-    verdict: str
 
 
 @dataclass(frozen=True)
