@@ -73,6 +73,10 @@ __all__ = [
     "make_executor",
 ]
 
+BATCHES = 4
+"""A local worker receives its agents of a round in this many batches (fewer round trips; a hung batch is
+split into single requests to find the agent that hangs)."""
+
 REPLY_GRACE = 10.0
 """Seconds added to a remote request's time budget for building the agent, certification and transport."""
 
@@ -146,6 +150,10 @@ class Executor:
         self, agents: Sequence[AgentModel], params: Sequence[np.ndarray], warm: Sequence[LocalResult | None]
     ) -> list[LocalResult]:
         return [o.result for o in self.evaluate(agents, params, warm)]
+
+    def prepare(self, agents: Sequence[AgentModel]) -> None:
+        """Build the agents where they will be solved, ahead of the first round (optional: the first request
+        builds an agent anyway). Nothing to do in process."""
 
     def close(self) -> None:
         """Release processes or connections (nothing for the in-process executor)."""
@@ -223,6 +231,17 @@ def _serve(
     with lock:  # a ParametricNLP is not thread-safe; Dask workers may run several threads
         out = evaluate_agent(problem, p, warm, use_guard=use_guard, want_hessian=want_hessian)
     return out, os.getpid()
+
+
+def _serve_batch(requests: list[tuple[Any, ...]]) -> list[tuple[AgentOutcome, int]]:
+    """Several requests in a worker, answered in order."""
+    return [_serve(*r) for r in requests]
+
+
+def _prepare(digest: str, blob: bytes) -> int:
+    """Build (or find) one agent in this worker's cache; the worker's process id."""
+    _cached(digest, blob)
+    return os.getpid()
 
 
 def cached_agents() -> int:
@@ -376,6 +395,14 @@ class ProcessExecutor(_RemoteExecutor):
                 proc.kill()
         pool.shutdown(wait=False, cancel_futures=True)
 
+    def prepare(self, agents: Sequence[AgentModel]) -> None:
+        futures = []
+        for i, a in enumerate(agents):
+            d, blob = self._record(a)
+            futures.append(self._pool(i % self.workers).submit(_prepare, d, blob))
+        for f in futures:
+            f.result()
+
     def worker_pids(self) -> list[int | None]:
         """Process id of each running worker (``None`` where none has started yet)."""
         pids: list[int | None] = []
@@ -397,16 +424,21 @@ class ProcessExecutor(_RemoteExecutor):
         records = [self._record(a) for a in agents]
         budget = self._budget(use_guard)
         out: list[AgentOutcome | None] = [None] * n
-        queues = [deque(i for i in range(n) if i % self.workers == j) for j in range(self.workers)]
-        futures: dict[int, Future[Any]] = {}
-        started = [0.0] * self.workers  # when the request at the head of each queue began, s
+        # Each worker gets its agents in a few batches (one round trip per batch, not per agent).
+        queues: list[deque[tuple[int, ...]]] = []
+        for j in range(self.workers):
+            mine = [i for i in range(n) if i % self.workers == j]
+            size = max(1, -(-len(mine) // BATCHES))
+            queues.append(deque(tuple(mine[k : k + size]) for k in range(0, len(mine), size)))
+        futures: dict[tuple[int, ...], Future[Any]] = {}
+        started = [0.0] * self.workers  # when the batch at the head of each queue began, s
         lost = [0] * self.workers
 
         def submit(j: int) -> None:
             pool = self._pool(j)
-            for i in queues[j]:
-                d, blob = records[i]
-                futures[i] = pool.submit(_serve, d, blob, params[i], warm[i], use_guard, want_hessian)
+            for batch in queues[j]:
+                reqs = [(*records[i], params[i], warm[i], use_guard, want_hessian) for i in batch]
+                futures[batch] = pool.submit(_serve_batch, reqs)
             started[j] = time.perf_counter()
 
         for j in range(self.workers):
@@ -416,33 +448,39 @@ class ProcessExecutor(_RemoteExecutor):
             heads = {futures[q[0]]: j for j, q in enumerate(queues) if q}
             timeout = None
             if budget is not None:
-                timeout = max(0.0, min(started[j] + budget for j in heads.values()) - time.perf_counter())
+                ends = [started[j] + budget * len(queues[j][0]) for j in heads.values()]
+                timeout = max(0.0, min(ends) - time.perf_counter())
             done, _ = wait(heads, timeout=timeout, return_when=FIRST_COMPLETED)
             now = time.perf_counter()
             for fut, j in heads.items():
-                i = queues[j][0]
+                batch = queues[j][0]
                 if fut in done:
                     try:
-                        reply, _pid = fut.result()
+                        replies = fut.result()
                     except BrokenProcessPool:
                         # The worker died: its unanswered requests go again to a fresh process.
                         self._replace(j, kill=False)
                         lost[j] += 1
                         if lost[j] > self.retries:
-                            for k in queues[j]:
-                                out[k] = _failed(agents[k], params[k], Status.FAILED,
-                                                 f"worker lost {lost[j]} times in this round")  # fmt: skip
+                            for b in queues[j]:
+                                for k in b:
+                                    out[k] = _failed(agents[k], params[k], Status.FAILED,
+                                                     f"worker lost {lost[j]} times in this round")  # fmt: skip
                             queues[j].clear()
                         else:
                             submit(j)
                         continue
-                    out[i] = self._attach(agents[i], reply)
+                    for i, (reply, _pid) in zip(batch, replies, strict=True):
+                        out[i] = self._attach(agents[i], reply)
                     queues[j].popleft()
                     started[j] = now
-                elif budget is not None and now - started[j] >= budget:
-                    out[i] = self._hung(agents[i], params[i], budget)
+                elif budget is not None and now - started[j] >= budget * len(batch):
                     queues[j].popleft()
                     self._replace(j, kill=True)
+                    if len(batch) == 1:
+                        out[batch[0]] = self._hung(agents[batch[0]], params[batch[0]], budget)
+                    else:  # send the batch's requests one by one to find the one that hangs
+                        queues[j].extendleft((i,) for i in reversed(batch))
                     if queues[j]:
                         submit(j)
         assert all(o is not None for o in out)
@@ -510,6 +548,15 @@ class DaskExecutor(_RemoteExecutor):
         else:
             self.client = distributed.Client(scheduler)
         self._round = 0
+
+    def prepare(self, agents: Sequence[AgentModel]) -> None:
+        addresses = self.worker_addresses()
+        futures = []
+        for i, a in enumerate(agents):
+            d, blob = self._record(a)
+            where = {"workers": [addresses[i % len(addresses)]], "allow_other_workers": True} if addresses else {}
+            futures.append(self.client.submit(_prepare, d, blob, key=f"negotiate-{self._tag}-build-{i}", **where))
+        self.client.gather(futures)
 
     def worker_addresses(self) -> list[str]:
         """Addresses of the cluster's workers, sorted."""
