@@ -68,6 +68,23 @@ def one(fleet: str, config: str, cap: float) -> dict:
         executor = ProcessExecutor(spec, int(config.split("-")[1]))
     executor.prepare(agents)  # the workers build their agents (in parallel) before the clock starts
     start = time.perf_counter() - t0
+    # Time spent in the coordination method itself (its master QP and projections), apart from the rounds.
+    from negotiate.coordinate import _METHODS, _load_builtins
+
+    _load_builtins()
+    cls = _METHODS[spec.coordinator.method]
+    plain = cls.propose
+    in_method = [0.0]
+
+    def timed(self, latest):  # type: ignore[no-untyped-def]
+        t = time.perf_counter()
+        try:
+            return plain(self, latest)
+        finally:
+            in_method[0] += time.perf_counter() - t
+
+    cls.propose = timed  # type: ignore[method-assign]
+    mem_before = _peak_mib()
     marks: list[tuple[float, float, int]] = []
     t0 = time.perf_counter()
     with executor:
@@ -77,7 +94,8 @@ def one(fleet: str, config: str, cap: float) -> dict:
         )  # fmt: skip
         wall = time.perf_counter() - t0
     out.update(start_s=start, wall_s=wall, rounds=res.rounds, solves=res.agent_solves, total=res.total,
-               status=res.status, marks=marks, peak_mib=_peak_mib())  # fmt: skip
+               status=res.status, marks=marks, peak_mib=_peak_mib(), mem_before_mib=mem_before,
+               method_s=in_method[0])  # fmt: skip
     return out
 
 
@@ -125,7 +143,8 @@ def main() -> None:
                     print(f"    error: {r['error']}", file=sys.stderr)
 
     head = (f"{'N':>4} {'configuration':<13} {'rounds':>6} {'solves':>7} {'build s':>8} {'workers s':>9} {'wall s':>8} "
-            f"{'s/round':>8} {'to 1e-4 s':>9} {'total':>15} {'status':<12} {'peak MiB':>8}")  # fmt: skip
+            f"{'s/round':>8} {'method s':>8} {'to 1e-4 s':>9} {'total':>15} {'status':<10} "
+            f"{'MiB built':>9} {'peak MiB':>8}")  # fmt: skip
     print(head)
     print("-" * len(head))
     for n, row in results.items():
@@ -137,8 +156,9 @@ def main() -> None:
                 print(f"{n:>4} {config:<13} error: {r['error']}")
                 continue
             if config == "centralized":
-                print(f"{n:>4} {config:<13} {'-':>6} {'-':>7} {r['build_s']:8.1f} {'-':>9} {r['wall_s']:8.1f} {'-':>8} "
-                      f"{'-':>9} {r['total']:15.6e} {r['status']:<12} {r['peak_mib']:8.0f}")  # fmt: skip
+                print(f"{n:>4} {config:<13} {'-':>6} {'-':>7} {r['build_s']:8.1f} {'-':>9} {r['wall_s']:8.1f} "
+                      f"{'-':>8} {'-':>8} {'-':>9} {r['total']:15.6e} {r['status']:<10} {'-':>9} "
+                      f"{r['peak_mib']:8.0f}")  # fmt: skip
                 continue
             # The reference for the gap: the centralized optimum, or the best total found if it is lower
             # (a capped or failed centralized solve is no optimum).
@@ -149,10 +169,11 @@ def main() -> None:
             r["to_gap_s"] = tg
             per_round = r["wall_s"] / (r["rounds"] + 1)
             r["per_round_s"] = per_round
+            r["agents_per_round_s"] = (r["wall_s"] - r["method_s"]) / (r["rounds"] + 1)
             print(f"{n:>4} {config:<13} {r['rounds']:6d} {r['solves']:7d} {r['build_s']:8.1f} {r['start_s']:9.1f} "
                   f"{r['wall_s']:8.1f} "
-                  f"{per_round:8.2f} {'-' if tg is None else f'{tg:.1f}':>9} {r['total']:15.6e} "
-                  f"{r['status']:<12} {r['peak_mib']:8.0f}")  # fmt: skip
+                  f"{per_round:8.2f} {r['method_s']:8.1f} {'-' if tg is None else f'{tg:.1f}':>9} {r['total']:15.6e} "
+                  f"{r['status']:<10} {r['mem_before_mib']:9.0f} {r['peak_mib']:8.0f}")  # fmt: skip
     print()
     _targets(results)
 
@@ -169,6 +190,13 @@ def _targets(results: dict[int, dict[str, dict]]) -> None:
             figures = ", ".join(f"N={n}: {1e3 * u:.1f} ms" for n, u in unit.items())
             print(f"  per-round time / (N/workers), {config}: {figures}; spread {spread:.2f}x -> "
                   f"{'met' if spread <= 2.0 else 'MISSED'} (linear if within 2x)")  # fmt: skip
+        # The same without the method's own time (the agents' solves and their transport only).
+        per = {n: results[n][config].get("agents_per_round_s") for n in sizes}
+        unit = {n: per[n] / (n / w) for n in sizes if per[n] is not None}
+        if len(unit) >= 2:
+            spread = max(unit.values()) / min(unit.values())
+            figures = ", ".join(f"N={n}: {1e3 * u:.1f} ms" for n, u in unit.items())
+            print(f"    without the method's time: {figures}; spread {spread:.2f}x")
     for n in sizes:
         one_, two = results[n]["workers-1"].get("per_round_s"), results[n]["workers-2"].get("per_round_s")
         if one_ and two:
@@ -203,6 +231,10 @@ def _targets(results: dict[int, dict[str, dict]]) -> None:
         verdict = "met" if ok else "MISSED"
         print(f"  memory {config}: " + ", ".join(f"N={n}: {m:.0f} MiB" for n, m in mem.items())
               + f"; {slope1:.2f} then {slope2:.2f} MiB per agent -> {verdict} (at most linear)")  # fmt: skip
+        built = {n: results[n][config].get("mem_before_mib") for n in sizes}
+        if None not in built.values():
+            print("    of which with the agents built, before coordinating: "
+                  + ", ".join(f"N={n}: {m:.0f} MiB" for n, m in built.items()))  # fmt: skip
 
 
 if __name__ == "__main__":

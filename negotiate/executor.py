@@ -21,8 +21,10 @@ solvers: each request carries the agent's :class:`~negotiate.spec.AgentSpec` (wi
 and the solver options, pickled once) and the warm-start data; a worker builds the agent's NLP the first
 time it sees that record and keeps it in a per-process cache keyed by a digest of the record, so each agent
 is built once per worker, never per round. Agent ``i`` is always sent to the same worker first (its
-``i mod workers``), which keeps the caches disjoint. Results are pickled without their CasADi problem and
-re-attached to the coordinator's copy of the agent, so ``result.sensitivity()`` keeps working there.
+``i mod workers``), which keeps the caches disjoint; a local worker receives its agents of a round in
+:data:`BATCHES` batches, so that a round costs a few round trips per worker, not one per agent. Results
+are pickled without their CasADi problem and re-attached to the coordinator's copy of the agent, so
+``result.sensitivity()`` keeps working there.
 
 Faults. A worker process that dies during a round (killed, out of memory, a crash in a solver) loses only
 its unanswered requests: they are sent again (to a fresh process) up to ``retries`` times, so the round
