@@ -65,8 +65,8 @@ def _solver(H: ca.DM, A: ca.DM, plugin: str = "daqp") -> ca.Function:
     key = (plugin, H.sparsity().serialize(), A.sparsity().serialize())
     fn = _CACHE.get(key)
     if fn is None:
-        if len(_CACHE) > 64:
-            _CACHE.clear()
+        if len(_CACHE) >= 8:  # patterns of bundle masters change every round: keep few (they hold dense data)
+            _CACHE.pop(next(iter(_CACHE)))
         if plugin == "daqp":
             fn = ca.conic("upper_qp", "daqp", {"h": H.sparsity(), "a": A.sparsity()}, _OPTIONS)
         else:
