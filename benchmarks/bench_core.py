@@ -75,29 +75,35 @@ def main() -> None:
     rng = np.random.default_rng(0)
     med = statistics.median
     print(f"{'NLP':<17}{'n_x':>5}{'n_g':>5}{'bare ms':>9}{'ours ms':>9}{'cert ms':>9}{'sens ms':>9}"
-          f"{'overhead':>10}{'sens/solve':>12}  verdicts")  # fmt: skip
+          f"{'overhead':>10}{'cert/solve':>11}{'sens/solve':>12}  verdicts")  # fmt: skip
     for label, prob, nlp, bnds, xs, pc, spread in cases:
         bare = ca.nlpsol("bare", "ipopt", nlp, {"ipopt.print_level": 0, "ipopt.sb": "yes", "print_time": False})
         t_bare, t_ours, t_cert, t_sens, verdicts = [], [], [], [], set()
-        for d in rng.uniform(-spread, spread, size=(args.repeats, pc.size)):
+        for k, d in enumerate(rng.uniform(-spread, spread, size=(args.repeats, pc.size))):
             p = pc + d
-            t0 = time.perf_counter()
-            bare(x0=xs, p=p, **bnds)
-            t_bare.append(time.perf_counter() - t0)
-            t0 = time.perf_counter()
-            res = prob.solve(p)
-            t_ours.append(time.perf_counter() - t0)
-            t_cert.append(res.certify_time)
-            verdicts.add(res.certificate.verdict if res.certificate else str(res.status))
-            t0 = time.perf_counter()
-            available = res.sensitivity().available
-            t_sens.append(time.perf_counter() - t0)
-            verdicts.add("sensitivity" if available else "no sensitivity")
+
+            # alternate which runs first: whichever goes second at the same p runs measurably faster
+            for which in ("bare", "ours") if k % 2 else ("ours", "bare"):
+                t0 = time.perf_counter()
+                if which == "bare":
+                    bare(x0=xs, p=p, **bnds)
+                    t_bare.append(time.perf_counter() - t0)
+                    continue
+                res = prob.solve(p)
+                t_ours.append(time.perf_counter() - t0)
+                t_cert.append(res.certify_time)
+                verdicts.add(res.certificate.verdict if res.certificate else str(res.status))
+                t0 = time.perf_counter()
+                available = res.sensitivity().available
+                t_sens.append(time.perf_counter() - t0)
+                verdicts.add("sensitivity" if available else "no sensitivity")
         over = med(t_ours) / med(t_bare) - 1.0
+        cert = med(t_cert) / med(t_bare)
         ratio = med(t_sens) / med(t_bare)
         print(f"{label:<17}{prob.n_x:>5}{prob.n_g:>5}{1e3 * med(t_bare):>9.2f}{1e3 * med(t_ours):>9.2f}"
-              f"{1e3 * med(t_cert):>9.2f}{1e3 * med(t_sens):>9.2f}{100 * over:>+9.1f}%{ratio:>12.2f}  "
-              f"{sorted(verdicts)}")  # fmt: skip
+              f"{1e3 * med(t_cert):>9.2f}{1e3 * med(t_sens):>9.2f}{100 * over:>+9.1f}%{100 * cert:>10.1f}%"
+              f"{ratio:>12.2f}  {sorted(verdicts)}")  # fmt: skip
+    print("overhead: our whole solve vs the bare one; cert/solve: polish + certificate + gradient time alone")
     print("targets: overhead <= +25 % of a bare solve; sensitivity step <= 0.50 of a bare solve")
 
 
