@@ -1,7 +1,7 @@
 """Disaggregated proximal bundle method with downshifted cuts for nonconvex value functions.
 
 The master keeps one cutting-plane model per agent (Kiwiel 1985, *Methods of Descent for Nondifferentiable
-Optimization*, Lecture Notes in Mathematics 1133, ch. 2 and 6 for disaggregate models; proximal form as in
+Optimization*, Springer LNM 1133, ch. 2 and 6 for disaggregate models; proximal form as in
 Kiwiel 1990, Math. Programming 46:105-122). In scaled coordinates ``u = P / scale`` and around the centre
 ``c`` it solves the QP ::
 
