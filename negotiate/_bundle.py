@@ -39,8 +39,10 @@ it stops, the method resets the metric to that of a plain first step from the ce
 (a learned metric can overstate the curvature on kinked or flat pieces and so promise too little).
 
 Options: ``serious`` (m = 0.1), ``downshift`` (gamma relative to the initial metric scale, 1e-3),
-``max_cuts`` (per agent, 25), ``first_step`` (0.1, scaled length of the first step), ``hessian_metric``
-(True: use smooth agents' value Hessians as their metric).
+``max_cuts`` (per agent, 25), ``keep_cuts`` (6, at least 2 n_i + 2 for an agent with n_i parameters:
+beyond that an agent keeps only the cuts active in the last master and its newest ones), ``first_step``
+(0.1, scaled length of the first step), ``hessian_metric`` (True: use smooth agents' value Hessians as
+their metric).
 """
 
 from __future__ import annotations
@@ -61,6 +63,7 @@ class ProximalBundle(Method):
         self.m = float(self.options.get("serious", 0.1))
         self.gamma_rel = float(self.options.get("downshift", 1e-3))
         self.max_cuts = int(self.options.get("max_cuts", 25))
+        self.keep_cuts = int(self.options.get("keep_cuts", 6))
         self.first_step = float(self.options.get("first_step", 0.1))
         self.use_hessian = bool(self.options.get("hessian_metric", True))
         self.lay = self.feasible.layout
@@ -138,11 +141,12 @@ class ProximalBundle(Method):
         s = self.s
         gamma = self.gamma_rel * self.mu
         uc = c.P / s
-        rows, ub, models = [], [], []
+        rows, ub, models, owner = [], [], [], []
         for i in range(N):
             sl = self.lay.slice(i)
             G, a = self.shifted(i, c.P[sl], c.reports[i].value, gamma)
             models.append((G, a))
+            owner += [(i, j) for j in range(len(a))]
             for G_j, a_j in zip(G, a, strict=True):
                 # V_c + a_j + G_j.(s_i u_i - c_i) <= r_i = V_c + rho_i   <=>   G_j s_i . u_i - rho_i <= G_j.c_i - a_j
                 row = np.zeros(n + N)
@@ -175,7 +179,23 @@ class ProximalBundle(Method):
         for i, (G, a) in enumerate(models):
             sl = self.lay.slice(i)
             model += c.weights[i] * (c.reports[i].value + float(np.max(a + G @ (P[sl] - c.P[sl]))))
+        self.compress(owner, res.lam_a[: len(owner)])
         return P, model, ""
+
+    def compress(self, owner: list[tuple[int, int]], lam: np.ndarray) -> None:
+        """Bundle selection: an agent with more than ``keep`` cuts keeps those with a nonzero multiplier in
+        the last master plus its ``keep`` newest (Kiwiel 1985, ch. 2: the selected cuts carry the model's
+        information at the trial). Keeps the master small for large fleets."""
+        tol = 1e-12 * max(float(np.max(np.abs(lam), initial=0.0)), 1e-300)
+        active: dict[int, set[int]] = {}
+        for (i, j), mult in zip(owner, lam, strict=True):
+            if abs(mult) > tol:
+                active.setdefault(i, set()).add(j)
+        for i, cuts in enumerate(self.cuts):
+            keep = max(self.keep_cuts, 2 * self.lay.sizes[i] + 2)
+            if len(cuts) > keep:
+                k0 = len(cuts) - keep
+                self.cuts[i] = [cut for j, cut in enumerate(cuts) if j >= k0 or j in active.get(i, ())]
 
     def propose(self, latest: Evaluation) -> Proposal:
         if self.center is None:
