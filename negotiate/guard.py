@@ -12,7 +12,7 @@ For a flagged agent it re-solves at the same parameters with each suspect constr
 equality at its bound) and *released* (that bound removed); each converged re-solve gives a one-sided
 gradient ``partial_p L`` of one smooth piece of ``V_i``. Together with the plain gradient they span (an
 approximation of) the generalised gradient of ``V_i`` at that point; a bundle method takes each as a cut,
-a gradient method steps along the minimum-norm element of their convex hull (a subgradient).
+the gradient method takes a subgradient step on the local model they define.
 """
 
 from __future__ import annotations
@@ -23,9 +23,8 @@ import numpy as np
 
 from negotiate.kkt import ConstraintRef
 from negotiate.nlp import LocalResult, ParametricNLP
-from negotiate.qp import solve_qp
 
-__all__ = ["GuardReport", "guard", "min_norm_element"]
+__all__ = ["GuardReport", "guard"]
 
 MAX_PROBED_ROWS = 3
 """At most this many suspect constraints are probed per agent and round (two re-solves each)."""
@@ -101,19 +100,3 @@ def guard(problem: ParametricNLP, result: LocalResult, previous: LocalResult | N
 
 def _same(a: np.ndarray, b: np.ndarray) -> bool:
     return bool(np.max(np.abs(a - b), initial=0.0) <= 1e-9 * max(1.0, float(np.max(np.abs(b), initial=0.0))))
-
-
-def min_norm_element(vectors: list[np.ndarray], scale: np.ndarray | None = None) -> np.ndarray:
-    """Minimum-norm element of the convex hull of ``vectors`` (in the norm ``||scale * v||``), by a small QP."""
-    V = np.vstack(vectors)
-    if V.shape[0] == 1:
-        return V[0].copy()
-    W = V * (1.0 if scale is None else scale[None, :])
-    k = V.shape[0]
-    G = W @ W.T
-    G = G / max(float(np.max(np.diag(G))), 1e-300) + 1e-12 * np.eye(k)  # scale-free, strictly convex
-    res = solve_qp(G, np.zeros(k), np.ones((1, k)), np.ones(1), np.ones(1), np.zeros(k), np.ones(k))
-    if res.success and np.all(np.isfinite(res.z)) and res.z.sum() > 0:
-        lam = np.clip(res.z, 0.0, None)
-        return (lam / lam.sum()) @ V
-    return V[int(np.argmin(np.einsum("ij,ij->i", W, W)))].copy()

@@ -36,9 +36,6 @@ class OrderTrial:
     kept: bool
 
 
-Coordinator = Callable[[dict[str, list[str]], "np.ndarray | None"], object]
-
-
 def search_orders(
     agents: Sequence[AgentModel],
     resources: Sequence[Resource],
