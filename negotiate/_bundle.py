@@ -48,6 +48,7 @@ their metric).
 from __future__ import annotations
 
 import numpy as np
+import scipy.sparse as sp
 
 from negotiate.coordinate import Evaluation, Method, Proposal, register_method
 from negotiate.qp import solve_qp
@@ -141,33 +142,29 @@ class ProximalBundle(Method):
         s = self.s
         gamma = self.gamma_rel * self.mu
         uc = c.P / s
-        rows, ub, models, owner = [], [], [], []
+        # Variables (u, rho / C): the model's decrease per agent in units of C = max(1, |total(c)|), so that
+        # a small strictly convex term eps/2 (rho/C)^2 keeps the QP well conditioned without biasing rho.
+        # Every cut touches one agent's parameters and its rho: the rows are assembled sparse.
+        C = max(1.0, abs(c.total))
+        ri, ci, vals, ub, models = [], [], [], [], []
         for i in range(N):
             sl = self.lay.slice(i)
             G, a = self.shifted(i, c.P[sl], c.reports[i].value, gamma)
             models.append((G, a))
-            owner += [(i, j) for j in range(len(a))]
+            cols = np.arange(sl.start, sl.stop)
             for G_j, a_j in zip(G, a, strict=True):
                 # V_c + a_j + G_j.(s_i u_i - c_i) <= r_i = V_c + rho_i   <=>   G_j s_i . u_i - rho_i <= G_j.c_i - a_j
-                row = np.zeros(n + N)
-                row[sl] = G_j * s[sl]
-                row[n + i] = -1.0
-                rows.append(row)
+                ri += [len(ub)] * (cols.size + 1)
+                ci += [*cols, n + i]
+                vals += [*(G_j * s[sl]), -C]
                 ub.append(float(G_j @ c.P[sl] - a_j))
-        # Variables (u, rho / C): the model's decrease per agent in units of C = max(1, |total(c)|), so that
-        # a small strictly convex term eps/2 (rho/C)^2 keeps the QP well conditioned without biasing rho.
-        C = max(1.0, abs(c.total))
-        R = np.array(rows)
-        R[:, n:] *= C
-        A_c = np.hstack([self.feasible.A * s[None, :], np.zeros((self.feasible.A.shape[0], N))])
-        A = np.vstack([R, A_c])
+        owner = [(i, j) for i, (G, a) in enumerate(models) for j in range(len(a))]
+        R = sp.csr_array((vals, (ri, ci)), shape=(len(ub), n + N))
+        A_c = sp.hstack([sp.csr_array(self.feasible.A * s[None, :]), sp.csr_array((self.feasible.A.shape[0], N))])
+        A = sp.vstack([R, A_c], format="csr")
         uba = np.concatenate([ub, self.feasible.b])
-        H = np.zeros((n + N, n + N))
-        for i in range(N):
-            sl = self.lay.slice(i)
-            H[sl, sl] = self.kappa * self.M[i] / C
-        H[n:, n:] = 1e-6 * np.eye(N)
-        q = np.concatenate([-H[:n, :n] @ uc, c.weights])
+        H = sp.block_diag([self.kappa * M / C for M in self.M if M.size] + [1e-6 * sp.eye_array(N)], format="csr")
+        q = np.concatenate([-(H[:n, :n] @ uc), c.weights])
         big = 1e20
         lbz = np.concatenate([self.feasible.lower / s, np.full(N, -big)])
         ubz = np.concatenate([self.feasible.upper / s, np.full(N, big)])
@@ -186,7 +183,7 @@ class ProximalBundle(Method):
         """Bundle selection: an agent with more than ``keep`` cuts keeps those with a nonzero multiplier in
         the last master plus its ``keep`` newest (Kiwiel 1985, ch. 2: the selected cuts carry the model's
         information at the trial). Keeps the master small for large fleets."""
-        tol = 1e-12 * max(float(np.max(np.abs(lam), initial=0.0)), 1e-300)
+        tol = 1e-9 * max(float(np.max(np.abs(lam), initial=0.0)), 1e-300)  # below it: an interior point's rounding
         active: dict[int, set[int]] = {}
         for (i, j), mult in zip(owner, lam, strict=True):
             if abs(mult) > tol:
