@@ -6,7 +6,8 @@ without weakly active constraints. The guard flags an agent when its certificate
 * reports weakly active constraints (active with zero multiplier), or
 * fails LICQ (the multipliers, hence ``partial_p L``, are not unique), or
 * is nonsmooth for another reason (a flat solution set along which dV/dp changes), or
-* has a different strictly active set than at the agent's previous solve (a kink may lie in between).
+* has a different strictly active set than at the agent's previous solve (a kink may lie in between; where
+  the certificate is otherwise smooth, this only flags: no probe at this point can see a kink elsewhere).
 
 For a flagged agent it re-solves at the same parameters with each suspect constraint *held active* (an
 equality at its bound) and *released* (that bound removed); each converged re-solve gives a one-sided
@@ -66,7 +67,13 @@ def flag_reason(result: LocalResult, previous: LocalResult | None) -> tuple[str,
         changed = now ^ before
         if changed:
             reasons.append("active set changed (" + ", ".join(sorted(changed)) + ")")
-            rows.extend(r for r in cert.strictly_active if str(r) in changed and r not in rows and r.side != "equal")
+            if cert.verdict != "smooth":
+                # At a smooth point a changed row is strictly active with a unique multiplier: holding it
+                # returns the same solution and releasing it another one, so no probe can give a second
+                # one-sided gradient here (the kink lies between the two points). Flag, but do not probe.
+                rows.extend(
+                    r for r in cert.strictly_active if str(r) in changed and r not in rows and r.side != "equal"
+                )
     return "; ".join(reasons), rows[:MAX_PROBED_ROWS]
 
 

@@ -166,6 +166,25 @@ class TestNonsmoothGuard:
         np.testing.assert_allclose(guarded.P, [1.0, 1.0], atol=1e-5)
         np.testing.assert_allclose(guarded.total, -0.75, atol=1e-6)
 
+    def test_active_set_change_at_a_smooth_point_flags_without_probes(self):
+        """V(p) = 0.75 p - min(p, 1) at p = 0.5 then p = 1.5: the row x <= share gave way to x <= 1 (a kink at
+        p = 1 lies between). At p = 1.5 the point is smooth: holding x <= 1 returns the same solution and
+        releasing it another one (V = 0.75 * 1.5 - 1.5), so neither probe gives a second gradient (checked
+        here by doing them) and the guard flags without spending solves."""
+        from negotiate.guard import guard
+
+        prob = kink_agent().problem
+        before, after = prob.solve([0.5]), prob.solve([1.5], warm=prob.solve([0.5]))
+        assert after.certificate.verdict == "smooth"
+        rep = guard(prob, after, before)
+        assert rep is not None and "active set changed" in rep.reason
+        assert rep.solves == 0 and rep.gradients == ()
+        (row,) = [r for r in after.certificate.strictly_active if str(r) == "x <= 1 (upper)"]
+        held, released = prob.solve([1.5], warm=after, hold=[row]), prob.solve([1.5], warm=after, release=[row])
+        np.testing.assert_allclose(held.gradient, after.gradient, atol=1e-9)
+        np.testing.assert_allclose(released.value, 0.75 * 1.5 - 1.5, atol=1e-7)
+        assert released.value < after.value - 0.1  # another point: its gradient belongs to no piece here
+
     def test_bundle_takes_one_sided_gradients_as_cuts(self):
         """The bundle method settles the kink at once with the guard's cuts."""
         grid = [CapacityResource("grid", (2.0,))]
