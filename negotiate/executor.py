@@ -154,8 +154,8 @@ class Executor:
         return [o.result for o in self.evaluate(agents, params, warm)]
 
     def prepare(self, agents: Sequence[AgentModel]) -> None:
-        """Build the agents where they will be solved, ahead of the first round (optional: the first request
-        builds an agent anyway). Nothing to do in process."""
+        """Build the agents and their warm-start solvers where they will be solved, ahead of the first round
+        (optional: the first requests build them anyway)."""
 
     def close(self) -> None:
         """Release processes or connections (nothing for the in-process executor)."""
@@ -173,6 +173,10 @@ class InProcessExecutor(Executor):
     A per-solve time limit here is IPOPT's own: build the agents with
     ``build_agents(spec, solver_options={"ipopt.max_wall_time": seconds})``.
     """
+
+    def prepare(self, agents: Sequence[AgentModel]) -> None:
+        for a in agents:
+            a.problem.warm_solver()
 
     def evaluate(
         self,
@@ -241,8 +245,8 @@ def _serve_batch(requests: list[tuple[Any, ...]]) -> list[tuple[AgentOutcome, in
 
 
 def _prepare(digest: str, blob: bytes) -> int:
-    """Build (or find) one agent in this worker's cache; the worker's process id."""
-    _cached(digest, blob)
+    """Build (or find) one agent in this worker's cache, with its warm-start solver; the worker's process id."""
+    _cached(digest, blob)[0].warm_solver()
     return os.getpid()
 
 
@@ -581,48 +585,64 @@ class DaskExecutor(_RemoteExecutor):
         self._round += 1
         out: list[AgentOutcome | None] = [None] * n
         pending = list(range(n))
+        alone: set[int] = set()  # requests of a batch that hung: sent one per task to find the one that hangs
         attempt = 0
         while pending:
             addresses = self.worker_addresses()
+            w = max(1, len(addresses))
+            # A few batches per worker (one task per batch, not per agent: the scheduler's round trips cost
+            # more than a truck's solve); agent i prefers worker i mod W, where its solver is cached.
+            batches: list[tuple[int, tuple[int, ...]]] = []
+            for j in range(w):
+                mine = [i for i in pending if i % w == j and i not in alone]
+                size = max(1, -(-len(mine) // BATCHES))
+                batches += [(j, tuple(mine[k : k + size])) for k in range(0, len(mine), size)]
+            batches += [(i % w, (i,)) for i in pending if i in alone]
             futures = {}
-            for i in pending:
-                d, blob = records[i]
-                where = {"workers": [addresses[i % len(addresses)]], "allow_other_workers": True} if addresses else {}
-                futures[i] = self.client.submit(
-                    _serve, d, blob, params[i], warm[i], use_guard, want_hessian,
-                    key=f"negotiate-{self._tag}-{self._round}-{attempt}-{i}", pure=False, **where,
+            for b, (j, batch) in enumerate(batches):
+                reqs = [(*records[i], params[i], warm[i], use_guard, want_hessian) for i in batch]
+                where = {"workers": [addresses[j]], "allow_other_workers": True} if addresses else {}
+                futures[batch] = self.client.submit(
+                    _serve_batch, reqs, key=f"negotiate-{self._tag}-{self._round}-{attempt}-{b}", pure=False, **where
                 )  # fmt: skip
             # Requests queue on single-threaded workers, so the budget covers the longest queue.
-            per_worker = -(-len(pending) // max(1, len(addresses)))
+            per_worker = -(-len(pending) // w)
             timeout = None if budget is None else budget * per_worker
             _wait_quiet(distributed, list(futures.values()), timeout)
-            retry = []
+            retry: list[int] = []
             stuck_workers: set[str] = set()
-            for i, fut in futures.items():
+            for batch, fut in futures.items():
                 if fut.status == "finished":
-                    reply, _pid = fut.result()
-                    out[i] = self._attach(agents[i], reply)
+                    for i, (reply, _pid) in zip(batch, fut.result(), strict=True):
+                        out[i] = self._attach(agents[i], reply)
                 elif fut.status == "error":
                     exc = fut.exception()
                     if isinstance(exc, distributed.KilledWorker) and attempt < self.retries:
-                        retry.append(i)
+                        retry += batch
                         self.lost_workers += 1
                     else:
-                        out[i] = _failed(agents[i], params[i], Status.FAILED, f"worker error: {exc!r}")
+                        for i in batch:
+                            out[i] = _failed(agents[i], params[i], Status.FAILED, f"worker error: {exc!r}")
                 elif budget is not None and fut.status in ("pending", "processing"):
-                    # Still running or queued after the budget: counts as hung.
-                    out[i] = self._hung(agents[i], params[i], budget)
+                    # Still running or queued after the budget: a single request counts as hung, a batch is
+                    # split and sent again one by one.
+                    if len(batch) == 1:
+                        out[batch[0]] = self._hung(agents[batch[0]], params[batch[0]], budget)
+                    else:
+                        retry += batch
+                        alone.update(batch)
                     stuck_workers.update(self._where(fut))
                     fut.cancel()
                 elif attempt < self.retries:  # lost with its worker or cancelled by the cluster
-                    retry.append(i)
+                    retry += batch
                     self.lost_workers += 1
                 else:
-                    out[i] = _failed(agents[i], params[i], Status.FAILED, f"no answer (request {fut.status})")
+                    for i in batch:
+                        out[i] = _failed(agents[i], params[i], Status.FAILED, f"no answer (request {fut.status})")
             if stuck_workers:
                 self.lost_workers += len(stuck_workers)
                 self.client.restart_workers(sorted(stuck_workers), raise_for_error=False)
-            pending = retry
+            pending = sorted(retry)
             attempt += 1
         return out  # type: ignore[return-value]
 

@@ -369,6 +369,13 @@ class ParametricNLP:
             self._objective = ca.Function(f"{self.name}_f", [self.x_symbol, self.p_symbol], [self.f_expr])
         return float(self._objective(np.asarray(x, dtype=float), np.asarray(p, dtype=float)))
 
+    def warm_solver(self) -> Any:
+        """The IPOPT instance for warm-started solves, made on first use and kept (an executor makes it ahead
+        of the first round, where it costs about as much as a solve or two)."""
+        if self._warm_solver is None:
+            self._warm_solver = self._nlpsol(self._problem_expr, self._warm_options, self._expand)
+        return self._warm_solver
+
     def _nlpsol(self, problem: dict[str, Any], options: dict[str, Any], expand: bool) -> Any:
         if expand:
             try:
@@ -512,9 +519,7 @@ class ParametricNLP:
         else:
             lbx, ubx, lbg, ubg, bounds = self.lbx, self.ubx, self.lbg, self.ubg, self._bounds
         if warm is not None:
-            if self._warm_solver is None:
-                self._warm_solver = self._nlpsol(self._problem_expr, self._warm_options, self._expand)
-            solver = self._warm_solver
+            solver = self.warm_solver()
             start = {"x0": warm.x, "lam_x0": warm.lam_x, "lam_g0": warm.lam_g}
         else:
             solver, start = self._solver, {"x0": self.x0}

@@ -111,6 +111,28 @@ class TestTimeLimit:
         assert lost == 1
         assert all(o.result.success for o in again)  # the replaced worker serves the next round
 
+    def test_hung_solve_on_dask_is_a_failed_agent(self, tmp_path, monkeypatch):
+        """The same on a two-worker LocalCluster, with one batch per worker: the stuck batch (agents 1 and 3)
+        is split and sent again one by one, the hanging request is reported as time-limit and the other
+        answered; the stuck worker is restarted and serves the next round."""
+        pytest.importorskip("distributed", reason=SKIP_DASK)
+        monkeypatch.setattr("negotiate.executor.BATCHES", 1)
+        marker = tmp_path / "hang"
+        spec = _fleet("hanging_machine", marker, index=1, size=4)
+        agents = build_agents(spec)
+        P = [a.free_optimum for a in agents]
+        with DaskExecutor(spec, workers=2, time_limit=1.0, grace=2.0) as ex:
+            assert all(o.result.success for o in ex.evaluate(agents, P, [None] * 4))
+            marker.touch()
+            out = ex.evaluate(agents, P, [None] * 4)
+            marker.unlink()
+            again = ex.evaluate(agents, P, [None] * 4)
+            lost = ex.lost_workers
+        assert [str(o.result.status) for o in out] == ["converged", "time-limit", "converged", "converged"]
+        assert out[1].result.gradient is None
+        assert lost >= 1
+        assert all(o.result.success for o in again)
+
     def test_ipopt_wall_time_limit(self):
         """IPOPT's max_wall_time ends a solve with status time-limit and no gradient."""
         prob = by_name("HS071")  # Hock & Schittkowski 1981, problem 71: IPOPT needs several iterations
