@@ -275,6 +275,12 @@ def _classify(pt: Point, bnd: Bounds, tol: Tolerances, polished: bool = False) -
     return _Classes(side, slack, mult, active, strict, weak, wrong)
 
 
+def near_active_count(pt: Point, bnd: Bounds, tol: Tolerances) -> int:
+    """Rows and bounds whose relative slack is within ``tol.active`` (the threshold at a point that was not
+    polished): what a solver's answer here would take as active."""
+    return int(np.count_nonzero(_classify(pt, bnd, tol, polished=False).active))
+
+
 def _violation(c: np.ndarray, bnd: Bounds) -> np.ndarray:
     """Relative bound violation of every row (negative when satisfied)."""
     lo, up = np.nan_to_num(bnd.lo), np.nan_to_num(bnd.up)
@@ -298,6 +304,8 @@ def _solve_kkt(H: np.ndarray, C: np.ndarray, rhs: np.ndarray) -> np.ndarray:
     """Solve ``[[H, C^T], [C, 0]] z = rhs`` (dense LU); least squares when it is singular (LICQ failure)."""
     k = C.shape[0]
     K = np.block([[H, C.T], [C, np.zeros((k, k))]])
+    if not (np.all(np.isfinite(K)) and np.all(np.isfinite(rhs))):  # no step from a point that did not evaluate
+        return np.full(rhs.size, np.nan)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("error", scipy.linalg.LinAlgWarning)  # singular: take least squares below
@@ -342,6 +350,8 @@ def polish(pt: Point, bnd: Bounds, evaluate: Evaluate, tol: Tolerances, max_newt
             if np.max(np.abs(r), initial=0.0) <= 1e-13 * max(1.0, float(np.max(np.abs(cur.grad_f), initial=0))):
                 break
             step = _solve_kkt(cur.H, C, -r)
+            if not np.all(np.isfinite(step)):
+                return pt, False
             x = x + step[:n]
             lam[A] = lam[A] + step[n:]
             cur = evaluate(x, lam[:m], lam[m:])
