@@ -57,6 +57,12 @@ def build_parser() -> argparse.ArgumentParser:
         "--cluster", choices=["local"], help="start a Dask cluster on this machine (loopback; --workers workers, 2)"
     )
     run.add_argument(
+        "--time-limit",
+        type=float,
+        metavar="S",
+        help="seconds per agent solve: a solve that runs longer counts as failed for that agent (time-limit)",
+    )
+    run.add_argument(
         "--resume",
         metavar="DIR",
         help="continue the run whose checkpoint is in DIR from its last complete round (outputs go to DIR)",
@@ -184,8 +190,16 @@ def _run(args: argparse.Namespace) -> int:
 
     previous = {s: signal.signal(s, interrupted) for s in (signal.SIGINT, signal.SIGTERM)}
     try:
-        executor = make_executor(spec, workers=args.workers, scheduler=args.scheduler, cluster=args.cluster)
-        agents = build_agents(spec)
+        limit = args.time_limit
+        if limit is not None and not (limit > 0 and limit < float("inf")):
+            print(f"negotiate run: --time-limit must be a positive number of seconds, got {limit}", file=sys.stderr)
+            return 2
+        executor = make_executor(
+            spec, workers=args.workers, scheduler=args.scheduler, cluster=args.cluster, time_limit=limit
+        )
+        # In process the limit is IPOPT's own; remote executors pass it on and also bound the reply time.
+        in_process = args.workers is None and args.scheduler is None and args.cluster is None
+        agents = build_agents(spec, solver_options={"ipopt.max_wall_time": limit} if limit and in_process else None)
         method = args.method or spec.coordinator.method
         print(f"fleet {spec.name}: {len(agents)} agents, {len(spec.resources)} resources; method {method}, "
               f"orders {spec.coordinator.order}")  # fmt: skip

@@ -546,10 +546,14 @@ class DaskExecutor(_RemoteExecutor):
         if scheduler is None:
             import logging
 
-            self._cluster = distributed.LocalCluster(
-                n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-                dashboard_address=None, silence_logs=logging.ERROR,
-            )  # fmt: skip
+            import dask
+
+            # No work stealing on our own cluster: moving an agent's request means building it again.
+            with dask.config.set({"distributed.scheduler.work-stealing": False}):
+                self._cluster = distributed.LocalCluster(
+                    n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
+                    dashboard_address=None, silence_logs=logging.ERROR,
+                )  # fmt: skip
             self.client = distributed.Client(self._cluster)
         else:
             self.client = distributed.Client(scheduler)
@@ -586,31 +590,40 @@ class DaskExecutor(_RemoteExecutor):
         out: list[AgentOutcome | None] = [None] * n
         pending = list(range(n))
         alone: set[int] = set()  # requests of a batch that hung: sent one per task to find the one that hangs
-        attempt = 0
+        attempt, passes = 0, 0  # attempt: passes that resent requests of lost workers
         while pending:
             addresses = self.worker_addresses()
             w = max(1, len(addresses))
-            # A few batches per worker (one task per batch, not per agent: the scheduler's round trips cost
-            # more than a truck's solve); agent i prefers worker i mod W, where its solver is cached.
+            # One task per worker and round, not per agent: the scheduler's round trips cost more than a
+            # truck's solve, and a task queued behind another could be stolen by an idle worker, which would
+            # then build those agents first (~0.2 s each, a hundred solves' worth). Agent i goes to worker
+            # i mod W, where its solver is cached.
             batches: list[tuple[int, tuple[int, ...]]] = []
             for j in range(w):
-                mine = [i for i in pending if i % w == j and i not in alone]
-                size = max(1, -(-len(mine) // BATCHES))
-                batches += [(j, tuple(mine[k : k + size])) for k in range(0, len(mine), size)]
-            batches += [(i % w, (i,)) for i in pending if i in alone]
+                mine = tuple(i for i in pending if i % w == j and i not in alone)
+                if mine:
+                    batches.append((j, mine))
+            # Requests under suspicion of hanging go alone, at most one per worker at a time, so that none
+            # waits in a queue behind another that may hang; the rest wait for the next pass.
+            singles = [i for i in pending if i in alone]
+            batches += [(k, (i,)) for k, i in enumerate(singles[:w])]
+            later = singles[w:]
             futures = {}
             for b, (j, batch) in enumerate(batches):
                 reqs = [(*records[i], params[i], warm[i], use_guard, want_hessian) for i in batch]
                 where = {"workers": [addresses[j]], "allow_other_workers": True} if addresses else {}
                 futures[batch] = self.client.submit(
-                    _serve_batch, reqs, key=f"negotiate-{self._tag}-{self._round}-{attempt}-{b}", pure=False, **where
+                    _serve_batch, reqs, key=f"negotiate-{self._tag}-{self._round}-{passes}-{b}", pure=False, **where
                 )  # fmt: skip
             # Requests queue on single-threaded workers, so the budget covers the longest queue.
-            per_worker = -(-len(pending) // w)
-            timeout = None if budget is None else budget * per_worker
+            load = [0] * w
+            for j, batch in batches:
+                load[j] += len(batch)
+            timeout = None if budget is None else budget * max(load)
             _wait_quiet(distributed, list(futures.values()), timeout)
             retry: list[int] = []
             stuck_workers: set[str] = set()
+            lost = False
             for batch, fut in futures.items():
                 if fut.status == "finished":
                     for i, (reply, _pid) in zip(batch, fut.result(), strict=True):
@@ -620,6 +633,7 @@ class DaskExecutor(_RemoteExecutor):
                     if isinstance(exc, distributed.KilledWorker) and attempt < self.retries:
                         retry += batch
                         self.lost_workers += 1
+                        lost = True
                     else:
                         for i in batch:
                             out[i] = _failed(agents[i], params[i], Status.FAILED, f"worker error: {exc!r}")
@@ -636,14 +650,16 @@ class DaskExecutor(_RemoteExecutor):
                 elif attempt < self.retries:  # lost with its worker or cancelled by the cluster
                     retry += batch
                     self.lost_workers += 1
+                    lost = True
                 else:
                     for i in batch:
                         out[i] = _failed(agents[i], params[i], Status.FAILED, f"no answer (request {fut.status})")
             if stuck_workers:
                 self.lost_workers += len(stuck_workers)
                 self.client.restart_workers(sorted(stuck_workers), raise_for_error=False)
-            pending = sorted(retry)
-            attempt += 1
+            pending = sorted(retry + later)
+            passes += 1
+            attempt += int(lost)
         return out  # type: ignore[return-value]
 
     def _where(self, fut: Any) -> list[str]:

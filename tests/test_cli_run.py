@@ -58,6 +58,21 @@ class TestRun:
         """A file that cannot be read exits 2."""
         assert main(["run", str(tmp_path / "none.toml"), "--out", str(tmp_path / "o"), "--quiet"]) == 2
 
+    def test_time_limit_reaches_every_solve(self, tmp_path, capsys):
+        """--time-limit 1e-9: every IPOPT run stops at once (time-limit), the run fails (exit 3) with the
+        agents named, and the schedule's certificate column says why; --time-limit 0 is a usage error."""
+        out = tmp_path / "tl"
+        code = main(["run", str(EXAMPLES / "charging_depot.toml"), "--out", str(out), "--time-limit", "1e-9",
+                     "--quiet"])  # fmt: skip
+        text = capsys.readouterr().out
+        assert code == 3
+        assert "status: failed" in text and "tractor-1" in text
+        rows = (out / "schedule.csv").read_text().splitlines()
+        assert all(line.endswith("time-limit") for line in rows[1:]), rows[:3]
+        code = main(["run", str(EXAMPLES / "charging_depot.toml"), "--out", str(out), "--time-limit", "0"])
+        assert code == 2
+        assert "--time-limit must be a positive number of seconds" in capsys.readouterr().err
+
     def test_unknown_method_file_is_a_user_error(self, tmp_path, capsys):
         """A --method naming a missing file exits 1 with a message, not a traceback."""
         code = main(["run", str(EXAMPLES / "charging_depot.toml"), "--out", str(tmp_path / "o"), "--method",

@@ -111,12 +111,11 @@ class TestTimeLimit:
         assert lost == 1
         assert all(o.result.success for o in again)  # the replaced worker serves the next round
 
-    def test_hung_solve_on_dask_is_a_failed_agent(self, tmp_path, monkeypatch):
-        """The same on a two-worker LocalCluster, with one batch per worker: the stuck batch (agents 1 and 3)
+    def test_hung_solve_on_dask_is_a_failed_agent(self, tmp_path):
+        """The same on a two-worker LocalCluster (one batch per worker and round): the stuck batch (agents 1, 3)
         is split and sent again one by one, the hanging request is reported as time-limit and the other
         answered; the stuck worker is restarted and serves the next round."""
         pytest.importorskip("distributed", reason=SKIP_DASK)
-        monkeypatch.setattr("negotiate.executor.BATCHES", 1)
         marker = tmp_path / "hang"
         spec = _fleet("hanging_machine", marker, index=1, size=4)
         agents = build_agents(spec)
