@@ -115,6 +115,9 @@ class AgentModel:
         names carry their unit (``"time_s"``, ``"speed_m_per_s"``, ...).
     model : str
         Name of the model family that built the agent (for tables and reports).
+    start : LocalResult, optional
+        A converged solve at ``free_optimum``; the coordinator's first round starts the agent's solver from
+        it (``build_agents`` sets it). Without it the first round solves cold.
     """
 
     name: str
@@ -125,6 +128,7 @@ class AgentModel:
     weight: float = 1.0
     trajectory: Callable[[LocalResult], Mapping[str, np.ndarray]] | None = None
     model: str = "custom"
+    start: LocalResult | None = None
 
     def __post_init__(self) -> None:
         self.params = tuple(self.params)

@@ -273,7 +273,8 @@ class Oracle:
         self.use_guard = use_guard
         self.want_hessian = want_hessian
         self.executor = executor if executor is not None else InProcessExecutor()
-        self.last: list[LocalResult | None] = [None] * len(self.agents)
+        # The first round starts from each agent's solve at its free optimum, where the builder made one.
+        self.last: list[LocalResult | None] = [a.start for a in self.agents]
         self.solves = 0
 
     def _outcomes(self, parts: list[np.ndarray], warm: list[LocalResult | None]) -> list[AgentOutcome]:

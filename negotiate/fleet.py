@@ -972,6 +972,10 @@ def build_report(
             model = None
         if model is not None:
             _check_model(model, resources, fail)
+        if model is not None and model.start is None:
+            # The solve at the free optimum warm-starts the first round (a failed one is simply not kept).
+            first = model.problem.solve(model.free_optimum)
+            model.start = first if first.success else None
         built.append(BuiltAgent(agent, model, time.perf_counter() - t0))
     return built, problems
 
