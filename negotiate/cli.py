@@ -175,6 +175,15 @@ def _run(args: argparse.Namespace) -> int:
     except FleetError as exc:
         print(exc, file=sys.stderr)
         return 1
+    if args.fleet is not None and args.resume is not None:
+        # Refuse a checkpoint of another fleet or method before building anything.
+        from negotiate.checkpoint import fleet_digest, read_checkpoint
+
+        try:
+            read_checkpoint(args.resume, fleet_digest(spec, args.method or spec.coordinator.method))
+        except CheckpointError as exc:
+            print(f"negotiate run: {exc}", file=sys.stderr)
+            return 2
     bar = None
     executor = None
 

@@ -179,6 +179,20 @@ class TestBadCheckpoints:
         err = capsys.readouterr().err
         assert err.startswith("negotiate run: ") and "damaged" in err and "Traceback" not in err
 
+    def test_cli_refuses_a_foreign_checkpoint_before_building(self, saved, tmp_path, capsys):
+        """negotiate run OTHER.toml --resume DIR: exit 2 with the reason, before any agent is built (the
+        'fleet ...: N agents' line comes after building)."""
+        spec, path = saved
+        text = (EXAMPLES / "machining_cell.toml").read_text()
+        other = tmp_path / "other.toml"
+        other.write_text(text.replace("max_rounds = ", "max_rounds = 1", 1))
+        assert other.read_text() != text
+        assert main(["run", str(other), "--resume", str(path.parent), "--quiet"]) == 2
+        out, err = capsys.readouterr()
+        assert "found one of another" in err and "agents" not in out
+        # the file the checkpoint was made from is accepted and the run continues
+        assert main(["run", str(EXAMPLES / "machining_cell.toml"), "--resume", str(path.parent), "--quiet"]) in (0, 3)
+
     def test_cli_needs_a_fleet_or_resume(self, capsys):
         """``negotiate run`` without a fleet or --resume says what it needs."""
         assert main(["run", "--quiet"]) == 2
