@@ -244,6 +244,13 @@ def _serve_batch(requests: list[tuple[Any, ...]]) -> list[tuple[AgentOutcome, in
     return [_serve(*r) for r in requests]
 
 
+def _serve_packed(blob: bytes) -> bytes:
+    """:func:`_serve_batch` on a pickled batch, answered pickled: one frame each way. (Dask would otherwise
+    send every NumPy array of every request and answer as a frame of its own, which at a hundred agents per
+    task costs more than the solves.)"""
+    return pickle.dumps(_serve_batch(pickle.loads(blob)), protocol=pickle.HIGHEST_PROTOCOL)
+
+
 def _prepare(digest: str, blob: bytes) -> int:
     """Build (or find) one agent in this worker's cache, with its warm-start solver; the worker's process id."""
     _cached(digest, blob)[0].warm_solver()
@@ -612,8 +619,10 @@ class DaskExecutor(_RemoteExecutor):
             for b, (j, batch) in enumerate(batches):
                 reqs = [(*records[i], params[i], warm[i], use_guard, want_hessian) for i in batch]
                 where = {"workers": [addresses[j]], "allow_other_workers": True} if addresses else {}
+                packed = pickle.dumps(reqs, protocol=pickle.HIGHEST_PROTOCOL)
                 futures[batch] = self.client.submit(
-                    _serve_batch, reqs, key=f"negotiate-{self._tag}-{self._round}-{passes}-{b}", pure=False, **where
+                    _serve_packed, packed, key=f"negotiate-{self._tag}-{self._round}-{passes}-{b}", pure=False,
+                    **where,
                 )  # fmt: skip
             # Requests queue on single-threaded workers, so the budget covers the longest queue.
             load = [0] * w
@@ -626,7 +635,7 @@ class DaskExecutor(_RemoteExecutor):
             lost = False
             for batch, fut in futures.items():
                 if fut.status == "finished":
-                    for i, (reply, _pid) in zip(batch, fut.result(), strict=True):
+                    for i, (reply, _pid) in zip(batch, pickle.loads(fut.result()), strict=True):
                         out[i] = self._attach(agents[i], reply)
                 elif fut.status == "error":
                     exc = fut.exception()
