@@ -626,7 +626,7 @@ class ParametricNLP:
         """Continuation of a smooth warm start: Newton's method on the KKT equalities of the warm point's
         active set at the new ``p``, from its primal point and multipliers (the corrector of a parametric
         continuation, cf. Guddat, Guerra Vazquez & Jongen 1990, *Parametric Optimization: Singularities,
-        Pathfollowing and Jumps*, Wiley, ch. 2). Kept only when the result is certified like a solver's
+        Pathfollowing and Jumps*, Wiley -- cited from memory). Kept only when the result is certified like a solver's
         answer would be -- residuals within the re-check tolerances, no violated row, no wrong-signed
         multiplier, verdict ``smooth`` (so a strict local minimum) -- otherwise ``None`` and IPOPT solves.
         Where the active set does not change between rounds, this costs a few linear solves instead of an
