@@ -206,6 +206,7 @@ def _run(args: argparse.Namespace) -> int:
         executor = make_executor(
             spec, workers=args.workers, scheduler=args.scheduler, cluster=args.cluster, time_limit=limit
         )
+        executor.start()  # remote workers build their agents while this process builds its own
         # In process the limit is IPOPT's own; remote executors pass it on and also bound the reply time.
         in_process = args.workers is None and args.scheduler is None and args.cluster is None
         agents = build_agents(spec, solver_options={"ipopt.max_wall_time": limit} if limit and in_process else None)

@@ -42,6 +42,7 @@ agents, and nothing depends on which worker answered first.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import os
 import pickle
@@ -156,6 +157,11 @@ class Executor:
     def prepare(self, agents: Sequence[AgentModel]) -> None:
         """Build the agents and their warm-start solvers where they will be solved, ahead of the first round
         (optional: the first requests build them anyway)."""
+
+    def start(self) -> None:
+        """Begin building the fleet's agents where they will be solved, without waiting: the workers build
+        while the caller builds its own copies (``negotiate run`` calls this first). The first
+        :meth:`evaluate` waits for these builds before its clock starts. Nothing to do in process."""
 
     def close(self) -> None:
         """Release processes or connections (nothing for the in-process executor)."""
@@ -310,10 +316,18 @@ class _RemoteExecutor(Executor):
         self.solver_options = _time_options(time_limit, solver_options)
         self.lost_workers = 0
         """Worker processes lost (died or replaced after a timeout) since the executor was made."""
+        self._building: list[Any] = []  # futures of start()'s builds, waited for by the first evaluate()
         self._records: dict[str, tuple[str, bytes]] = {}
         for a in spec.agents:
             blob = pickle.dumps((spec.resources, a, self.solver_options), protocol=pickle.HIGHEST_PROTOCOL)
             self._records[a.name] = (hashlib.sha256(blob).hexdigest(), blob)
+
+    def _built(self) -> None:
+        """Wait for the builds that :meth:`start` began (a failed one is left to the first request)."""
+        building, self._building = self._building, []
+        for fut in building:
+            with contextlib.suppress(Exception):
+                fut.result()
 
     def _record(self, agent: AgentModel) -> tuple[str, bytes]:
         try:
@@ -416,6 +430,25 @@ class ProcessExecutor(_RemoteExecutor):
         for f in futures:
             f.result()
 
+    def start(self) -> None:
+        if not self._building:
+            for i, a in enumerate(self.spec.agents):  # the fleet's order, as build_agents returns them
+                j = i % self.workers
+                self._building.append((j, self._pool(j).submit(_prepare, *self._records[a.name])))
+
+    def _built(self) -> None:
+        building, self._building = self._building, []
+        broken: set[int] = set()
+        for j, fut in building:
+            try:
+                fut.result()
+            except BrokenProcessPool:  # the worker died while building: the next request starts a fresh one
+                broken.add(j)
+            except Exception:  # noqa: BLE001 - a build that fails is reported by the first request
+                pass
+        for j in sorted(broken):
+            self._replace(j, kill=False)
+
     def worker_pids(self) -> list[int | None]:
         """Process id of each running worker (``None`` where none has started yet)."""
         pids: list[int | None] = []
@@ -433,6 +466,7 @@ class ProcessExecutor(_RemoteExecutor):
         use_guard: bool = False,
         want_hessian: bool = False,
     ) -> list[AgentOutcome]:
+        self._built()
         n = len(agents)
         records = [self._record(a) for a in agents]
         budget = self._budget(use_guard)
@@ -575,6 +609,15 @@ class DaskExecutor(_RemoteExecutor):
             futures.append(self.client.submit(_prepare, d, blob, key=f"negotiate-{self._tag}-build-{i}", **where))
         self.client.gather(futures)
 
+    def start(self) -> None:
+        if not self._building:
+            addresses = self.worker_addresses()
+            for i, a in enumerate(self.spec.agents):
+                where = {"workers": [addresses[i % len(addresses)]], "allow_other_workers": True} if addresses else {}
+                self._building.append(self.client.submit(
+                    _prepare, *self._records[a.name], key=f"negotiate-{self._tag}-start-{i}", **where
+                ))  # fmt: skip
+
     def worker_addresses(self) -> list[str]:
         """Addresses of the cluster's workers, sorted."""
         return sorted(self.client.scheduler_info(n_workers=-1)["workers"])
@@ -590,6 +633,7 @@ class DaskExecutor(_RemoteExecutor):
     ) -> list[AgentOutcome]:
         import distributed
 
+        self._built()
         n = len(agents)
         records = [self._record(a) for a in agents]
         budget = self._budget(use_guard)

@@ -48,12 +48,14 @@ def cell():
 
 class TestProcessExecutor:
     def test_same_schedule_as_in_process(self, cell):
-        """Two worker processes give the in-process schedule, rounds and solve count."""
+        """Two worker processes, started building ahead (start), give the in-process schedule, rounds and
+        solve count."""
         spec, agents, ref = cell
         with ProcessExecutor(spec, 2) as ex:
+            ex.start()
             res = run_fleet(spec, agents, executor=ex)
             pids = ex.worker_pids()
-            # Each worker built only its own agents (i mod 2), once.
+            # Each worker built only its own agents (i mod 2), once: start() and the rounds agree on who.
             counts = [ex._pool(j).submit(cached_agents).result() for j in range(2)]
         assert _rel(res.coordination.P, ref.coordination.P) <= 1e-9
         assert res.coordination.rounds == ref.coordination.rounds
@@ -119,6 +121,7 @@ class TestDaskExecutor:
         pytest.importorskip("distributed", reason=SKIP_DASK)
         spec, agents, ref = cell
         with DaskExecutor(spec, workers=2) as ex:
+            ex.start()
             addresses = ex.worker_addresses()
             res = run_fleet(spec, agents, executor=ex)
         assert len(addresses) == 2 and all(a.startswith("tcp://127.0.0.1:") for a in addresses)
