@@ -15,7 +15,7 @@ Then it prints the table and checks the targets: per-round wall time linear in N
 coordinated run reaches a 1e-4 relative gap in less wall time than the centralized solve takes; at N = 256
 it finishes where the centralized solve is slower or hits its cap; coordinator memory at most linear in N.
 
-    python benchmarks/bench_scale.py                 # all of it (about 15 minutes on 2 cores)
+    python benchmarks/bench_scale.py                 # all of it (about 10 minutes on 2 cores)
     python benchmarks/bench_scale.py --sizes 16 64   # a subset
 
 Run it on a quiet machine: the figures are wall times.
