@@ -89,6 +89,12 @@ def _csr(M: np.ndarray | sp.spmatrix | sp.sparray, shape: tuple[int, int]) -> sp
     return out
 
 
+def _infinite(v: np.ndarray, sign: int) -> np.ndarray:
+    """Bounds of magnitude 1e20 or more as infinite ones (``sign`` -1 for lower, +1 for upper bounds)."""
+    v = np.asarray(v, dtype=float)
+    return np.where(sign * v >= 1e20, sign * np.inf, v)
+
+
 def solve_qp(
     H: np.ndarray | sp.spmatrix | sp.sparray,
     g: np.ndarray,
@@ -112,8 +118,7 @@ def solve_qp(
     r = np.where(norms > 0, norms, 1.0)
     A = sp.csr_array(sp.diags_array(1.0 / r) @ A)
     lba, uba = lba / r, uba / r
-    inf = lambda v, sign: np.where(sign * np.asarray(v, dtype=float) >= 1e20, sign * np.inf, v)  # noqa: E731
-    data = (H, g, A, inf(lba, -1), inf(uba, 1), inf(lbz, -1), inf(ubz, 1), z0)
+    data = (H, g, A, _infinite(lba, -1), _infinite(uba, 1), _infinite(lbz, -1), _infinite(ubz, 1), z0)
     Hs, As = ca.DM(sp.csc_array(H)), ca.DM(sp.csc_array(A))
     res = _attempt("piqp", Hs, As, *data)
     if res.success:
@@ -131,7 +136,7 @@ def _polish(res: QPResult, H: sp.csr_array, g: np.ndarray, A: sp.csr_array, lba:
             lbz: np.ndarray, ubz: np.ndarray) -> QPResult:  # fmt: skip
     """Refine an interior-point answer to the exact solution of its active set (solution polishing as in
     Stellato et al. 2020, "OSQP: an operator splitting solver for quadratic programs", Math. Prog. Comp.
-    12:637-672, sec. 5.2): take the rows and bounds whose multipliers are not negligible as equalities, solve
+    12:637-672, sec. 5.2): take the rows and bounds whose multiplier exceeds their slack as equalities, solve
     the equality-constrained QP's KKT system (regularised, with iterative refinement against the exact one),
     add any row the new point violates and repeat. The polished point is kept only if it is feasible and its
     multipliers have the right signs; otherwise the interior-point answer stands. Active constraints then
