@@ -59,7 +59,7 @@ import numpy as np
 
 from negotiate.guard import MAX_PROBED_ROWS, GuardReport, guard
 from negotiate.nlp import LocalResult, ParametricNLP
-from negotiate.spec import FleetSpec
+from negotiate.spec import AgentSpec, FleetSpec
 from negotiate.status import Status
 
 if TYPE_CHECKING:
@@ -329,7 +329,7 @@ class _RemoteExecutor(Executor):
             with contextlib.suppress(Exception):
                 fut.result()
 
-    def _record(self, agent: AgentModel) -> tuple[str, bytes]:
+    def _record(self, agent: AgentModel | AgentSpec) -> tuple[str, bytes]:
         try:
             return self._records[agent.name]
         except KeyError:
@@ -423,18 +423,17 @@ class ProcessExecutor(_RemoteExecutor):
         pool.shutdown(wait=False, cancel_futures=True)
 
     def prepare(self, agents: Sequence[AgentModel]) -> None:
-        futures = []
-        for i, a in enumerate(agents):
-            d, blob = self._record(a)
-            futures.append(self._pool(i % self.workers).submit(_prepare, d, blob))
-        for f in futures:
-            f.result()
+        self._submit_builds(agents)
+        self._built()
 
     def start(self) -> None:
         if not self._building:
-            for i, a in enumerate(self.spec.agents):  # the fleet's order, as build_agents returns them
-                j = i % self.workers
-                self._building.append((j, self._pool(j).submit(_prepare, *self._records[a.name])))
+            self._submit_builds(self.spec.agents)  # the fleet's order, as build_agents returns them
+
+    def _submit_builds(self, agents: Sequence[AgentModel | AgentSpec]) -> None:
+        for i, a in enumerate(agents):
+            j = i % self.workers
+            self._building.append((j, self._pool(j).submit(_prepare, *self._record(a))))
 
     def _built(self) -> None:
         building, self._building = self._building, []
@@ -601,22 +600,19 @@ class DaskExecutor(_RemoteExecutor):
         self._round = 0
 
     def prepare(self, agents: Sequence[AgentModel]) -> None:
-        addresses = self.worker_addresses()
-        futures = []
-        for i, a in enumerate(agents):
-            d, blob = self._record(a)
-            where = {"workers": [addresses[i % len(addresses)]], "allow_other_workers": True} if addresses else {}
-            futures.append(self.client.submit(_prepare, d, blob, key=f"negotiate-{self._tag}-build-{i}", **where))
-        self.client.gather(futures)
+        self._submit_builds(agents)
+        self._built()
 
     def start(self) -> None:
         if not self._building:
-            addresses = self.worker_addresses()
-            for i, a in enumerate(self.spec.agents):
-                where = {"workers": [addresses[i % len(addresses)]], "allow_other_workers": True} if addresses else {}
-                self._building.append(self.client.submit(
-                    _prepare, *self._records[a.name], key=f"negotiate-{self._tag}-start-{i}", **where
-                ))  # fmt: skip
+            self._submit_builds(self.spec.agents)
+
+    def _submit_builds(self, agents: Sequence[AgentModel | AgentSpec]) -> None:
+        addresses = self.worker_addresses()
+        for i, a in enumerate(agents):
+            where = {"workers": [addresses[i % len(addresses)]], "allow_other_workers": True} if addresses else {}
+            key = f"negotiate-{self._tag}-build-{i}"
+            self._building.append(self.client.submit(_prepare, *self._record(a), key=key, pure=False, **where))
 
     def worker_addresses(self) -> list[str]:
         """Addresses of the cluster's workers, sorted."""
