@@ -146,7 +146,9 @@ def _table(header: list[str], rows: list[list[str]]) -> str:
 def _run(args: argparse.Namespace) -> int:
     import os
     import signal
+    import time
 
+    started = time.perf_counter()
     from negotiate.checkpoint import CheckpointError, RunBook
     from negotiate.coupling import DeadlockError
     from negotiate.errors import FleetError
@@ -210,18 +212,24 @@ def _run(args: argparse.Namespace) -> int:
         # In process the limit is IPOPT's own; remote executors pass it on and also bound the reply time.
         in_process = args.workers is None and args.scheduler is None and args.cluster is None
         agents = build_agents(spec, solver_options={"ipopt.max_wall_time": limit} if limit and in_process else None)
+        built = time.perf_counter() - started  # reading the file, starting the workers, building the agents
         method = args.method or spec.coordinator.method
         print(f"fleet {spec.name}: {len(agents)} agents, {len(spec.resources)} resources; method {method}, "
               f"orders {spec.coordinator.order}")  # fmt: skip
         if not args.quiet:
             from tqdm import tqdm
 
-            bar = tqdm(total=None, unit="round", file=sys.stderr, dynamic_ncols=True, leave=False)
+            bar = tqdm(total=None, unit="round", file=sys.stderr, dynamic_ncols=True, leave=False, desc="order 1")
+        trial = [0]
 
         def progress(rec):  # type: ignore[no-untyped-def]
             if stop:
                 raise KeyboardInterrupt
             if bar is not None:
+                if rec.trial != trial[0]:  # a new order of the search: its rounds count from 0 again
+                    trial[0] = rec.trial
+                    bar.reset()
+                    bar.set_description_str(f"order {rec.trial + 1}", refresh=False)
                 bar.update(1)
                 bar.set_postfix_str(
                     f"total {_fmt(rec.best_total, 9)}  measure {rec.measure:.1e}  flagged {len(rec.flagged)}"
@@ -231,7 +239,7 @@ def _run(args: argparse.Namespace) -> int:
 
         result = run_fleet(
             spec, agents, method=args.method, verify=args.verify, progress=progress, executor=executor,
-            checkpoint_dir=args.out, resume=args.resume is not None,
+            checkpoint_dir=args.out, resume=args.resume is not None, build_time=built,
         )  # fmt: skip
     except CheckpointError as exc:
         if bar is not None:
@@ -273,8 +281,13 @@ def _run(args: argparse.Namespace) -> int:
                          _fmt(r.d_leave, 3), "", _fmt(r.value - r.free_value, 4), r.verdict])  # fmt: skip
     print(_table(["agent", "resource", "enter s", "leave s", "share", "dV/denter /s", "dV/dleave /s",
                   "dV/dshare", "cost increase", "certificate"], rows))  # fmt: skip
-    print(f"status: {c.status} ({c.message}); {c.rounds} rounds, {c.agent_solves} agent solves, "
-          f"{len(result.order_trials)} order(s) tried, {result.wall_time:.1f} s")  # fmt: skip
+    skipped = sum(1 for t in result.order_trials if t.infeasible)
+    phases = ", ".join(f"{k.replace('_', ' ')} {v:.1f} s" for k, v in result.phase_times.items() if k != "verify"
+                       or result.centralized is not None)  # fmt: skip
+    print(f"status: {c.status} ({c.message}); {c.rounds} rounds, {c.agent_solves} agent solves in the best order; "
+          f"{len(result.order_trials)} order(s) tried"
+          + (f" ({skipped} infeasible, skipped)" if skipped else "")
+          + f"; {result.wall_time:.1f} s ({phases})")  # fmt: skip
     print(f"total cost {_fmt(result.total, 10)}; free optima {_fmt(result.free_total, 10)}; "
           f"coordination cost {_fmt(result.total - result.free_total, 6)}")  # fmt: skip
     if result.centralized is not None:

@@ -186,8 +186,9 @@ def _load_builtins() -> None:
 @dataclass(frozen=True)
 class RoundRecord:
     """One line of the history: round number, the trial's total, the incumbent's total, the stopping
-    measure, the number of agent solves so far, flagged and failed agents, the method's note, and the wall
-    time since the start of the run (s)."""
+    measure, the number of agent solves so far, flagged and failed agents, the method's note, the wall
+    time since the start of the coordination (s), and which order trial of a run it belongs to (0 for the
+    first order; set by :func:`negotiate.run.run_fleet`)."""
 
     round: int
     trial_total: float
@@ -198,6 +199,7 @@ class RoundRecord:
     failed: tuple[str, ...]
     note: str
     wall_time: float = 0.0
+    trial: int = 0
 
 
 @dataclass(frozen=True)

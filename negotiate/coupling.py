@@ -17,8 +17,10 @@ made of
 Orders are checked for deadlocks first: the precedence graph (networkx) has a node per (agent, resource)
 slot, an edge from each slot to the agent's next slot along its route, and an edge from each user of an
 exclusive resource to the next; a cycle means no schedule exists and raises :class:`DeadlockError`
-naming the agents and resources on it. Projection onto the polyhedron is a small convex QP solved by
-CasADi's active-set ``qrqp``.
+naming the agents and resources on it. Orders without a cycle can still admit no schedule (a gap too long
+for the agents' reachable windows, say): :func:`check_orders` then decides emptiness with a linear program
+(HiGHS through :func:`scipy.optimize.linprog`) and raises :class:`InfeasibleOrdersError` naming the rows
+that conflict. Projection onto the polyhedron is a small sparse convex QP (:mod:`negotiate.qp`).
 """
 
 from __future__ import annotations
@@ -28,16 +30,35 @@ from dataclasses import dataclass
 
 import networkx as nx
 import numpy as np
+from scipy.optimize import linprog
 
 from negotiate.agent import AgentModel
 from negotiate.qp import solve_qp
 from negotiate.spec import CapacityResource, ExclusiveResource, Resource
 
-__all__ = ["DeadlockError", "FeasibleSet", "Layout", "build_feasible_set", "fcfs_orders", "precedence_graph"]
+__all__ = [
+    "DeadlockError",
+    "FeasibleSet",
+    "InfeasibleOrdersError",
+    "Layout",
+    "build_feasible_set",
+    "check_orders",
+    "fcfs_orders",
+    "precedence_graph",
+]
 
 
 class DeadlockError(ValueError):
     """A set of orders on exclusive resources that no schedule can meet (a cycle of precedences)."""
+
+
+class InfeasibleOrdersError(ValueError):
+    """Orders (without a cycle) whose coupling polyhedron is empty: no schedule meets the gaps, capacity
+    limits and every agent's reachable set at once. ``rows`` names the rules that conflict."""
+
+    def __init__(self, message: str, rows: Sequence[str] = ()) -> None:
+        super().__init__(message)
+        self.rows = tuple(rows)
 
 
 @dataclass(frozen=True)
@@ -47,12 +68,15 @@ class Layout:
     names: tuple[str, ...]
     offsets: tuple[int, ...]
     sizes: tuple[int, ...]
+    params: tuple[str, ...] = ()
+    """Every stacked parameter as ``"agent: name"`` (e.g. ``"truck-03: bridge.enter"``)."""
 
     @classmethod
     def of(cls, agents: Sequence[AgentModel]) -> Layout:
         sizes = tuple(a.problem.n_p for a in agents)
         offsets = tuple(int(v) for v in np.concatenate([[0], np.cumsum(sizes)[:-1]])) if sizes else ()
-        return cls(tuple(a.name for a in agents), offsets, sizes)
+        params = tuple(f"{a.name}: {q.name}" for a in agents for q in a.params)
+        return cls(tuple(a.name for a in agents), offsets, sizes, params if len(params) == sum(sizes) else ())
 
     @property
     def n(self) -> int:
@@ -118,6 +142,30 @@ def check_deadlock(agents: Sequence[AgentModel], orders: Mapping[str, Sequence[s
     )
 
 
+def check_orders(
+    agents: Sequence[AgentModel], resources: Sequence[Resource], orders: Mapping[str, Sequence[str]]
+) -> FeasibleSet:
+    """The coupling polyhedron for ``orders``, after checking that some schedule meets it.
+
+    Raises
+    ------
+    DeadlockError
+        If the orders and the agents' routes form a cycle.
+    InfeasibleOrdersError
+        If the polyhedron is empty; the message names the resources, agents and rules that conflict.
+    """
+    feasible = build_feasible_set(agents, resources, orders)
+    rows = feasible.conflict()
+    if rows is not None:
+        users = {k: " > ".join(v) for k, v in orders.items()}
+        named = [r for r in users if any(line.startswith(f"{r}:") for line in rows)]
+        where = "; ".join(f"{r}: {users[r]}" for r in (named or list(users))) or "no exclusive resource"
+        raise InfeasibleOrdersError(
+            f"no schedule meets the orders {where}: these rules conflict: " + "; ".join(rows), rows
+        )
+    return feasible
+
+
 @dataclass
 class FeasibleSet:
     """The polyhedron ``lower <= P <= upper, A P <= b`` of stacked parameters, with its row labels.
@@ -152,6 +200,46 @@ class FeasibleSet:
 
     def contains(self, P: np.ndarray, tol: float = 1e-7) -> bool:
         return self.violation(P) <= tol
+
+    def conflict(self) -> list[str] | None:
+        """``None`` when the set is non-empty, else the rules that conflict (row labels and bounds).
+
+        The test is a phase-one linear program in the scaled parameters: minimise the total violation
+        ``sum(v)`` subject to ``A P - v <= b``, ``v >= 0`` and the box. The set is empty when the least total
+        violation exceeds the LP's feasibility tolerance (1e-7 in scaled units, HiGHS's default primal
+        tolerance); the rows and bounds with non-zero multipliers at that optimum form the certificate of
+        emptiness (Farkas' lemma: a non-negative combination of them reads ``0 <= negative``)."""
+        s = self.scale
+        m, n = self.A.shape
+        lo, hi = self.lower / s, self.upper / s
+        if np.any(lo > hi):
+            return [f"{self._param_name(j)}: lower bound {self.lower[j]:.6g} > upper bound {self.upper[j]:.6g}"
+                    for j in np.flatnonzero(lo > hi)]  # fmt: skip
+        if m == 0:
+            return None
+        As = self.A * s[None, :]
+        norm = np.maximum(np.linalg.norm(As, axis=1), 1e-300)  # violations measured along unit row normals
+        A_ub = np.hstack([As / norm[:, None], -np.eye(m)])
+        c = np.concatenate([np.zeros(n), np.ones(m)])
+        bounds = [*zip(lo, hi, strict=True), *([(0.0, None)] * m)]
+        res = linprog(c, A_ub=A_ub, b_ub=self.b / norm, bounds=bounds, method="highs")
+        if res.status != 0:
+            # The phase-one LP is always feasible and bounded below by 0; anything else is a solver fault.
+            raise RuntimeError(f"feasibility test of the coupling polyhedron failed: {res.message}")
+        if res.fun <= 1e-7:
+            return None
+        rows = [self.labels[k] for k in np.flatnonzero(np.abs(res.ineqlin.marginals) > 1e-9)]
+        for j in np.flatnonzero(np.abs(res.lower.marginals[:n]) > 1e-9):
+            rows.append(f"{self._param_name(j)} >= {self.lower[j]:.6g} (reachable window)")
+        for j in np.flatnonzero(np.abs(res.upper.marginals[:n]) > 1e-9):
+            rows.append(f"{self._param_name(j)} <= {self.upper[j]:.6g} (reachable window)")
+        return rows
+
+    def _param_name(self, j: int) -> str:
+        if self.layout.params:
+            return self.layout.params[j]
+        i = int(np.searchsorted(np.asarray(self.layout.offsets), j, side="right")) - 1
+        return f"{self.layout.names[i]}: parameter {j - self.layout.offsets[i]}"
 
     def project(self, Y: np.ndarray) -> np.ndarray:
         """Nearest point of the set to ``Y`` in the scaled norm ``||(P - Y) / scale||`` (a QP)."""

@@ -6,7 +6,11 @@ first-come-first-served by the agents' free-optimum entry times (:func:`negotiat
 schedule so far) and keeps a swap when it lowers the total; it repeats until a pass over all neighbours
 brings no improvement. ``exhaustive`` tries every order of each resource with at most
 :data:`EXHAUSTIVE_LIMIT` users (one resource at a time, the others held at their best order). A candidate
-whose orders form a cycle with the agents' routes (a deadlock) is skipped, never handed to the solver.
+whose orders form a cycle with the agents' routes (a deadlock) or whose coupling polyhedron is empty
+(:func:`negotiate.coupling.check_orders`: a linear program, no agent solve) is recorded as an infeasible
+trial with the reason and skipped, never handed to the solver. When the first order itself is infeasible
+the search raises (:class:`~negotiate.coupling.DeadlockError` or
+:class:`~negotiate.coupling.InfeasibleOrdersError`), since there is nothing to start from.
 """
 
 from __future__ import annotations
@@ -18,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from negotiate.agent import AgentModel
-from negotiate.coupling import DeadlockError, check_deadlock, fcfs_orders
+from negotiate.coupling import DeadlockError, InfeasibleOrdersError, check_orders, fcfs_orders
 from negotiate.spec import ExclusiveResource, Resource
 
 __all__ = ["EXHAUSTIVE_LIMIT", "OrderTrial", "search_orders"]
@@ -29,11 +33,16 @@ EXHAUSTIVE_LIMIT = 7
 
 @dataclass(frozen=True)
 class OrderTrial:
-    """One order tried: the orders, the coordinated total (``inf`` if it failed) and whether it was kept."""
+    """One order tried: the orders, the coordinated total (``inf`` if it failed or was infeasible), whether
+    it was kept, and for an order skipped without coordinating, why (a deadlock or an empty polyhedron)."""
 
     orders: dict[str, list[str]]
     total: float
     kept: bool
+    infeasible: str = ""
+
+    def to_dict(self) -> dict[str, object]:
+        return {"orders": self.orders, "total_cost": self.total, "kept": self.kept, "infeasible": self.infeasible}
 
 
 def search_orders(
@@ -48,10 +57,15 @@ def search_orders(
     """Choose orders by ``rule`` ("fcfs", "swap" or "exhaustive").
 
     ``run(orders, start_P) -> (total, P, result)`` coordinates for fixed orders. Returns the best result,
-    its orders and the list of trials.
+    its orders and the list of trials (infeasible candidates included, with their reason).
+
+    Raises
+    ------
+    DeadlockError, InfeasibleOrdersError
+        When the first order (``start`` or first-come-first-served) admits no schedule.
     """
     orders = {k: list(v) for k, v in (start or fcfs_orders(agents, resources)).items()}
-    check_deadlock(agents, orders)
+    check_orders(agents, resources, orders)
     best_total, best_P, best = run(orders, None)
     trials = [OrderTrial({k: list(v) for k, v in orders.items()}, best_total, True)]
     if rule == "fcfs":
@@ -61,9 +75,9 @@ def search_orders(
     def attempt(candidate: dict[str, list[str]]) -> bool:
         nonlocal best_total, best_P, best, orders
         try:
-            check_deadlock(agents, candidate)
-        except DeadlockError:
-            trials.append(OrderTrial(candidate, float("inf"), False))
+            check_orders(agents, resources, candidate)
+        except (DeadlockError, InfeasibleOrdersError) as exc:
+            trials.append(OrderTrial(candidate, float("inf"), False, str(exc)))
             return False
         total, P, result = run(candidate, best_P)
         kept = total < best_total - 1e-9 * max(1.0, abs(best_total))

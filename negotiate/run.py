@@ -40,6 +40,9 @@ class RunResult:
     centralized: CentralizedResult | None
     wall_time: float
     agents: tuple[AgentModel, ...] = field(repr=False, default=())
+    phase_times: dict[str, float] = field(default_factory=dict)
+    """Seconds spent in each phase: ``build`` (the agents), ``free_optima``, ``order_search`` (every
+    coordination of every order tried) and ``verify``; they add up to ``wall_time``."""
 
     @property
     def total(self) -> float:
@@ -72,9 +75,12 @@ class RunResult:
             "rounds": c.rounds,
             "agent_solves": c.agent_solves,
             "order_trials": len(self.order_trials),
+            "order_trials_infeasible": sum(1 for t in self.order_trials if t.infeasible),
+            "order_search": [t.to_dict() for t in self.order_trials],
             "total_cost": c.total,
             "free_total_cost": self.free_total,
             "wall_time_s": self.wall_time,
+            "phase_times_s": dict(self.phase_times),
             "flagged_last_round": list(c.evaluation.flagged),
         }
         if self.centralized is not None:
@@ -148,6 +154,7 @@ def run_fleet(
     progress: Callable[[RoundRecord], None] | None = None,
     checkpoint_dir: str | Path | None = None,
     resume: bool = False,
+    build_time: float = 0.0,
 ) -> RunResult:
     """Coordinate a fleet.
 
@@ -161,9 +168,12 @@ def run_fleet(
         Overrides ``spec.coordinator.method``: a built-in name or ``"module:Class"``.
     verify : bool
         Also solve the centralized NLP for the final orders and report the gap.
-    executor, progress
+    executor : Executor, optional
         Passed to :func:`negotiate.coordinate.coordinate` (an :mod:`negotiate.executor` executor also
         solves the agents at their free optima).
+    progress : callable, optional
+        Called with each :class:`~negotiate.coordinate.RoundRecord`; its ``trial`` field says which order
+        trial (0, 1, ...) the round belongs to, its ``round`` counts within that trial.
     checkpoint_dir : path, optional
         Run folder to keep ``checkpoint.bin`` in, written after every round (:mod:`negotiate.checkpoint`).
     resume : bool
@@ -171,8 +181,18 @@ def run_fleet(
         in progress continues from its last complete round). Raises
         :class:`~negotiate.checkpoint.CheckpointError` when there is none, or it is of another fleet or
         method, or damaged.
+    build_time : float
+        Seconds the caller spent building ``agents`` (s), counted in the run's wall time and its ``build``
+        phase; ignored when the agents are built here.
+
+    Raises
+    ------
+    DeadlockError, InfeasibleOrdersError
+        When the first order (first-come-first-served) admits no schedule; later candidates of an order
+        search that admit none are recorded as infeasible trials and skipped.
     """
     t0 = time.perf_counter()
+    phases = {"build": float(build_time)}
     if resume and checkpoint_dir is None:
         raise ValueError("'resume' needs the run folder holding the checkpoint ('checkpoint_dir')")
     settings = spec.coordinator
@@ -187,22 +207,30 @@ def run_fleet(
         from negotiate.fleet import build_agents
 
         agents = build_agents(spec)
+        phases["build"] = time.perf_counter() - t0
+    t1 = time.perf_counter()
     if executor is not None:
         free_results = executor(agents, [a.free_optimum for a in agents], [None] * len(agents))
         free = np.array([r.value for r in free_results])
     else:
         free = np.array([a.problem.solve(a.free_optimum).value for a in agents])
+    t2 = time.perf_counter()
+    phases["free_optima"] = t2 - t1
+    coordinated = 0  # order trials handed to the coordinator so far
 
     def one(
         orders: dict[str, list[str]], start: np.ndarray | None
     ) -> tuple[float, np.ndarray, CoordinationResult | None]:
+        nonlocal coordinated
+        trial, coordinated = coordinated, coordinated + 1
         k = book.next_trial() if book is not None else 0
         if book is not None:
             done = book.finished(k, orders, agents)
             if done is not None:
                 return done
+        tell = None if progress is None else (lambda rec: progress(replace(rec, trial=trial)))
         r = coordinate(
-            agents, spec.resources, settings, orders=orders, start=start, executor=executor, progress=progress,
+            agents, spec.resources, settings, orders=orders, start=start, executor=executor, progress=tell,
             checkpoint=book.hook(k, orders) if book is not None else None,
             resume=book.engine_state(k, orders) if book is not None else None,
         )  # fmt: skip
@@ -213,6 +241,8 @@ def run_fleet(
 
     best, _orders, trials = search_orders(agents, spec.resources, settings.order, one)
     assert isinstance(best, CoordinationResult)
+    t3 = time.perf_counter()
+    phases["order_search"] = t3 - t2
     central = None
     if verify:
         central = solve_centralized(
@@ -221,6 +251,7 @@ def run_fleet(
             start=[rep.result.x for rep in best.evaluation.reports],
             start_P=best.P,
         )
+    phases["verify"] = time.perf_counter() - t3
     return RunResult(
         spec=spec,
         coordination=best,
@@ -228,8 +259,9 @@ def run_fleet(
         free_values=free,
         order_trials=tuple(trials),
         centralized=central,
-        wall_time=time.perf_counter() - t0,
+        wall_time=sum(phases.values()),
         agents=tuple(agents),
+        phase_times=phases,
     )
 
 

@@ -183,7 +183,8 @@ class TestSchedule:
         assert (problem.table, problem.key) == ("", None)
         assert str(problem).startswith(
             "fleet.toml: expected a fleet whose agents' reachable sets admit a schedule with "
-            "first-come-first-served orders, found none (linear program over 6 parameters and"
+            "first-come-first-served orders, found none: no schedule meets the orders gate: t1 > t2: these rules "
+            "conflict: gate: t1 leaves + gap <= t2 enters; "
         )
 
 

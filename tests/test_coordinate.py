@@ -13,7 +13,7 @@ from fleets import quadratic_share_agent, slot_agent
 from negotiate import AgentModel, ParametricNLP, ReachableSet, SlotParam
 from negotiate.centralized import solve_centralized
 from negotiate.coordinate import Evaluation, Method, Proposal, coordinate, register_method
-from negotiate.coupling import DeadlockError, build_feasible_set
+from negotiate.coupling import DeadlockError, InfeasibleOrdersError, build_feasible_set, check_orders
 from negotiate.orders import search_orders
 from negotiate.spec import CapacityResource, CoordinatorSettings, ExclusiveResource
 
@@ -236,6 +236,61 @@ class TestOrders:
         # by hand: stiff enters at 2 (its wish and earliest), soft waits until 13 => soft pays 0.01 * 13^2
         np.testing.assert_allclose(swap.total, 0.01 * 13.0**2, rtol=1e-6)
         assert any(t.kept for t in trials[1:])
+
+    # Emptiness by hand: A wants to enter at 0 (earliest 0), B at 5 (earliest 5); both stay at least 10 s,
+    # and every slot time lies at most 200 s after the wish (slot_agent's box). A first needs
+    # A.leave + gap <= B.enter with A.leave >= 10 and B.enter <= B.leave - 10 <= 195: feasible iff
+    # gap <= 185. B first: B.leave >= 15 and A.enter <= 190: feasible iff gap <= 175.
+    def gap_agents(self):
+        return [
+            slot_agent("A", 0.0, 10.0, 1.0, ["r"], earliest=0.0),
+            slot_agent("B", 5.0, 10.0, 1.0, ["r"], earliest=5.0),
+        ]
+
+    @pytest.mark.parametrize(
+        "first, gap, feasible", [("B", 175.0, True), ("B", 175.01, False), ("A", 185.0, True), ("A", 185.01, False)]
+    )
+    def test_emptiness_matches_the_hand_bound(self, first, gap, feasible):
+        """The phase-one LP finds the polyhedron empty exactly past the gap derived by hand."""
+        agents, res = self.gap_agents(), [ExclusiveResource("r", gap=gap)]
+        order = {"r": ["B", "A"]} if first == "B" else {"r": ["A", "B"]}
+        if feasible:
+            assert check_orders(agents, res, order).conflict() is None
+        else:
+            with pytest.raises(InfeasibleOrdersError) as err:
+                check_orders(agents, res, order)
+            first, second = order["r"]
+            # The certificate: the gap row, both users' shortest stays, the second user's latest exit.
+            assert f"r: {first} leaves + gap <= {second} enters" in err.value.rows
+            assert {f"{first}: reachable set row 0", f"{second}: reachable set row 0"} <= set(err.value.rows)
+            assert f"{second}: r.leave <= {205.0 if second == 'B' else 200.0:.6g} (reachable window)" in err.value.rows
+            assert "no schedule meets the orders r: " + " > ".join(order["r"]) in str(err.value)
+
+    def test_search_skips_an_infeasible_candidate(self):
+        """Gap 180: the first-come-first-served order (A, B) is feasible, its swap is not; the swap is recorded
+        as an infeasible trial with its reason and never coordinated."""
+        agents, res = self.gap_agents(), [ExclusiveResource("r", gap=180.0)]
+        calls = []
+
+        def run(orders, start):
+            calls.append(orders)
+            r = coordinate(agents, res, settings("bundle"), orders=orders, start=start)
+            return r.total, r.P, r
+
+        for rule in ("swap", "exhaustive"):
+            calls.clear()
+            best, orders, trials = search_orders(agents, res, rule, run)
+            assert orders == {"r": ["A", "B"]} and calls == [{"r": ["A", "B"]}]
+            assert [t.kept for t in trials] == [True, False]
+            assert trials[1].orders == {"r": ["B", "A"]} and trials[1].total == float("inf")
+            assert "no schedule meets the orders r: B > A" in trials[1].infeasible
+            assert best.success
+
+    def test_infeasible_first_order_names_resource_and_agents(self):
+        """Gap 186: no order admits a schedule; the search stops at the first one with a message."""
+        agents, res = self.gap_agents(), [ExclusiveResource("r", gap=186.0)]
+        with pytest.raises(InfeasibleOrdersError, match=r"no schedule meets the orders r: A > B"):
+            search_orders(agents, res, "swap", lambda orders, start: pytest.fail("must not coordinate"))
 
     def test_exhaustive_refuses_large_resources(self):
         """Exhaustive search is limited to 7 users per resource."""
