@@ -105,6 +105,22 @@ def _slots(agent: AgentModel) -> list[str]:
     return [q.resource for q in agent.params if q.kind == "enter"]
 
 
+def _inequality(row: np.ndarray, rhs: float, names: Sequence[str]) -> str:
+    """A row ``row @ p <= rhs`` as readable text, e.g. ``"bridge.enter - bridge.leave <= -12.5"``; when every
+    coefficient is negative it is written the other way round (``"bridge.leave - ... >= 12.5"``)."""
+    row = np.asarray(row, dtype=float)
+    big = float(np.max(np.abs(row), initial=0.0)) or 1.0  # written with its largest coefficient 1
+    sign, op = (-1.0 / big, ">=") if np.all(row[row != 0] < 0) else (1.0 / big, "<=")
+    terms = []
+    for c, name in zip(sign * row, names, strict=True):
+        if c == 0:
+            continue
+        mag = "" if f"{abs(c):.6g}" == "1" else f"{abs(c):.6g}*"
+        terms.append(("- " if c < 0 else "+ ") + mag + name)
+    text = " ".join(terms).removeprefix("+ ") or "0"
+    return f"{text.replace('- ', '-', 1) if text.startswith('- ') else text} {op} {sign * rhs:.6g}"
+
+
 def fcfs_orders(agents: Sequence[AgentModel], resources: Sequence[Resource]) -> dict[str, list[str]]:
     """First-come-first-served orders: users of each exclusive resource sorted by free-optimum entry time."""
     orders: dict[str, list[str]] = {}
@@ -297,7 +313,7 @@ def build_feasible_set(
             r[layout.slice(i)] = a.reachable.A[k]
             rows.append(r)
             rhs.append(float(a.reachable.b[k]))
-            labels.append(f"{a.name}: reachable set row {k}")
+            labels.append(f"{a.name}: {_inequality(a.reachable.A[k], a.reachable.b[k], a.param_names)} (reachable set)")
         for res in _slots(a):
             r = row()
             r[off + _slot_index(a, res, "enter")] = 1.0
