@@ -266,12 +266,13 @@ def _run(args: argparse.Namespace) -> int:
     rows = []
     for r in result.schedule:
         if r.share == r.share:
-            rows.append([r.agent, r.resource, f"{r.enter:.1f}", f"{r.leave:.1f}", f"{r.share:.0f}", "", "",
+            draw = "" if r.draw != r.draw else f"{r.draw:.0f}"
+            rows.append([r.agent, r.resource, f"{r.enter:.1f}", f"{r.leave:.1f}", f"{r.share:.0f}", draw, "", "",
                          _fmt(r.d_share, 3), _fmt(r.value - r.free_value, 4), r.verdict])  # fmt: skip
         else:
-            rows.append([r.agent, r.resource, f"{r.enter:.1f}", f"{r.leave:.1f}", "", _fmt(r.d_enter, 3),
+            rows.append([r.agent, r.resource, f"{r.enter:.1f}", f"{r.leave:.1f}", "", "", _fmt(r.d_enter, 3),
                          _fmt(r.d_leave, 3), "", _fmt(r.value - r.free_value, 4), r.verdict])  # fmt: skip
-    print(_table(["agent", "resource", "enter s", "leave s", "share", "dV/denter /s", "dV/dleave /s",
+    print(_table(["agent", "resource", "enter s", "leave s", "share", "draw", "dV/denter /s", "dV/dleave /s",
                   "dV/dshare", "cost increase", "certificate"], rows))  # fmt: skip
     print(f"status: {c.status} ({c.message}); {c.rounds} rounds, {c.agent_solves} agent solves, "
           f"{len(result.order_trials)} order(s) tried, {result.wall_time:.1f} s")  # fmt: skip
