@@ -336,8 +336,11 @@ def _sweep(args: argparse.Namespace) -> int:
     if res.window is not None:
         print(f"reachable window of {res.param} with the other parameters at the free optimum: "
               f"{res.window[0]:g} .. {res.window[1]:g} {res.unit}")  # fmt: skip
-        if not (res.window[0] <= min(args.start, args.stop) and max(args.start, args.stop) <= res.window[1]):
-            print("  the sweep leaves that window: the agent may have no feasible plan there")
+        out_n = int((~res.in_window).sum())
+        if out_n:
+            print(f"  {out_n} of {res.values.size} points lie outside the reachable window (in_window = 0 in the "
+                  "CSV, shaded in the plot): the coordinator never offers them, and a solve there may converge "
+                  "to a plan the agent cannot carry out")  # fmt: skip
     print(f"{res.agent}: {res.param} from {args.start:g} to {args.stop:g} {res.unit} in {res.values.size} points; "
           f"{ok} converged, {res.values.size - ok} failed")  # fmt: skip
     if res.changes:

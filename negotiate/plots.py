@@ -345,8 +345,9 @@ def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
 
     ``sweep`` is a :class:`negotiate.sweep.SweepResult`. Shaded bands mark the intervals between two points
     whose active sets differ (V may have a kink there); open circles mark points where a constraint is
-    weakly active or the certificate says ``nonsmooth``. The ``max_multipliers`` constraints with the
-    largest multipliers are drawn (all are in the CSV).
+    weakly active or the certificate says ``nonsmooth``; grey hatched bands the values outside the agent's
+    reachable window (:attr:`~negotiate.sweep.SweepResult.in_window`). The ``max_multipliers`` constraints
+    with the largest multipliers are drawn (all are in the CSV).
     """
     fig, axes = _figure(8.0, 7.2, nrows=3, sharex=True)
     x = sweep.values
@@ -391,6 +392,14 @@ def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
     for k in sweep.changes:
         for a in axes.ravel():
             a.axvspan(x[k - 1], x[k], color=PALETTE[4], alpha=0.25, linewidth=0)
+    outside = ~sweep.in_window
+    if outside.any():  # the agent is never offered these values: grey them out
+        lo, hi = sweep.window
+        spans = [(x.min(), x.max())] if not np.isfinite(lo) else [(x.min(), lo), (hi, x.max())]
+        for a in axes.ravel():
+            for s0, s1 in spans:
+                if s1 > s0:
+                    a.axvspan(s0, s1, facecolor="#BBBBBB", alpha=0.35, hatch="xx", edgecolor="#888888", linewidth=0)
     handles = []
     if sweep.changes:
         handles.append(Patch(facecolor=PALETTE[4], alpha=0.4, label="active set changes in this interval"))
@@ -401,7 +410,10 @@ def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
                                   label="weakly active constraint or nonsmooth certificate"))  # fmt: skip
     if (~ok).any():
         handles.append(plt.Line2D([], [], color=PALETTE[7], marker="x", linestyle="none", label="solve failed"))
-    fig.legend(handles=handles, loc="outside lower center", ncols=len(handles))
+    if outside.any():
+        label = f"outside the reachable window ({int(outside.sum())} of {x.size} points)"
+        handles.append(Patch(facecolor="#BBBBBB", alpha=0.5, hatch="xx", edgecolor="#888888", label=label))
+    fig.legend(handles=handles, loc="outside lower center", ncols=min(len(handles), 2))
     fig.suptitle(f"{sweep.agent}: sweep of {sweep.param}", fontsize=11, fontweight="bold", x=0.01, ha="left")
     return fig
 
