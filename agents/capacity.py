@@ -107,6 +107,10 @@ class CapacityModel:
         """Grid power per block in W from a decision vector."""
         return self.prm.charger_power * np.asarray(x, dtype=float).ravel()[: self.K]
 
+    def draw(self, result: Any) -> np.ndarray:
+        """Planned grid power per block in W at a solve (one entry per share parameter, ``<= share_k``)."""
+        return self.power(np.asarray(result.x, dtype=float))
+
     def trajectory(self, result: Any) -> Mapping[str, np.ndarray]:
         """Block-boundary series: time, grid power (zero-order hold), state of charge, stored energy."""
         prm = self.prm
@@ -139,8 +143,8 @@ def build_capacity(name: str, prm: CapacityParams | None = None, weight: float =
     Returns
     -------
     negotiate.agent.AgentModel
-        Parameters ``<resource>.share[k]`` in W, reachable box ``[0, charger_power]`` and the free optimum of
-        the module docstring.
+        Parameters ``<resource>.share[k]`` in W, reachable box ``[0, charger_power]``, the free optimum of
+        the module docstring and ``draw`` (the planned power ``P_k`` per block, W).
     """
     prm = CapacityParams() if prm is None else prm
     model = CapacityModel(prm)
@@ -155,5 +159,5 @@ def build_capacity(name: str, prm: CapacityParams | None = None, weight: float =
     return AgentModel(
         name=name, problem=spec.to_problem(solver_options), params=params,
         reachable=ReachableSet(np.zeros(model.K), ample), free_optimum=p_free, weight=weight,
-        trajectory=model.trajectory, model="capacity",
+        trajectory=model.trajectory, model="capacity", draw=model.draw,
     )

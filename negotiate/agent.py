@@ -118,6 +118,11 @@ class AgentModel:
     start : LocalResult, optional
         A converged solve at ``free_optimum``; the coordinator's first round starts the agent's solver from
         it (``build_agents`` sets it). Without it the first round solves cold.
+    draw : callable, optional
+        ``draw(result) -> array`` with one entry per parameter: for a ``"share"`` parameter, how much of the
+        resource the agent plans to use in that block at this solve (in the share's unit, W for power; at
+        most the share); entries of slot times are ignored. A share is a right to draw, not a plan: an agent
+        may leave part of it unused. Without it the files and the report show the shares only.
     """
 
     name: str
@@ -129,6 +134,7 @@ class AgentModel:
     trajectory: Callable[[LocalResult], Mapping[str, np.ndarray]] | None = None
     model: str = "custom"
     start: LocalResult | None = None
+    draw: Callable[[LocalResult], np.ndarray] | None = None
 
     def __post_init__(self) -> None:
         self.params = tuple(self.params)

@@ -3,8 +3,10 @@
 :func:`check_fleet` (a file) and :func:`check_data` (a decoded dictionary) never raise for user mistakes:
 they return a :class:`CheckResult` holding a row per agent (model, weight, build time and, for each shared
 parameter, its reachable ``[lower, upper]`` and free optimum with its unit), a row per resource (its users
-and whether their free optima collide), the conflict graph and every problem found. The command
-``negotiate check fleet.toml`` prints :meth:`CheckResult.to_text`.
+and whether their free optima collide), the conflict graph, every problem found and warnings about what is
+legal but looks like a mistake (a capacity limit far below what its users ask for, as after writing kW where
+W is meant; see :data:`LIMIT_WARN_RATIO`). The command ``negotiate check fleet.toml`` prints
+:meth:`CheckResult.to_text`.
 
 The conflict graph (:func:`conflict_graph`) has a node per agent and per resource and an edge where an agent
 uses a resource. Its connected components are groups of agents that share nothing with the other groups, so
@@ -26,7 +28,23 @@ from negotiate.errors import FleetError, Problem
 from negotiate.fleet import BuiltAgent, _load, _parse, build_report
 from negotiate.spec import CapacityResource, ExclusiveResource, FleetSpec
 
-__all__ = ["AgentRow", "CheckResult", "ParamRow", "ResourceRow", "check_data", "check_fleet", "conflict_graph"]
+__all__ = [
+    "LIMIT_WARN_RATIO",
+    "AgentRow",
+    "CheckResult",
+    "ParamRow",
+    "ResourceRow",
+    "check_data",
+    "check_fleet",
+    "conflict_graph",
+]
+
+LIMIT_WARN_RATIO = 10**-1.5
+"""A capacity limit below this fraction (about 3.2 %) of the summed free-optimum shares of its users in a
+block draws a warning. It is the geometric mean of 1 (a limit of the order of what the users ask for, tight
+or not) and 1e-3 (the same limit written in the next SI prefix, kW read as W): on a log scale such a limit
+is nearer a unit mistake than any plausible tight limit. A limit of 0 is never a unit mistake and is not
+warned about."""
 
 
 @dataclass(frozen=True)
@@ -93,6 +111,8 @@ class CheckResult:
         (None when not checked: some agent was not built); ``schedule_detail`` says it in words.
     problems : tuple of Problem
         Every mistake found; empty when the fleet is ready to coordinate.
+    warnings : tuple of str
+        What is legal but looks like a mistake (one line each); warnings do not make the check fail.
     """
 
     source: str
@@ -105,6 +125,7 @@ class CheckResult:
     schedule: bool | None = None
     schedule_detail: str = "not checked"
     problems: tuple[Problem, ...] = ()
+    warnings: tuple[str, ...] = ()
 
     @property
     def ok(self) -> bool:
@@ -137,6 +158,7 @@ class CheckResult:
             "schedule": self.schedule,
             "schedule_detail": self.schedule_detail,
             "problems": [vars(p).copy() for p in self.problems],
+            "warnings": list(self.warnings),
         }
 
     def to_text(self) -> str:
@@ -189,7 +211,7 @@ def _check_spec(spec: FleetSpec, description: str, build: bool) -> CheckResult:
             AgentRow(agent.name, agent.model, agent.weight, m is not None, b.seconds if b is not None else 0.0, params)
         )
     graph = conflict_graph(spec, models)
-    resources, capacity_problems = _resource_rows(spec, graph, models, complete=build and not problems)
+    resources, capacity_problems, warnings = _resource_rows(spec, graph, models, complete=build and not problems)
     problems += capacity_problems
     schedule, schedule_detail = None, "not checked (not every agent was built)" if build else "not checked"
     if build and not problems:
@@ -211,6 +233,7 @@ def _check_spec(spec: FleetSpec, description: str, build: bool) -> CheckResult:
         schedule=schedule,
         schedule_detail=schedule_detail,
         problems=tuple(problems),
+        warnings=tuple(warnings),
     )
 
 
@@ -281,9 +304,10 @@ def _slot(m: Any, resource: str) -> tuple[float, float] | None:
 
 def _resource_rows(
     spec: FleetSpec, g: nx.Graph, models: Mapping[str, Any], complete: bool
-) -> tuple[list[ResourceRow], list[Problem]]:
+) -> tuple[list[ResourceRow], list[Problem], list[str]]:
     rows: list[ResourceRow] = []
     problems: list[Problem] = []
+    warnings: list[str] = []
     for r in spec.resources:
         users = _users(g, r.name, spec)
         known = [u for u in users if u in models]
@@ -327,6 +351,9 @@ def _resource_rows(
             else:
                 detail = "free-optimum shares fit within every block's limit"
             rows.append(ResourceRow(r.name, "capacity", users, bool(over.size), detail))
+            low = _low_limits(spec, r, demand)
+            if low is not None:
+                warnings.append(low)
             short = np.flatnonzero(floor > limits * (1 + 1e-9))
             if complete and short.size:
                 problems.append(
@@ -338,7 +365,40 @@ def _resource_rows(
                         f"blocks {', '.join(map(str, short))} short",
                     )
                 )
-    return rows, problems
+    return rows, problems, warnings
+
+
+def _low_limits(spec: FleetSpec, r: CapacityResource, demand: np.ndarray) -> str | None:
+    """A warning when some block's limit is below :data:`LIMIT_WARN_RATIO` of its users' free-optimum shares.
+
+    Blocks with a zero limit or no demand are left out (neither can come from a unit mistake)."""
+    limits = np.asarray(r.limits, dtype=float)
+    seen = (limits > 0) & (demand > 0)
+    ratio = np.full(limits.size, np.inf)
+    ratio[seen] = limits[seen] / demand[seen]
+    low = np.flatnonzero(ratio < LIMIT_WARN_RATIO)
+    if not low.size:
+        return None
+    k = int(low[np.argmin(ratio[low])])
+    return (
+        f"{spec.source}: [resources.{r.name}] key 'limits': limit {_si(limits[k], r.unit)} in block {k} is "
+        f"{_share(ratio[k])} of the {_si(demand[k], r.unit)} its users' free optima ask for there "
+        f"({low.size} of {limits.size} blocks below {100 * LIMIT_WARN_RATIO:.1f} %); limits are in {r.unit}"
+        + (" (1 kW is 1e3 W)" if r.unit == "W" else "")
+    )
+
+
+def _si(v: float, unit: str) -> str:
+    """Three significant digits with an SI prefix (39 kW, 1.2 MW, 40 W)."""
+    for scale, prefix in ((1e9, "G"), (1e6, "M"), (1e3, "k")):
+        if abs(v) >= scale:
+            return f"{v / scale:.3g} {prefix}{unit}"
+    return f"{v:.3g} {unit}"
+
+
+def _share(fraction: float) -> str:
+    """A fraction as a percentage with two significant digits (0.17 %, 3.1 %, 45 %)."""
+    return f"{100 * fraction:.2g} %"
 
 
 def _kind(r: Any) -> str:
@@ -444,6 +504,10 @@ def _text(res: CheckResult) -> str:
     state = {True: "feasible", False: "INFEASIBLE", None: "unknown"}[res.schedule]
     out.append(f"schedule check: {state}: {res.schedule_detail}")
     out.append("")
+    if res.warnings:
+        out.append(f"{len(res.warnings)} warning(s) (the check does not fail on them):")
+        out.extend(res.warnings)
+        out.append("")
     if res.problems:
         out.append(f"{len(res.problems)} problem(s):")
         out.extend(str(p) for p in res.problems)

@@ -274,12 +274,13 @@ def _run(args: argparse.Namespace) -> int:
     rows = []
     for r in result.schedule:
         if r.share == r.share:
-            rows.append([r.agent, r.resource, f"{r.enter:.1f}", f"{r.leave:.1f}", f"{r.share:.0f}", "", "",
+            draw = "" if r.draw != r.draw else f"{r.draw:.0f}"
+            rows.append([r.agent, r.resource, f"{r.enter:.1f}", f"{r.leave:.1f}", f"{r.share:.0f}", draw, "", "",
                          _fmt(r.d_share, 3), _fmt(r.value - r.free_value, 4), r.verdict])  # fmt: skip
         else:
-            rows.append([r.agent, r.resource, f"{r.enter:.1f}", f"{r.leave:.1f}", "", _fmt(r.d_enter, 3),
+            rows.append([r.agent, r.resource, f"{r.enter:.1f}", f"{r.leave:.1f}", "", "", _fmt(r.d_enter, 3),
                          _fmt(r.d_leave, 3), "", _fmt(r.value - r.free_value, 4), r.verdict])  # fmt: skip
-    print(_table(["agent", "resource", "enter s", "leave s", "share", "dV/denter /s", "dV/dleave /s",
+    print(_table(["agent", "resource", "enter s", "leave s", "share", "draw", "dV/denter /s", "dV/dleave /s",
                   "dV/dshare", "cost increase", "certificate"], rows))  # fmt: skip
     skipped = sum(1 for t in result.order_trials if t.infeasible)
     phases = ", ".join(f"{k.replace('_', ' ')} {v:.1f} s" for k, v in result.phase_times.items() if k != "verify"
@@ -348,8 +349,11 @@ def _sweep(args: argparse.Namespace) -> int:
     if res.window is not None:
         print(f"reachable window of {res.param} with the other parameters at the free optimum: "
               f"{res.window[0]:g} .. {res.window[1]:g} {res.unit}")  # fmt: skip
-        if not (res.window[0] <= min(args.start, args.stop) and max(args.start, args.stop) <= res.window[1]):
-            print("  the sweep leaves that window: the agent may have no feasible plan there")
+        out_n = int((~res.in_window).sum())
+        if out_n:
+            print(f"  {out_n} of {res.values.size} points lie outside the reachable window (in_window = 0 in the "
+                  "CSV, shaded in the plot): the coordinator never offers them, and a solve there may converge "
+                  "to a plan the agent cannot carry out")  # fmt: skip
     print(f"{res.agent}: {res.param} from {args.start:g} to {args.stop:g} {res.unit} in {res.values.size} points; "
           f"{ok} converged, {res.values.size - ok} failed")  # fmt: skip
     if res.changes:

@@ -1002,9 +1002,10 @@ def _import_builder(target: str, fail: Callable[..., None]) -> Callable[..., Any
     try:
         module = importlib.import_module(module_name)
     except Exception as exc:  # noqa: BLE001 - user code: any failure is a fleet problem
+        where = "; install it or put its folder on PYTHONPATH" if isinstance(exc, ModuleNotFoundError) else ""
         fail(
             "an importable module in 'package.module:function'",
-            f"{describe(target)} ({type(exc).__name__}: {exc})",
+            f"{describe(target)} ({type(exc).__name__}: {exc}{where})",
             key="model",
         )
         return None

@@ -176,10 +176,12 @@ def slot_chart(resource: str, slots: Sequence[Any], gap: float, free: Mapping[st
 
 @_styled
 def capacity_chart(resource: str, unit: str, blocks: Sequence[Any], shares: Sequence[Any]) -> Figure:
-    """Stacked shares per block of one capacity resource against its limit.
+    """Stacked shares per block of one capacity resource against its limit, each split into what is drawn.
 
     ``blocks`` have ``block``, ``start_s``, ``end_s`` and ``limit``; ``shares`` have ``agent``, ``enter``
-    (block start, s) and ``share`` (in ``unit``).
+    (block start, s), ``share`` and optionally ``draw`` (both in ``unit``). Each user's share is a bar: the
+    part the agent plans to draw solid, the part granted but not drawn light and hatched (a share whose
+    ``draw`` is ``nan`` or missing is drawn solid as a whole).
     """
     blocks = sorted(blocks, key=lambda b: b.start_s)
     starts = np.array([b.start_s for b in blocks])
@@ -188,14 +190,23 @@ def capacity_chart(resource: str, unit: str, blocks: Sequence[Any], shares: Sequ
     fig, axes = _figure(9.0, 3.6)
     ax = axes[0, 0]
     bottom = np.zeros(len(blocks))
+    unused_any = False
     for i, u in enumerate(users):
         h = np.zeros(len(blocks))
+        d = np.zeros(len(blocks))
         for s in shares:
             if s.agent == u:
                 k = int(np.argmin(np.abs(starts - s.enter)))
                 h[k] += s.share
-        ax.bar(starts, h, width=width * 0.92, bottom=bottom, align="edge", color=colour(i), label=u,
+                dv = float(getattr(s, "draw", np.nan))
+                d[k] += min(max(dv, 0.0), s.share) if np.isfinite(dv) else s.share
+        ax.bar(starts, d, width=width * 0.92, bottom=bottom, align="edge", color=colour(i), label=u,
                edgecolor="white", linewidth=0.5)  # fmt: skip
+        unused = h - d
+        if np.any(unused > 0):
+            unused_any = True
+            ax.bar(starts, unused, width=width * 0.92, bottom=bottom + d, align="edge", color=colour(i), alpha=0.3,
+                   hatch="////", edgecolor="white", linewidth=0.5, label="_unused")  # fmt: skip
         bottom += h
     lim = np.array([b.limit for b in blocks])
     edges = np.r_[starts, starts[-1] + width[-1]]
@@ -203,11 +214,16 @@ def capacity_chart(resource: str, unit: str, blocks: Sequence[Any], shares: Sequ
     ax.yaxis.set_major_formatter(_eng(unit))
     ax.set_xlabel("time (s)")
     ax.set_ylabel(f"share ({unit})")
+    what = "shares per block (solid: planned draw, hatched: unused)" if unused_any else "shares per block"
     if len(users) <= MAX_LEGEND_USERS:
-        ax.set_title(f"{resource}: shares per block and limit")
-        ax.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0))
+        ax.set_title(f"{resource}: {what} and limit")
+        handles, labels = ax.get_legend_handles_labels()
+        if unused_any:
+            handles.append(Patch(facecolor="#999999", alpha=0.3, hatch="////", edgecolor="white"))
+            labels.append("share not drawn")
+        ax.legend(handles, labels, loc="upper left", bbox_to_anchor=(1.0, 1.0))
     else:
-        ax.set_title(f"{resource}: shares of {len(users)} users per block (stacked) and limit (black)")
+        ax.set_title(f"{resource}: {what} of {len(users)} users (stacked) and limit (black)")
     return fig
 
 
@@ -329,8 +345,9 @@ def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
 
     ``sweep`` is a :class:`negotiate.sweep.SweepResult`. Shaded bands mark the intervals between two points
     whose active sets differ (V may have a kink there); open circles mark points where a constraint is
-    weakly active or the certificate says ``nonsmooth``. The ``max_multipliers`` constraints with the
-    largest multipliers are drawn (all are in the CSV).
+    weakly active or the certificate says ``nonsmooth``; grey hatched bands the values outside the agent's
+    reachable window (:attr:`~negotiate.sweep.SweepResult.in_window`). The ``max_multipliers`` constraints
+    with the largest multipliers are drawn (all are in the CSV).
     """
     fig, axes = _figure(8.0, 7.2, nrows=3, sharex=True)
     x = sweep.values
@@ -375,6 +392,14 @@ def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
     for k in sweep.changes:
         for a in axes.ravel():
             a.axvspan(x[k - 1], x[k], color=PALETTE[4], alpha=0.25, linewidth=0)
+    outside = ~sweep.in_window
+    if outside.any():  # the agent is never offered these values: grey them out
+        lo, hi = sweep.window
+        spans = [(x.min(), x.max())] if not np.isfinite(lo) else [(x.min(), lo), (hi, x.max())]
+        for a in axes.ravel():
+            for s0, s1 in spans:
+                if s1 > s0:
+                    a.axvspan(s0, s1, facecolor="#BBBBBB", alpha=0.35, hatch="xx", edgecolor="#888888", linewidth=0)
     handles = []
     if sweep.changes:
         handles.append(Patch(facecolor=PALETTE[4], alpha=0.4, label="active set changes in this interval"))
@@ -385,7 +410,10 @@ def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
                                   label="weakly active constraint or nonsmooth certificate"))  # fmt: skip
     if (~ok).any():
         handles.append(plt.Line2D([], [], color=PALETTE[7], marker="x", linestyle="none", label="solve failed"))
-    fig.legend(handles=handles, loc="outside lower center", ncols=len(handles))
+    if outside.any():
+        label = f"outside the reachable window ({int(outside.sum())} of {x.size} points)"
+        handles.append(Patch(facecolor="#BBBBBB", alpha=0.5, hatch="xx", edgecolor="#888888", label=label))
+    fig.legend(handles=handles, loc="outside lower center", ncols=min(len(handles), 2))
     fig.suptitle(f"{sweep.agent}: sweep of {sweep.param}", fontsize=11, fontweight="bold", x=0.01, ha="left")
     return fig
 

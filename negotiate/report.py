@@ -217,7 +217,15 @@ def _schedule(f: RunFiles) -> str:
         fig = plots.capacity_chart(name, unit, blocks, shares)
         out.append(f"<h3>{_e(name)} (capacity, {len(blocks)} blocks)</h3>")
         out.append(_img(plots.png(fig), f"shares of {name}"))
+        if any(math.isfinite(s.draw) for s in shares):
+            out.append(_draw_note())
     return "".join(out)
+
+
+def _draw_note() -> str:
+    """What the share chart's solid and hatched parts mean."""
+    return ('<p class="note">A share is what an agent may draw in a block; the solid part of its bar is what it '
+            "plans to draw there (<code>draw</code> in schedule.csv), the hatched part what it leaves unused.</p>")
 
 
 def _agents(f: RunFiles) -> str:

@@ -205,7 +205,8 @@ class ScheduleRow:
     ``enter``/``leave`` in s (for a capacity share: the block's start and end), ``share`` in the
     resource's unit (``nan`` for slots), ``value`` the agent's optimal cost there, ``d_enter``/``d_leave``
     its value gradient w.r.t. the slot's entry and exit (cost per s), ``d_share`` w.r.t. the share (cost per
-    unit of share).
+    unit of share), ``draw`` what the agent plans to use of its share in the block, in the resource's unit
+    (``nan`` for slots, and for agents whose model does not say).
     """
 
     agent: str
@@ -219,6 +220,7 @@ class ScheduleRow:
     d_leave: float
     d_share: float
     verdict: str
+    draw: float = math.nan
 
 
 @dataclass(frozen=True)
@@ -314,7 +316,7 @@ def load_run(folder: str | Path) -> RunFiles:
     schedule = tuple(
         ScheduleRow(r["agent"], r["resource"], _float(r["enter"]), _float(r["leave"]), _float(r["share"]),
                 _float(r["value"]), _float(r["free_value"]), _float(r["d_enter"]), _float(r["d_leave"]),
-                _float(r["d_share"]), r["verdict"])
+                _float(r["d_share"]), r["verdict"], _float(r.get("draw") or ""))
         for r in _read_csv(d / "schedule.csv")
     )  # fmt: skip
     history = tuple(

@@ -123,6 +123,10 @@ def _schedule(
     for a, rep, fv in zip(agents, res.evaluation.reports, free, strict=True):
         grad = rep.gradient if rep.gradient is not None else np.full(a.problem.n_p, np.nan)
         verdict = rep.certificate.verdict if rep.certificate is not None else str(rep.status)
+        draw = np.full(a.problem.n_p, np.nan)
+        if a.draw is not None and rep.ok:
+            planned = np.asarray(a.draw(rep.result), dtype=float).ravel()
+            draw = planned if planned.shape == draw.shape else draw
         done: set[str] = set()
         for k, q in enumerate(a.params):
             if q.kind == "share":
@@ -131,7 +135,7 @@ def _schedule(
                 t0 = r.start + q.block * r.block_length
                 rows.append(
                     ScheduleRow(a.name, q.resource, t0, t0 + r.block_length, float(rep.p[k]), rep.value, fv,
-                                np.nan, np.nan, float(grad[k]), verdict)
+                                np.nan, np.nan, float(grad[k]), verdict, float(draw[k]))
                 )  # fmt: skip
             elif q.resource not in done:
                 done.add(q.resource)
@@ -277,6 +281,12 @@ def _clean(v: Any) -> Any:
     return v
 
 
+def _six(v: float) -> str:
+    """Six decimals; a value that rounds to zero is written 0.000000 whatever its sign (a solver's -1e-18 W)."""
+    text = f"{v:.6f}"
+    return text[1:] if text == "-0.000000" else text
+
+
 def write_outputs(run: RunResult, out_dir: str | Path) -> list[Path]:
     """Write ``schedule.csv``, ``run.json``, the files of :mod:`negotiate.results` (history, prices, agents,
     resources, trajectories) and ``report.html`` into ``out_dir`` (created if needed); return the paths."""
@@ -285,12 +295,13 @@ def write_outputs(run: RunResult, out_dir: str | Path) -> list[Path]:
     sched = out / "schedule.csv"
     with sched.open("w", newline="") as fh:
         w = csv.writer(fh)
-        w.writerow(["agent", "resource", "enter", "leave", "value", "share", "free_value", "increase",
+        w.writerow(["agent", "resource", "enter", "leave", "value", "share", "draw", "free_value", "increase",
                     "d_enter", "d_leave", "d_share", "verdict"])  # fmt: skip
         for r in run.schedule:
             w.writerow([
                 r.agent, r.resource, f"{r.enter:.6f}", f"{r.leave:.6f}", f"{r.value:.6f}",
-                "" if np.isnan(r.share) else f"{r.share:.6f}", f"{r.free_value:.6f}",
+                "" if np.isnan(r.share) else f"{r.share:.6f}", "" if np.isnan(r.draw) else _six(r.draw),
+                f"{r.free_value:.6f}",
                 f"{r.value - r.free_value:.6f}",
                 "" if np.isnan(r.d_enter) else f"{r.d_enter:.6g}", "" if np.isnan(r.d_leave) else f"{r.d_leave:.6g}",
                 "" if np.isnan(r.d_share) else f"{r.d_share:.6g}", r.verdict,

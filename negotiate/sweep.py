@@ -57,7 +57,9 @@ class SweepResult:
     results : tuple of LocalResult
         The solves themselves.
     window : tuple of float or None
-        The swept parameter's box in the agent's reachable set (``None`` for a bare problem), in ``unit``.
+        The interval of the swept parameter inside the agent's reachable set with the other parameters held
+        where they are (``None`` for a bare problem; ``(nan, nan)`` when the line misses the set), in
+        ``unit``. See :attr:`in_window`.
     """
 
     agent: str
@@ -86,6 +88,19 @@ class SweepResult:
     def converged(self) -> np.ndarray:
         """Boolean mask of the points whose solve converged (a gradient is present)."""
         return np.isfinite(self.gradient[:, self.index])
+
+    @property
+    def in_window(self) -> np.ndarray:
+        """Boolean mask of the points inside :attr:`window` (all True for a bare problem).
+
+        Outside its reachable set an agent is never offered the parameter: a solve there may converge and yet
+        describe a plan the agent cannot carry out (a machine's slot shorter than the station's duration),
+        or fail. The ends count as inside to 1e-9 relative (the window's own rounding)."""
+        if self.window is None:
+            return np.ones(self.values.size, dtype=bool)
+        lo, hi = self.window
+        tol = 1e-9 * max(1.0, abs(lo), abs(hi)) if np.isfinite(lo) and np.isfinite(hi) else 0.0
+        return (self.values >= lo - tol) & (self.values <= hi + tol)
 
     def kinks(self) -> list[float]:
         """Midpoints between the points where the active set changed: where V may have a kink, in ``unit``."""
@@ -251,14 +266,16 @@ def write_sweep(sweep: SweepResult, out_dir: str | Path, *, plot: bool = True) -
 
     CSV columns (see ``docs/outputs.md``): ``step``, ``p`` (the swept value, in the parameter's unit),
     ``value``, ``d_<name>`` per parameter (cost per unit), ``status``, ``verdict``, ``active_set_changed``
-    (1 where the active set differs from the previous point), ``weakly_active`` and ``active``
-    (``;``-separated constraint names) and ``lam[<constraint>]`` per constraint active somewhere.
+    (1 where the active set differs from the previous point), ``in_window`` (1 inside the agent's reachable
+    window, 0 outside, empty for a bare problem), ``weakly_active`` and ``active`` (``;``-separated constraint
+    names) and ``lam[<constraint>]`` per constraint active somewhere.
     """
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     stem = f"sweep-{_safe(sweep.agent)}-{_safe(sweep.param)}"
     path = out / f"{stem}.csv"
     changed = set(sweep.changes)
+    inside = ["" if sweep.window is None else str(int(v)) for v in sweep.in_window]
 
     def num(v: float) -> str:
         return "" if not np.isfinite(v) else repr(float(v))
@@ -267,10 +284,12 @@ def write_sweep(sweep: SweepResult, out_dir: str | Path, *, plot: bool = True) -
         w = csv.writer(fh)
         lam = list(sweep.multipliers)
         w.writerow(["step", "p", "value", *(f"d_{n}" for n in sweep.p_names), "status", "verdict",
-                    "active_set_changed", "weakly_active", "active", *(f"lam[{n}]" for n in lam)])  # fmt: skip
+                    "active_set_changed", "in_window", "weakly_active", "active",
+                    *(f"lam[{n}]" for n in lam)])  # fmt: skip
         for k in range(sweep.values.size):
             w.writerow([k, num(sweep.values[k]), num(sweep.value[k]), *(num(g) for g in sweep.gradient[k]),
-                        sweep.status[k], sweep.verdict[k], int(k in changed), ";".join(sweep.weakly_active[k]),
+                        sweep.status[k], sweep.verdict[k], int(k in changed), inside[k],
+                        ";".join(sweep.weakly_active[k]),
                         ";".join(sweep.active[k]), *(num(sweep.multipliers[n][k]) for n in lam)])  # fmt: skip
     paths = [path]
     if plot:

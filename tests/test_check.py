@@ -226,3 +226,67 @@ class TestCli:
         assert cli.main(["check", "--no-build", str(EXAMPLES / "quarry_bridge.toml")]) == 0
         out = capsys.readouterr().out
         assert "agent truck-01   model vehicle   weight 1   not built" in out
+
+
+def depot_with_limits(scale: float) -> dict:
+    """The charging depot example with every grid limit multiplied by ``scale`` (1e-3: kW written as W)."""
+    import tomllib
+
+    data = tomllib.loads((EXAMPLES / "charging_depot.toml").read_text(encoding="utf-8"))
+    data["resources"]["grid"]["limits"] = [v * scale for v in data["resources"]["grid"]["limits"]]
+    return data
+
+
+class TestLimitWarning:
+    """A capacity limit far below what its users ask for (a unit mistake, e.g. kW written as W) is warned about."""
+
+    def test_kilowatts_written_as_watts(self):
+        """Limits 1000x too small: one warning naming the resource, the worst block and both powers; no problem.
+
+        Reference: the ratio is recomputed here from the check's own parameter rows (free optimum of every
+        share in the block, summed) and the fleet's limits; the example's W limits give none (smallest ratio
+        of limit to demand 0.62, far above the 3.2 % threshold).
+        """
+        assert not check_data(depot_with_limits(1.0), "depot.toml").warnings
+        res = check_data(depot_with_limits(1e-3), "depot.toml")
+        assert res.ok and res.schedule is True  # legal: only a warning
+        limits = [v * 1e-3 for v in (450e3, 450e3, 350e3, 300e3, 350e3, 450e3, 500e3, 500e3)]
+        demand = [sum(p.free for a in res.agents for p in a.params if p.name == f"grid.share[{k}]") for k in range(8)]
+        ratio = [lim / d for lim, d in zip(limits, demand, strict=True)]
+        k = min(range(8), key=ratio.__getitem__)
+        (text,) = res.warnings
+        assert text.startswith(f"depot.toml: [resources.grid] key 'limits': limit {limits[k]:.3g} W in block {k} is ")
+        assert f"is {100 * ratio[k]:.2g} % of the {demand[k] / 1e3:.3g} kW its users' free optima ask for" in text
+        assert "(8 of 8 blocks below 3.2 %); limits are in W" in text
+        assert res.to_dict()["warnings"] == [text]
+
+    def test_threshold_is_per_block(self):
+        """Only blocks below 10^-1.5 of their demand count; a zero limit (an outage) is never warned about.
+
+        The limit of block 0 is set just below and then just above 10^-1.5 times the block's demand (from
+        the check's rows), every other block as in the example."""
+        base = check_data(depot_with_limits(1.0), "depot.toml")
+        demand0 = sum(p.free for a in base.agents for p in a.params if p.name == "grid.share[0]")
+        for factor, warned in ((0.99, True), (1.01, False)):
+            data = depot_with_limits(1.0)
+            data["resources"]["grid"]["limits"][0] = factor * 10**-1.5 * demand0
+            res = check_data(data, "depot.toml")
+            assert bool(res.warnings) is warned, (factor, res.warnings)
+            if warned:
+                assert "in block 0 is" in res.warnings[0] and "(1 of 8 blocks" in res.warnings[0]
+        data = depot_with_limits(1.0)
+        data["resources"]["grid"]["limits"][0] = 0.0
+        assert not check_data(data, "depot.toml").warnings
+
+    def test_cli_prints_warning_and_exits_zero(self, tmp_path, capsys):
+        """`negotiate check` prints the warning and still exits 0 (the file is legal)."""
+        path = tmp_path / "depot.toml"
+        text = (EXAMPLES / "charging_depot.toml").read_text(encoding="utf-8")
+        watts = "limits = [450e3, 450e3, 350e3, 300e3, 350e3, 450e3, 500e3, 500e3]"
+        assert watts in text
+        path.write_text(text.replace(watts, "limits = [450, 450, 350, 300, 350, 450, 500, 500]"), encoding="utf-8")
+        assert cli.main(["check", str(path)]) == 0
+        out = capsys.readouterr().out
+        assert "1 warning(s) (the check does not fail on them):" in out
+        assert f"{path}: [resources.grid] key 'limits': limit 500 W in block 7 is" in out
+        assert out.rstrip().endswith("no problems found")

@@ -520,6 +520,7 @@ class TestBuildAgents:
             "'package.module:function', found \"no_such_module_here:build\" "
             "(ModuleNotFoundError:"
         )
+        assert lines[2].endswith("; install it or put its folder on PYTHONPATH)")
 
     def test_custom_model_on_wrong_resource(self, tmp_path, monkeypatch):
         """A custom model's parameters must name declared resources of the right kind."""

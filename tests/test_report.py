@@ -349,3 +349,78 @@ class TestLargeFleet:
         traj = re.findall(r'alt="trajectories of ([^"]+)"', html)
         assert traj == ["truck-a33", "truck-a32", "truck-a31"]  # the largest increases, largest first
         assert "40 agents: shown are the 3 whose cost rose most" in html
+
+
+class TestPlannedDraw:
+    """schedule.csv's ``draw`` and the share chart: the power an agent plans to draw, beside the share it got."""
+
+    EFFICIENCY = 0.92  # the mixed fleet's tractors keep CapacityParams' default charging efficiency
+
+    def test_draw_matches_the_trajectory(self, files: RunFiles) -> None:
+        """Each share row's draw equals the agent's own trajectory in that block, sampled and integrated here.
+
+        Two references from trajectories/<agent>.csv, independent of the draw callable: ``power_W`` sampled
+        at the block's midpoint (zero-order hold: the value at a node holds until the next node), and the
+        energy balance of the block, (energy_J[k+1] - energy_J[k]) / (efficiency * h), the charging
+        equation E_{k+1} = E_k + efficiency P_k h (conservation of energy). Tolerance 1e-6 W: schedule.csv
+        has six decimals; the energies, ~1e8 J in double precision, give ~1e-7 W over 900 s.
+        """
+        rows = [s for s in files.schedule if s.resource == "grid"]
+        assert len(rows) == 8
+        for s in rows:
+            tr = files.trajectories[s.agent]
+            t, power, energy = tr["time_s"], tr["power_W"], tr["energy_J"]
+            mid = 0.5 * (s.enter + s.leave)
+            i = int(np.searchsorted(t, mid, side="right")) - 1
+            assert t[i] <= mid < t[i + 1]
+            assert abs(s.draw - power[i]) <= 1e-6, (s.agent, s.enter)
+            h = t[i + 1] - t[i]
+            assert h == s.leave - s.enter
+            assert abs(s.draw - (energy[i + 1] - energy[i]) / (self.EFFICIENCY * h)) <= 1e-6, (s.agent, s.enter)
+            assert s.draw <= s.share + 1e-6  # P_k <= share_k, a constraint of the model
+        # the point of the column: some shares are granted and left (partly) unused
+        assert any(s.share - s.draw > 1e3 for s in rows)
+        assert all(math.isnan(s.draw) for s in files.schedule if s.resource != "grid")
+
+    def test_chart_splits_each_share(self) -> None:
+        """In the share chart each user's bar is its draw (solid) and the rest of its share (hatched)."""
+        from types import SimpleNamespace as Row
+
+        from negotiate import plots
+
+        blocks = [Row(block=k, start_s=900.0 * k, end_s=900.0 * (k + 1), limit=2e5) for k in range(2)]
+        shares = [
+            Row(agent="a", enter=0.0, share=1e5, draw=4e4),
+            Row(agent="a", enter=900.0, share=5e4, draw=5e4),
+            Row(agent="b", enter=0.0, share=6e4, draw=0.0),
+            Row(agent="b", enter=900.0, share=7e4, draw=1e4),
+        ]
+        fig = plots.capacity_chart("grid", "W", blocks, shares)
+        ax = fig.axes[0]
+        bars = [[(p.get_y(), p.get_height(), p.get_hatch()) for p in c.patches] for c in ax.containers]
+        assert bars == [
+            [(0.0, 4e4, None), (0.0, 5e4, None)],  # a: drawn
+            [(4e4, 6e4, "////"), (5e4, 0.0, "////")],  # a: granted, not drawn
+            [(1e5, 0.0, None), (5e4, 1e4, None)],  # b: drawn, stacked on a's shares
+            [(1e5, 6e4, "////"), (6e4, 6e4, "////")],  # b: not drawn
+        ]
+        assert "share not drawn" in [t.get_text() for t in ax.get_legend().get_texts()]
+
+    def test_report_explains_it(self, folder: Path) -> None:
+        """The report's share chart is followed by the note saying what solid and hatched mean."""
+        html = (folder / "report.html").read_text(encoding="utf-8")
+        assert "the solid part of its bar is what it plans to draw there (<code>draw</code> in schedule.csv)" in html
+
+    def test_folder_without_draw(self, folder: Path, tmp_path: Path) -> None:
+        """A run folder written before the column existed still loads (draw nan) and its report has no note."""
+        copy = tmp_path / "old"
+        shutil.copytree(folder, copy)
+        lines = (copy / "schedule.csv").read_text().splitlines()
+        col = lines[0].split(",").index("draw")
+        (copy / "schedule.csv").write_text(
+            "\n".join(",".join(c for j, c in enumerate(line.split(",")) if j != col) for line in lines) + "\n"
+        )
+        old = load_run(copy)
+        assert all(math.isnan(s.draw) for s in old.schedule)
+        assert cli.main(["report", str(copy)]) == 0
+        assert "<code>draw</code>" not in (copy / "report.html").read_text(encoding="utf-8")
