@@ -42,7 +42,10 @@ def build_parser() -> argparse.ArgumentParser:
     )
     run.add_argument("fleet", nargs="?", help="fleet file (TOML); may be left out with --resume")
     run.add_argument(
-        "--out", metavar="DIR", help="folder for the outputs and the checkpoint (created; required unless --resume)"
+        "--out",
+        metavar="DIR",
+        help="folder for the outputs and the checkpoint (created; required unless --resume); one run at a time, "
+        "and an earlier run's files there are replaced",
     )
     run.add_argument(
         "--method",
@@ -84,7 +87,8 @@ def build_parser() -> argparse.ArgumentParser:
         "report",
         help="rebuild DIR/report.html from a run folder's files (no solving)",
         description="Read the files that 'negotiate run' wrote into DIR (run.json and the CSV files) and "
-        "write DIR/report.html again, without solving anything.",
+        "write DIR/report.html again, without solving anything. Only files inside DIR are read. Exit status "
+        "2 when a file is missing or damaged (the message names it).",
     )
     report.add_argument("dir", metavar="DIR", help="folder written by 'negotiate run --out DIR'")
 

@@ -517,7 +517,7 @@ def load_run(folder: str | Path) -> RunFiles:
     if missing:
         raise RunFolderError(
             f"{d}: not a complete run folder, expected {', '.join(NEED)}; missing {', '.join(missing)} "
-            "(write it with: negotiate run FLEET --out DIR)"
+            f"(write it with: negotiate run FLEET --out {d})"
         )
     summary = f.summary()
     schedule = tuple(
