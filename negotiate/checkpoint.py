@@ -57,6 +57,8 @@ import dataclasses
 import hashlib
 import io
 import json
+import math
+import re
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -158,6 +160,7 @@ _SKIPPED_FIELDS = frozenset({"_problem"})
 _METHOD_FIELDS = ("feasible", "settings")
 """A method's attributes that its constructor takes; the others are its state."""
 _DTYPE_KINDS = "biuf"
+_DTYPE_NAME = re.compile(r"[<>|=]?[biuf][1248]")
 
 
 # ---------------------------------------------------------------------------------------------------------
@@ -307,7 +310,7 @@ class _Decoder:
             raise ValueError(f"no array data of dtype {dt}")
         if type(shape) is not list or any(type(n) is not int or n < 0 for n in shape) or order not in ("C", "F"):
             raise ValueError(f"bad array shape {shape!r} or order {order!r}")
-        size = int(np.prod(shape, dtype=np.int64)) if shape else 1
+        size = math.prod(shape)
         if type(offset) is not int or offset < 0 or offset + size > flat.size:
             raise ValueError(f"array of {size} values at offset {offset!r} lies outside the {flat.size} stored")
         return flat[offset : offset + size].reshape(shape, order=order).copy(order="K")
@@ -347,12 +350,9 @@ def _pair(v: Any) -> list[Any]:
 
 
 def _dtype(dt: Any) -> np.dtype:
-    if type(dt) is not str:
-        raise TypeError(f"a dtype name, found {dt!r}")
-    dtype = np.dtype(dt)
-    if dtype.kind not in _DTYPE_KINDS:
-        raise ValueError(f"dtype {dt!r} is not a bool, integer or float type")
-    return dtype
+    if type(dt) is not str or not _DTYPE_NAME.fullmatch(dt):
+        raise ValueError(f"expected the name of a bool, integer or float dtype, found {dt!r}")
+    return np.dtype(dt)
 
 
 def _encode(state: RunState) -> tuple[bytes, bytes]:
@@ -481,9 +481,30 @@ def read_checkpoint(folder: str | Path, digest: str | None = None) -> RunState:
             f"{path}: the checkpoint's state cannot be read ({type(exc).__name__}: {exc}); "
             "start the run afresh: delete the file, or run into another folder"
         ) from None
-    if not isinstance(state, RunState) or header.get("digest") != fleet_digest(state.spec, state.method):
-        raise CheckpointError(f"{path}: expected the state of a run, found something else")
+    if not _is_run_state(state) or header.get("digest") != fleet_digest(state.spec, state.method):
+        raise CheckpointError(
+            f"{path}: expected the state of a run, found something else; start the run afresh: delete the file, "
+            "or run into another folder"
+        )
     return state
+
+
+def _is_run_state(state: Any) -> bool:
+    """Whether a decoded state has the shape a run's state has (its records are checked as they are built)."""
+    if not (isinstance(state, RunState) and isinstance(state.spec, FleetSpec) and type(state.method) is str):
+        return False
+    if type(state.trials) is not list or not all(
+        isinstance(t, TrialRecord) and isinstance(t.P, np.ndarray) and isinstance(t.orders, dict)
+        and (t.result is None or isinstance(t.result, CoordinationResult))
+        for t in state.trials
+    ):  # fmt: skip
+        return False
+    cur = state.current
+    return cur is None or (
+        type(cur) is tuple and len(cur) == 3 and type(cur[0]) is int and isinstance(cur[1], dict)
+        and isinstance(cur[2], EngineState) and isinstance(cur[2].method, Method)
+        and isinstance(cur[2].latest, Evaluation)
+    )  # fmt: skip
 
 
 def _attach_evaluation(ev: Evaluation, agents: Sequence[AgentModel]) -> Evaluation:

@@ -391,9 +391,10 @@ def claim_run_folder(folder: str | Path, *, resume: bool = False) -> Iterator[Pa
       process id. The lock is released however the block ends (the lock file is removed; one left by a run
       that was killed is taken over).
     * For a fresh run (``resume`` False) a non-empty folder must be a run folder (it holds ``run.json`` or
-      ``checkpoint.bin``), and not one whose run was interrupted (``checkpoint.bin`` without ``run.json``:
-      continue it with ``--resume``, or delete the checkpoint). The earlier run's files are then removed
-      (:func:`clear_outputs`, the checkpoint included), so that no file of it mixes with the new run's.
+      ``checkpoint.bin``, or only files a run writes), and not one whose run was interrupted
+      (``checkpoint.bin`` without ``run.json``: continue it with ``--resume``, or delete the checkpoint).
+      The earlier run's files are then removed (:func:`clear_outputs`, the checkpoint included), so that
+      no file of it mixes with the new run's.
     * For ``resume`` the folder must exist; nothing in it is removed (the checkpoint is read afterwards, and
       :func:`write_outputs` replaces the outputs at the end).
 
@@ -425,8 +426,9 @@ def claim_run_folder(folder: str | Path, *, resume: bool = False) -> Iterator[Pa
     try:
         if not resume:
             others = sorted(n for n in os.listdir(d) if n != LOCK_FILE)
-            if others and "run.json" not in others and CHECKPOINT_FILE not in others:
-                shown = ", ".join(others[:5]) + (f" and {len(others) - 5} more" if len(others) > 5 else "")
+            foreign = [n for n in others if not _ours(n)]
+            if foreign and "run.json" not in others and CHECKPOINT_FILE not in others:
+                shown = ", ".join(foreign[:5]) + (f" and {len(foreign) - 5} more" if len(foreign) > 5 else "")
                 raise RunFolderError(
                     f"{d}: not a run folder (it holds {shown}, but no run.json or {CHECKPOINT_FILE}); nothing was "
                     "written: give --out a new or empty folder, or the folder of an earlier run"

@@ -136,15 +136,17 @@ class TestRunFolder:
         assert LOCK_FILE not in os.listdir(out)
 
     def test_stale_lock_is_taken_over(self, fleets, tmp_path):
-        """A lock file left by a process that has ended (its pid inside) does not block the next run, and
-        the lock file is gone when the run ends."""
+        """A lock file left by a process that has ended (its pid inside), with the temporary file of a
+        checkpoint it was writing, does not block the next run; both are gone when the run ends."""
         dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True,
                               text=True, check=True)  # fmt: skip
         out = tmp_path / "run"
         out.mkdir()
         (out / LOCK_FILE).write_text(dead.stdout)
+        (out / f".checkpoint.bin.{dead.stdout.strip()}.0a1b2c3d.tmp").write_bytes(b"cut short")
         assert main(["run", str(fleets[1]), "--out", str(out), "--quiet"]) in (0, 3)
-        assert (out / "run.json").is_file() and LOCK_FILE not in os.listdir(out)
+        assert (out / "run.json").is_file()
+        assert not [n for n in os.listdir(out) if n.startswith(".")]
 
     def test_lock_released_on_every_exit_path(self, fleets, tmp_path, monkeypatch, capsys):
         """A user mistake (exit 1), an interrupt (exit 130) and an unexpected exception all release the
