@@ -4,31 +4,61 @@
 up to date: after the start and after every coordination round it holds the fleet, the method's name, the
 order trials finished so far (their orders, totals and schedules; the full result of the best one) and, for
 the trial in progress, the engine's :class:`~negotiate.coordinate.EngineState` -- the current point, the
-method object with its bundles and metric, the round count, the history and every agent's warm-start data
-(``x``, ``lam_g``, ``lam_x`` and the certificate of its last converged solve). The file is written to a
-temporary file in the same folder and then renamed over the old one (:func:`os.replace`, atomic on POSIX
-and Windows), so an interruption at any moment leaves the last complete round on disk.
+method's state (its bundles, metric, step sizes), the round count, the history and every agent's warm-start
+data (``x``, ``lam_g``, ``lam_x`` and the certificate of its last converged solve). The file is written to a
+new temporary file in the same folder, flushed to the disk and renamed over the old one
+(:func:`os.replace`, atomic on POSIX and Windows), so an interruption at any moment leaves the last
+complete round on disk.
 
 ``run_fleet(spec, checkpoint_dir=DIR, resume=True)`` (``negotiate run --resume DIR``) reads it back, skips
 the finished order trials, continues the trial in progress from its last complete round and ends at the
 same schedule as the uninterrupted run: the solves are deterministic, and the method and warm starts are
 restored exactly.
 
-File format (version 1): the line ``negotiate-checkpoint``, one line of JSON (``version``, ``fleet``,
-``digest``, ``payload_bytes``, ``payload_sha256``, ``trial``, ``round``), then the payload, a pickle. The
-header is checked before anything is unpickled: the magic line, the version, the digest of the fleet and
-method (a checkpoint of another fleet is refused) and the payload's length and SHA-256 (a truncated or
-altered file is refused). Pickle runs code when it loads, so **a checkpoint is a trusted local file**: the
-checks guard against accidents (a foreign or damaged file), not against a hostile one; never resume from a
-checkpoint you did not write yourself.
+File format (version 2)
+-----------------------
+The line ``negotiate-checkpoint``, one line of JSON (``version``, ``fleet``, ``digest``, ``payload_bytes``,
+``payload_sha256``, ``state_bytes``, ``trial``, ``round``), then the payload: ``state_bytes`` bytes of JSON
+holding the state's structure, followed by an ``.npz`` archive (:func:`numpy.savez`) holding its arrays,
+one flat array per dtype. The file is data only, and reading it never runs code: the JSON is decoded into a
+closed list of record types named in :data:`RECORDS` (each rebuilt from its fields by name), numbers keep
+their exact value and type (floats are written in their shortest round-trip form), and the archive is read
+with ``numpy.load(..., allow_pickle=False)``, which refuses object arrays. Before anything is decoded the
+magic line, the version, the digest of the fleet and method (a checkpoint of another fleet is refused) and
+the payload's length and SHA-256 (a truncated or altered file is refused) are checked.
+
+How each value is written (the ``$`` keys mark the tagged JSON objects; everything else is plain JSON):
+
+==========================  ==============================================================================
+``None``, bool, int, float  as JSON (``NaN``, ``Infinity`` as Python's :mod:`json` writes them)
+str, list                   as JSON
+tuple                       ``{"$t": [items]}``
+dict                        ``{"$d": [[key, value], ...]}`` (keys may be any value below)
+NumPy scalar                ``{"$n": [dtype, value]}`` (bool, integer and float dtypes only)
+NumPy array                 ``{"$a": [dtype, offset, shape, order]}``: a slice of the archive's flat array
+                            of that dtype (bool, integer and float dtypes only), C or Fortran order
+:class:`~negotiate.status.Status`  ``{"$s": "converged"}``
+record (:data:`RECORDS`)    ``{"$c": name, "f": {field: value}}``
+coordination method         ``{"$m": registered name, "feasible": ..., "settings": ..., "state": {attribute:
+                            value}}``: the registered class is built from the feasible set and settings and
+                            given back its attributes
+==========================  ==============================================================================
+
+A record, array or method met a second time is written ``{"$r": k}``, a reference to the first, which
+carries ``"$id": k``: shared objects (the feasible set, an evaluation that is both the latest and the
+incumbent) are written once and shared again when read. A method is saved through its attributes; a user
+method whose attributes hold something else (an open file, a lock, a function) is checkpointed between
+order trials only.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
+import io
 import json
-import os
-import pickle
+import math
+import re
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -36,13 +66,28 @@ from typing import Any
 
 import numpy as np
 
+from agents.params import CapacityParams, MachineParams, StationParams, VehicleParams, ZoneParams
+from negotiate._files import write_atomic
 from negotiate.agent import AgentModel
-from negotiate.coordinate import CoordinationResult, EngineState, Evaluation
-from negotiate.spec import FleetSpec
+from negotiate.coordinate import (
+    AgentReport,
+    CoordinationResult,
+    EngineState,
+    Evaluation,
+    Method,
+    RoundRecord,
+)
+from negotiate.coupling import FeasibleSet, Layout
+from negotiate.guard import GuardReport
+from negotiate.kkt import Certificate, ConstraintRef
+from negotiate.nlp import LocalResult
+from negotiate.spec import AgentSpec, CapacityResource, CoordinatorSettings, ExclusiveResource, FleetSpec
+from negotiate.status import Status
 
 __all__ = [
     "FILENAME",
     "FORMAT_VERSION",
+    "RECORDS",
     "CheckpointError",
     "RunBook",
     "RunState",
@@ -53,7 +98,7 @@ __all__ = [
 ]
 
 MAGIC = b"negotiate-checkpoint\n"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 FILENAME = "checkpoint.bin"
 
 
@@ -62,6 +107,10 @@ class CheckpointError(ValueError):
 
     The message names the file and says what was expected and what was found.
     """
+
+
+class _Unsavable(CheckpointError):
+    """The run's state holds a value that has no data form (raised while writing, never while reading)."""
 
 
 def fleet_digest(spec: FleetSpec, method: str) -> str:
@@ -95,40 +144,284 @@ class RunState:
         return self.current[2].rounds if self.current is not None else 0
 
 
+RECORDS: dict[str, type] = {
+    cls.__name__: cls
+    for cls in (
+        RunState, TrialRecord, FleetSpec, ExclusiveResource, CapacityResource, CoordinatorSettings, AgentSpec,
+        VehicleParams, ZoneParams, MachineParams, StationParams, CapacityParams, Layout, FeasibleSet,
+        EngineState, CoordinationResult, RoundRecord, Evaluation, AgentReport, LocalResult, Certificate,
+        ConstraintRef, GuardReport,
+    )
+}  # fmt: skip
+"""The record types a checkpoint may hold, by name: nothing else is ever built when one is read."""
+
+_SKIPPED_FIELDS = frozenset({"_problem"})
+"""Fields not saved: a result's CasADi problem is re-attached from the agents built on resume."""
+_METHOD_FIELDS = ("feasible", "settings")
+"""A method's attributes that its constructor takes; the others are its state."""
+_DTYPE_KINDS = "biuf"
+_DTYPE_NAME = re.compile(r"[<>|=]?[biuf][1248]")
+
+
+# ---------------------------------------------------------------------------------------------------------
+# the state as data
+
+
+class _Encoder:
+    """Turns a state into a JSON tree and flat arrays (one per dtype); see the module docstring."""
+
+    def __init__(self) -> None:
+        self.memo: dict[int, tuple[int, Any]] = {}
+        self.chunks: dict[str, list[np.ndarray]] = {}
+        self.sizes: dict[str, int] = {}
+
+    def arrays(self) -> dict[str, np.ndarray]:
+        return {dt: np.concatenate(parts) if parts else np.zeros(0, dt) for dt, parts in self.chunks.items()}
+
+    def _shared(self, obj: Any) -> tuple[dict[str, Any] | None, int]:
+        """A reference node if ``obj`` was written before, else None and the id to give it."""
+        seen = self.memo.get(id(obj))
+        if seen is not None:
+            return {"$r": seen[0]}, seen[0]
+        k = len(self.memo)
+        self.memo[id(obj)] = (k, obj)  # keeps obj alive, so its id is not reused while encoding
+        return None, k
+
+    def encode(self, v: Any, where: str) -> Any:
+        t = type(v)
+        if v is None or t is bool or t is int or t is str:
+            return v
+        if t is float:
+            return v
+        if isinstance(v, Status):
+            return {"$s": v.value}
+        if isinstance(v, np.generic) and v.dtype.kind in _DTYPE_KINDS:
+            return {"$n": [v.dtype.str, v.item()]}
+        if t is list:
+            return [self.encode(x, f"{where}[{i}]") for i, x in enumerate(v)]
+        if t is tuple:
+            return {"$t": [self.encode(x, f"{where}[{i}]") for i, x in enumerate(v)]}
+        if t is dict:
+            return {"$d": [[self.encode(k, where), self.encode(x, f"{where}[{k!r}]")] for k, x in v.items()]}
+        if t is np.ndarray:
+            return self._array(v, where)
+        if dataclasses.is_dataclass(v) and RECORDS.get(t.__name__) is t:
+            ref, k = self._shared(v)
+            if ref is not None:
+                return ref
+            fields = {
+                f.name: self.encode(getattr(v, f.name), f"{where}.{f.name}")
+                for f in dataclasses.fields(v)
+                if f.name not in _SKIPPED_FIELDS
+            }
+            return {"$c": t.__name__, "$id": k, "f": fields}
+        if isinstance(v, Method):
+            ref, k = self._shared(v)
+            if ref is not None:
+                return ref
+            state = {a: x for a, x in vars(v).items() if a not in _METHOD_FIELDS}
+            return {
+                "$m": type(v).name, "$id": k,
+                "feasible": self.encode(v.feasible, f"{where}.feasible"),
+                "settings": self.encode(v.settings, f"{where}.settings"),
+                "state": {a: self.encode(x, f"{where}.{a}") for a, x in state.items()},
+            }  # fmt: skip
+        raise _Unsavable(f"{where} is a {t.__module__}.{t.__qualname__}, which a checkpoint cannot hold")
+
+    def _array(self, a: np.ndarray, where: str) -> dict[str, Any]:
+        ref, k = self._shared(a)
+        if ref is not None:
+            return ref
+        if a.dtype.kind not in _DTYPE_KINDS:
+            raise _Unsavable(f"{where} is an array of {a.dtype}, which a checkpoint cannot hold")
+        order = "F" if a.flags.f_contiguous and not a.flags.c_contiguous else "C"
+        dt = a.dtype.str
+        offset = self.sizes.get(dt, 0)
+        self.chunks.setdefault(dt, []).append(a.ravel(order=order))
+        self.sizes[dt] = offset + a.size
+        return {"$a": [dt, offset, list(a.shape), order], "$id": k}
+
+
+class _Decoder:
+    """Rebuilds a state from the JSON tree and the flat arrays; raises ValueError, TypeError or KeyError on
+    anything that is not what :class:`_Encoder` writes (the caller names the file)."""
+
+    def __init__(self, flat: dict[str, np.ndarray]) -> None:
+        self.flat = flat
+        self.objects: dict[int, Any] = {}
+
+    def _keep(self, node: dict[str, Any], obj: Any) -> Any:
+        k = node.get("$id")
+        if type(k) is not int or k in self.objects:
+            raise ValueError(f"bad or repeated object id {k!r}")
+        self.objects[k] = obj
+        return obj
+
+    def decode(self, node: Any) -> Any:
+        t = type(node)
+        if node is None or t in (bool, int, float, str):
+            return node
+        if t is list:
+            return [self.decode(x) for x in node]
+        if t is not dict:
+            raise TypeError(f"unexpected JSON value {node!r}")
+        if "$t" in node:
+            return tuple(self.decode(x) for x in _listed(node["$t"]))
+        if "$d" in node:
+            return {self.decode(_pair(p)[0]): self.decode(_pair(p)[1]) for p in _listed(node["$d"])}
+        if "$r" in node:
+            k = node["$r"]
+            if type(k) is not int or k not in self.objects:
+                raise ValueError(f"reference to an unknown object {k!r}")
+            return self.objects[k]
+        if "$s" in node:
+            return Status(node["$s"])
+        if "$n" in node:
+            dt, value = _pair(node["$n"])
+            dtype = _dtype(dt)
+            if type(value) not in (bool, int, float):
+                raise TypeError(f"a number of dtype {dt}, found {value!r}")
+            return dtype.type(value)
+        if "$a" in node:
+            return self._keep(node, self._array(node["$a"]))
+        if "$c" in node:
+            cls = RECORDS.get(node["$c"]) if type(node["$c"]) is str else None
+            if cls is None:
+                raise ValueError(f"unknown record type {node['$c']!r} (expected one of {', '.join(RECORDS)})")
+            fields = node["f"]
+            if type(fields) is not dict:
+                raise TypeError(f"fields of {node['$c']} are not a JSON object")
+            known = {f.name for f in dataclasses.fields(cls) if f.init and f.name not in _SKIPPED_FIELDS}
+            extra = set(fields) - known
+            if extra:
+                raise ValueError(f"{node['$c']} has no field(s) {', '.join(sorted(extra))}")
+            return self._keep(node, cls(**{name: self.decode(x) for name, x in fields.items()}))
+        if "$m" in node:
+            return self._keep(node, self._method(node))
+        raise ValueError(f"unexpected JSON object with keys {sorted(node)}")
+
+    def _array(self, spec: Any) -> np.ndarray:
+        if type(spec) is not list or len(spec) != 4:
+            raise TypeError(f"an array reference [dtype, offset, shape, order], found {spec!r}")
+        dt, offset, shape, order = spec
+        dtype = _dtype(dt)
+        flat = self.flat.get(dtype.str)
+        if flat is None:
+            raise ValueError(f"no array data of dtype {dt}")
+        if type(shape) is not list or any(type(n) is not int or n < 0 for n in shape) or order not in ("C", "F"):
+            raise ValueError(f"bad array shape {shape!r} or order {order!r}")
+        size = math.prod(shape)
+        if type(offset) is not int or offset < 0 or offset + size > flat.size:
+            raise ValueError(f"array of {size} values at offset {offset!r} lies outside the {flat.size} stored")
+        return flat[offset : offset + size].reshape(shape, order=order).copy(order="K")
+
+    def _method(self, node: dict[str, Any]) -> Method:
+        from negotiate.coordinate import _METHODS, _load_builtins
+
+        _load_builtins()
+        name = node["$m"]
+        cls = _METHODS.get(name) if type(name) is str else None
+        if cls is None:
+            raise ValueError(
+                f"the trial in progress uses the coordination method {name!r}, which is not loaded "
+                "(give a user method again with --method)"
+            )
+        feasible, settings = self.decode(node["feasible"]), self.decode(node["settings"])
+        state = node["state"]
+        if not (isinstance(feasible, FeasibleSet) and isinstance(settings, CoordinatorSettings)):
+            raise TypeError("a method needs its feasible set and settings")
+        if type(state) is not dict or not all(type(a) is str and a.isidentifier() for a in state):
+            raise TypeError("a method's state must map attribute names to values")
+        method = cls(feasible, settings)
+        vars(method).update({a: self.decode(x) for a, x in state.items()})
+        return method
+
+
+def _listed(v: Any) -> list[Any]:
+    if type(v) is not list:
+        raise TypeError(f"a JSON list, found {v!r}")
+    return v
+
+
+def _pair(v: Any) -> list[Any]:
+    if type(v) is not list or len(v) != 2:
+        raise TypeError(f"a pair, found {v!r}")
+    return v
+
+
+def _dtype(dt: Any) -> np.dtype:
+    if type(dt) is not str or not _DTYPE_NAME.fullmatch(dt):
+        raise ValueError(f"expected the name of a bool, integer or float dtype, found {dt!r}")
+    return np.dtype(dt)
+
+
+def _encode(state: RunState) -> tuple[bytes, bytes]:
+    """The state's JSON and the ``.npz`` archive of its arrays (see the module docstring)."""
+    enc = _Encoder()
+    tree = enc.encode(state, "the run's state")
+    flat = enc.arrays()
+    names = sorted(flat)
+    text = json.dumps({"tree": tree, "arrays": names}, separators=(",", ":"), allow_nan=True)
+    buf = io.BytesIO()
+    np.savez(buf, **{f"a{i}": flat[dt] for i, dt in enumerate(names)})
+    return text.encode("utf-8"), buf.getvalue()
+
+
+def _decode(state_json: bytes, archive: bytes) -> Any:
+    """The object the payload describes; ValueError (and friends) when it is not one :func:`_encode` wrote."""
+    doc = json.loads(state_json.decode("utf-8"))
+    if type(doc) is not dict or type(doc.get("arrays")) is not list or "tree" not in doc:
+        raise ValueError("the state is not a JSON object with 'tree' and 'arrays'")
+    flat: dict[str, np.ndarray] = {}
+    with np.load(io.BytesIO(archive), allow_pickle=False) as npz:  # object arrays are refused, never unpickled
+        for i, dt in enumerate(doc["arrays"]):
+            a = npz[f"a{i}"]
+            dtype = _dtype(dt)
+            if a.dtype != dtype or a.ndim != 1:
+                raise ValueError(f"array a{i}: expected a flat array of {dtype}, found {a.dtype} of shape {a.shape}")
+            flat[dtype.str] = a
+    return _Decoder(flat).decode(doc["tree"])
+
+
 def write_checkpoint(folder: str | Path, state: RunState) -> Path:
-    """Write ``state`` atomically into ``folder/checkpoint.bin`` (temporary file, then :func:`os.replace`)."""
+    """Write ``state`` atomically into ``folder/checkpoint.bin`` (new temporary file, fsync, :func:`os.replace`).
+
+    Raises
+    ------
+    CheckpointError
+        The state holds a value a checkpoint cannot hold (a user method's attribute: see the module
+        docstring), or the file cannot be written (the message names it and the system's reason).
+    """
     folder = Path(folder)
-    folder.mkdir(parents=True, exist_ok=True)
-    try:
-        payload = pickle.dumps(state, protocol=pickle.HIGHEST_PROTOCOL)
-    except (pickle.PicklingError, TypeError, AttributeError) as exc:
-        raise CheckpointError(
-            f"{folder / FILENAME}: cannot save the run's state ({exc}); a user method must be picklable "
-            "to be checkpointed"
-        ) from exc
+    path = folder / FILENAME
+    state_json, archive = _encode(state)
+    payload = state_json + archive
     header = {
         "version": FORMAT_VERSION,
         "fleet": state.spec.name,
         "digest": fleet_digest(state.spec, state.method),
         "payload_bytes": len(payload),
         "payload_sha256": hashlib.sha256(payload).hexdigest(),
+        "state_bytes": len(state_json),
         "trial": len(state.trials),
         "round": state.round,
     }
-    path = folder / FILENAME
-    tmp = folder / f".{FILENAME}.{os.getpid()}.tmp"
-    with open(tmp, "wb") as fh:
-        fh.write(MAGIC)
-        fh.write(json.dumps(header, sort_keys=True).encode("utf-8") + b"\n")
-        fh.write(payload)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+    data = MAGIC + json.dumps(header, sort_keys=True).encode("utf-8") + b"\n" + payload
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        write_atomic(path, data, durable=True)
+    except OSError as exc:
+        raise CheckpointError(
+            f"{path}: cannot write the checkpoint ({exc.strerror or exc}); make room or fix the folder's "
+            f"permissions, then continue from the last one written: negotiate run --resume {folder}"
+        ) from None
     return path
 
 
 def read_checkpoint(folder: str | Path, digest: str | None = None) -> RunState:
     """Read and check ``folder/checkpoint.bin``; with ``digest``, refuse a checkpoint of another fleet/method.
+
+    Reading never runs code (see the module docstring).
 
     Raises
     ------
@@ -141,7 +434,8 @@ def read_checkpoint(folder: str | Path, digest: str | None = None) -> RunState:
         data = path.read_bytes()
     except FileNotFoundError:
         raise CheckpointError(
-            f"{path}: no checkpoint to resume from (expected the file that 'negotiate run --out {folder}' writes)"
+            f"{path}: no checkpoint to resume from (expected the file that 'negotiate run FLEET --out {folder}' "
+            "writes); start the run with that command"
         ) from None
     except OSError as exc:
         raise CheckpointError(f"{path}: cannot read the checkpoint: {exc.strerror or exc}") from None
@@ -159,8 +453,10 @@ def read_checkpoint(folder: str | Path, digest: str | None = None) -> RunState:
             f"{path}: expected a checkpoint header line (JSON), found a damaged one ({exc})"
         ) from None
     if header.get("version") != FORMAT_VERSION:
+        old = " (a pickle, which is never loaded: loading one can run code)" if header.get("version") == 1 else ""
         raise CheckpointError(
             f"{path}: expected checkpoint format version {FORMAT_VERSION}, found version {header.get('version')!r}"
+            f"{old}; start the run afresh: delete the file, or run into another folder"
         )
     if digest is not None and header.get("digest") != digest:
         raise CheckpointError(
@@ -175,13 +471,40 @@ def read_checkpoint(folder: str | Path, digest: str | None = None) -> RunState:
             f"{path}: expected {header.get('payload_bytes')} bytes of state with the recorded checksum, "
             f"found {len(payload)} bytes that do not match (a truncated or damaged checkpoint)"
         )
+    split = header.get("state_bytes")
     try:
-        state = pickle.loads(payload)  # trusted local file, header checked (see the module docstring)
-    except Exception as exc:  # noqa: BLE001 - anything unpickling raises means the file is unusable
-        raise CheckpointError(f"{path}: the checkpoint's state cannot be read ({type(exc).__name__}: {exc})") from None
-    if not isinstance(state, RunState) or header.get("digest") != fleet_digest(state.spec, state.method):
-        raise CheckpointError(f"{path}: expected the state of a run, found something else")
+        if type(split) is not int or not 0 <= split <= len(payload):
+            raise ValueError(f"state_bytes {split!r} does not fit the payload")
+        state = _decode(payload[:split], payload[split:])
+    except Exception as exc:  # noqa: BLE001 - whatever the decoding meets, the file is unusable
+        raise CheckpointError(
+            f"{path}: the checkpoint's state cannot be read ({type(exc).__name__}: {exc}); "
+            "start the run afresh: delete the file, or run into another folder"
+        ) from None
+    if not _is_run_state(state) or header.get("digest") != fleet_digest(state.spec, state.method):
+        raise CheckpointError(
+            f"{path}: expected the state of a run, found something else; start the run afresh: delete the file, "
+            "or run into another folder"
+        )
     return state
+
+
+def _is_run_state(state: Any) -> bool:
+    """Whether a decoded state has the shape a run's state has (its records are checked as they are built)."""
+    if not (isinstance(state, RunState) and isinstance(state.spec, FleetSpec) and type(state.method) is str):
+        return False
+    if type(state.trials) is not list or not all(
+        isinstance(t, TrialRecord) and isinstance(t.P, np.ndarray) and isinstance(t.orders, dict)
+        and (t.result is None or isinstance(t.result, CoordinationResult))
+        for t in state.trials
+    ):  # fmt: skip
+        return False
+    cur = state.current
+    return cur is None or (
+        type(cur) is tuple and len(cur) == 3 and type(cur[0]) is int and isinstance(cur[1], dict)
+        and isinstance(cur[2], EngineState) and isinstance(cur[2].method, Method)
+        and isinstance(cur[2].latest, Evaluation)
+    )  # fmt: skip
 
 
 def _attach_evaluation(ev: Evaluation, agents: Sequence[AgentModel]) -> Evaluation:
@@ -204,6 +527,13 @@ class RunBook:
         self.digest = fleet_digest(spec, method)
         self.saved: RunState | None = read_checkpoint(self.folder, self.digest) if resume else None
         self.state = RunState(spec, method)
+        try:
+            _encode(self.state)  # a fleet that cannot be saved is refused before anything is built
+        except _Unsavable as exc:
+            raise CheckpointError(
+                f"{self.folder / FILENAME}: cannot save this fleet in a checkpoint: {exc} (give a user "
+                "model's parameters as a table of numbers, strings and lists)"
+            ) from None
         self._best = float("inf")
         self._next = 0
         self.unsaved: str | None = None
@@ -248,9 +578,9 @@ class RunBook:
             self.state.current = (k, {r: list(v) for r, v in orders.items()}, state)
             try:
                 write_checkpoint(self.folder, self.state)
-            except CheckpointError as exc:
-                # A method object that does not pickle (e.g. a class loaded from a file path) cannot be
-                # saved mid-trial: the checkpoint then holds the finished trials only.
+            except _Unsavable as exc:
+                # A user method whose attributes hold something with no data form (an open file, a
+                # function) cannot be saved mid-trial: the checkpoint then holds the finished trials only.
                 self.unsaved = str(exc)
                 self.state.current = None
                 write_checkpoint(self.folder, self.state)

@@ -42,7 +42,10 @@ def build_parser() -> argparse.ArgumentParser:
     )
     run.add_argument("fleet", nargs="?", help="fleet file (TOML); may be left out with --resume")
     run.add_argument(
-        "--out", metavar="DIR", help="folder for the outputs and the checkpoint (created; required unless --resume)"
+        "--out",
+        metavar="DIR",
+        help="folder for the outputs and the checkpoint (created; required unless --resume); one run at a time, "
+        "and an earlier run's files there are replaced",
     )
     run.add_argument(
         "--method",
@@ -84,7 +87,8 @@ def build_parser() -> argparse.ArgumentParser:
         "report",
         help="rebuild DIR/report.html from a run folder's files (no solving)",
         description="Read the files that 'negotiate run' wrote into DIR (run.json and the CSV files) and "
-        "write DIR/report.html again, without solving anything.",
+        "write DIR/report.html again, without solving anything. Only files inside DIR are read. Exit status "
+        "2 when a file is missing or damaged (the message names it).",
     )
     report.add_argument("dir", metavar="DIR", help="folder written by 'negotiate run --out DIR'")
 
@@ -144,17 +148,13 @@ def _table(header: list[str], rows: list[list[str]]) -> str:
 
 
 def _run(args: argparse.Namespace) -> int:
-    import os
-    import signal
     import time
 
-    started = time.perf_counter()
-    from negotiate.checkpoint import CheckpointError, RunBook
-    from negotiate.coupling import DeadlockError
+    started = time.perf_counter()  # the run's wall time counts from here: reading, building, solving
     from negotiate.errors import FleetError
-    from negotiate.executor import make_executor
-    from negotiate.fleet import build_agents, load_fleet
-    from negotiate.run import run_fleet, write_outputs
+    from negotiate.fleet import load_fleet
+    from negotiate.results import RunFolderError
+    from negotiate.run import claim_run_folder
 
     if args.fleet is None and args.resume is None:
         print("negotiate run: give a fleet file, or --resume DIR", file=sys.stderr)
@@ -165,27 +165,62 @@ def _run(args: argparse.Namespace) -> int:
     if args.out is None and args.resume is None:
         print("negotiate run: --out DIR is required (the folder for the outputs and the checkpoint)", file=sys.stderr)
         return 2
-    args.out = args.out or args.resume
-    try:
-        spec = load_fleet(args.fleet) if args.fleet is not None else RunBook.saved_spec(args.resume)
-    except OSError as exc:
-        print(f"negotiate run: cannot read {args.fleet}: {exc.strerror or exc}", file=sys.stderr)
+    limit = args.time_limit
+    if limit is not None and not (limit > 0 and limit < float("inf")):
+        print(f"negotiate run: --time-limit must be a positive number of seconds, got {limit}", file=sys.stderr)
         return 2
+    args.out = args.out or args.resume
+    spec = None
+    if args.fleet is not None:
+        try:
+            spec = load_fleet(args.fleet)
+        except OSError as exc:
+            print(f"negotiate run: cannot read the fleet file {args.fleet}: {exc.strerror or exc}; check the path",
+                  file=sys.stderr)  # fmt: skip
+            return 2
+        except FleetError as exc:
+            print(exc, file=sys.stderr)
+            return 1
+    # The folder is claimed (created, locked, checked, an earlier run's files removed) before anything is
+    # built, and released however the run ends.
+    try:
+        with claim_run_folder(args.out, resume=args.resume is not None):
+            return _run_in_folder(args, spec, started)
+    except RunFolderError as exc:
+        print(f"negotiate run: {exc}", file=sys.stderr)
+        return 2
+
+
+def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ignore[no-untyped-def]
+    import os
+    import signal
+    import time
+
+    from negotiate.checkpoint import FILENAME, CheckpointError, RunBook
+    from negotiate.coupling import DeadlockError
+    from negotiate.errors import FleetError
+    from negotiate.executor import make_executor
+    from negotiate.fleet import build_agents
+    from negotiate.run import resolve_method, run_fleet, write_outputs
+
+    if args.method is not None:
+        try:  # imported once, before a checkpoint that names it is read
+            args.method = resolve_method(args.method)
+        except ValueError as exc:
+            print(exc, file=sys.stderr)
+            return 1
+    try:
+        if spec is None:
+            spec = RunBook.saved_spec(args.resume)
+        elif args.resume is not None:
+            # Refuse a checkpoint of another fleet or method before building anything.
+            from negotiate.checkpoint import fleet_digest, read_checkpoint
+
+            read_checkpoint(args.resume, fleet_digest(spec, args.method or spec.coordinator.method))
     except CheckpointError as exc:
         print(f"negotiate run: {exc}", file=sys.stderr)
         return 2
-    except FleetError as exc:
-        print(exc, file=sys.stderr)
-        return 1
-    if args.fleet is not None and args.resume is not None:
-        # Refuse a checkpoint of another fleet or method before building anything.
-        from negotiate.checkpoint import fleet_digest, read_checkpoint
-
-        try:
-            read_checkpoint(args.resume, fleet_digest(spec, args.method or spec.coordinator.method))
-        except CheckpointError as exc:
-            print(f"negotiate run: {exc}", file=sys.stderr)
-            return 2
+    limit = args.time_limit
     bar = None
     executor = None
 
@@ -201,10 +236,6 @@ def _run(args: argparse.Namespace) -> int:
 
     previous = {s: signal.signal(s, interrupted) for s in (signal.SIGINT, signal.SIGTERM)}
     try:
-        limit = args.time_limit
-        if limit is not None and not (limit > 0 and limit < float("inf")):
-            print(f"negotiate run: --time-limit must be a positive number of seconds, got {limit}", file=sys.stderr)
-            return 2
         executor = make_executor(
             spec, workers=args.workers, scheduler=args.scheduler, cluster=args.cluster, time_limit=limit
         )
@@ -269,7 +300,14 @@ def _run(args: argparse.Namespace) -> int:
             executor.close()
     if bar is not None:
         bar.close()
-    paths = write_outputs(result, args.out)
+    try:
+        paths = write_outputs(result, args.out)
+    except OSError as exc:
+        print(f"negotiate run: cannot write the outputs into {args.out} ({exc.strerror or exc}"
+              + (f": {exc.filename}" if exc.filename else "") + f"); the finished run is kept in "
+              f"{Path(args.out) / FILENAME}: fix the folder, then write them with 'negotiate run --resume {args.out}'",
+              file=sys.stderr)  # fmt: skip
+        return 2
     c = result.coordination
     rows = []
     for r in result.schedule:

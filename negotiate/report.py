@@ -16,8 +16,11 @@ import math
 from collections.abc import Iterable, Sequence
 from pathlib import Path
 
+import numpy as np
+
 from negotiate import plots
-from negotiate.results import PriceRow, RunFiles, load_run
+from negotiate._files import write_atomic
+from negotiate.results import PriceRow, RunFiles, RunFolderError, load_run
 
 __all__ = ["CAUTION", "MAX_TRAJECTORIES", "render_report", "write_report"]
 
@@ -341,10 +344,11 @@ def _trajectories(f: RunFiles) -> str:
                    "most with coordination; every agent's trajectory is in trajectories/.</p>")  # fmt: skip
     for a in shown:
         series = f.trajectories.get(a.agent)
-        if not series or "time_s" not in series:
+        if not series or "time_s" not in series or len(series) < 2 or not series["time_s"].size:
             missing.append(a.agent)
             continue
         slots = [s for s in f.schedule if s.agent == a.agent]
+        series = {c: np.where(np.isfinite(v), v, np.nan) for c, v in series.items()}  # gaps, not infinite axes
         fig = plots.trajectory_chart(a.agent, series, slots)
         out.append(_img(plots.png(fig), f"trajectories of {a.agent}"))
     if missing:
@@ -386,10 +390,25 @@ def render_report(files: RunFiles) -> str:
 
 
 def write_report(folder: str | Path, out: str | Path | None = None) -> Path:
-    """Read the run folder and write its report (``folder/report.html`` unless ``out`` is given)."""
+    """Read the run folder and write its report (``folder/report.html`` unless ``out`` is given).
+
+    Only files inside ``folder`` are read. The report goes to a new temporary file beside it, then is
+    renamed over the old one: a link placed at ``report.html`` or at a temporary name is replaced, never
+    followed, so the write stays in the folder.
+
+    Raises
+    ------
+    RunFolderError
+        The folder or one of its files is missing or damaged, or the report cannot be written there (the
+        message names the file and what to do).
+    """
     files = load_run(folder)
     path = Path(out) if out is not None else Path(folder) / "report.html"
-    tmp = path.with_suffix(".html.tmp")
-    tmp.write_text(render_report(files), encoding="utf-8")
-    tmp.replace(path)
-    return path
+    html = render_report(files)
+    try:
+        return write_atomic(path, html)
+    except OSError as exc:
+        raise RunFolderError(
+            f"{path}: cannot write the report ({exc.strerror or exc}); make the folder writable, or remove what "
+            "is in the way, and run 'negotiate report' again"
+        ) from None

@@ -15,6 +15,7 @@ numbers of the run; an empty field is "not applicable" (read as ``nan``). Column
 from __future__ import annotations
 
 import csv
+import io
 import json
 import math
 import re
@@ -25,6 +26,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from negotiate._files import write_atomic
 from negotiate.coordinate import RoundRecord
 from negotiate.spec import CapacityResource, ExclusiveResource
 
@@ -36,10 +38,12 @@ __all__ = [
     "HISTORY_COLUMNS",
     "PRICES_COLUMNS",
     "RESOURCES_COLUMNS",
+    "SCHEDULE_COLUMNS",
     "AgentRow",
     "PriceRow",
     "ResourceRow",
     "RunFiles",
+    "RunFolderError",
     "ScheduleRow",
     "load_run",
     "trajectory_filename",
@@ -57,6 +61,9 @@ PRICES_COLUMNS = ("agent", "resource", "parameter", "kind", "block", "unit", "va
 AGENTS_COLUMNS = ("agent", "model", "weight", "status", "free_value", "value", "increase", "verdict",
                   "weakly_active", "reason", "trajectory_file")  # fmt: skip
 RESOURCES_COLUMNS = ("resource", "kind", "gap_s", "block", "start_s", "end_s", "limit", "unit")
+SCHEDULE_COLUMNS = ("agent", "resource", "enter", "leave", "value", "share", "draw", "free_value", "increase",
+                    "d_enter", "d_leave", "d_share", "verdict")  # fmt: skip
+_SCHEDULE_NEEDED = tuple(c for c in SCHEDULE_COLUMNS if c != "draw")  # folders written before 'draw' still load
 
 
 # ---------------------------------------------------------------------------------------------------------
@@ -89,19 +96,13 @@ def trajectory_filename(agent: str) -> str:
 
 
 def _write_csv(path: Path, header: Sequence[str], rows: Iterable[Sequence[str]]) -> Path:
+    """Write a CSV file whole or not at all (:func:`negotiate._files.write_atomic`)."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_suffix(path.suffix + ".tmp")
-    with tmp.open("w", newline="") as fh:
-        w = csv.writer(fh)
-        w.writerow(header)
-        w.writerows(rows)
-    tmp.replace(path)
-    return path
-
-
-def _read_csv(path: Path) -> list[dict[str, str]]:
-    with path.open(newline="") as fh:
-        return list(csv.DictReader(fh))
+    buf = io.StringIO(newline="")
+    w = csv.writer(buf)
+    w.writerow(header)
+    w.writerows(rows)
+    return write_atomic(path, buf.getvalue())
 
 
 def _price_unit(unit: str) -> str:
@@ -292,59 +293,275 @@ class RunFiles:
         return list(dict.fromkeys(r.resource for r in self.resources if r.kind == "capacity"))
 
 
-class RunFolderError(FileNotFoundError):
-    """A run folder lacks a file the report needs (the message names it)."""
+class RunFolderError(ValueError):
+    """A run folder that cannot be used, or a file in it that cannot be read.
+
+    Raised for a folder that is missing a file the report needs, a file that is damaged (not UTF-8, not
+    JSON or CSV, missing columns, a cell that is not a number, a path that leads outside the folder), and by
+    :func:`negotiate.run.claim_run_folder` for a folder in use by another run, a non-empty folder that is
+    not a run folder, or a path that cannot be written. The message names the folder or file, what was
+    expected and what was found, and what to do.
+    """
+
+
+AGAIN = "write the folder again with 'negotiate run FLEET --out DIR' (or 'negotiate run --resume DIR')"
+"""What to do about a damaged or incomplete run folder."""
+
+NEED = ("run.json", "schedule.csv", "history.csv", "prices.csv", "agents.csv", "resources.csv")
+"""The files :func:`load_run` reads in every run folder (trajectory files are named in ``agents.csv``)."""
+
+# run.json: what each key holds when it is there (the report shows a dash for a key that is missing)
+_SUMMARY_KEYS: dict[str, str] = {
+    "fleet": "str", "description": "str", "source": "str", "status": "str", "message": "str",
+    "centralized_status": "str", "rounds": "int", "agent_solves": "int", "order_trials": "int",
+    "total_cost": "num", "free_total_cost": "num", "wall_time_s": "num", "centralized_cost": "num",
+    "centralized_wall_time_s": "num", "relative_gap": "num", "settings": "object", "orders": "orders",
+    "flagged_last_round": "names",
+}  # fmt: skip
+_KIND_TEXT = {
+    "str": "a string", "int": "an integer", "num": "a number or null", "object": "an object",
+    "orders": "an object of resource: [agent names]", "names": "a list of agent names",
+}  # fmt: skip
+
+
+def _found(v: Any) -> str:
+    """A short description of a JSON value, for messages."""
+    if isinstance(v, dict):
+        return f"an object with {len(v)} key{'s' * (len(v) != 1)}"
+    if isinstance(v, list):
+        return f"a list of {len(v)} entr{'ies' if len(v) != 1 else 'y'}"
+    text = json.dumps(v, allow_nan=True)
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+def _json_ok(kind: str, v: Any) -> bool:
+    if kind == "str":
+        return isinstance(v, str)
+    if kind == "int":
+        return type(v) is int
+    if kind == "num":
+        return v is None or type(v) in (int, float)
+    if kind == "object":
+        return isinstance(v, dict)
+    if kind == "orders":
+        return isinstance(v, dict) and all(
+            isinstance(o, list) and all(isinstance(a, str) for a in o) for o in v.values()
+        )
+    return isinstance(v, list) and all(isinstance(a, str) for a in v)  # names
+
+
+class _Folder:
+    """Reads the files of one run folder, never outside it; every problem is a RunFolderError naming the file."""
+
+    def __init__(self, folder: str | Path) -> None:
+        self.d = Path(folder)
+        try:
+            self.root = self.d.resolve(strict=True)
+        except (OSError, RuntimeError) as exc:
+            raise RunFolderError(
+                f"{self.d}: no such run folder ({getattr(exc, 'strerror', None) or exc}); give the folder that "
+                "'negotiate run FLEET --out DIR' wrote"
+            ) from None
+        if not self.root.is_dir():
+            raise RunFolderError(f"{self.d}: expected a run folder, found a file; give the folder of a run")
+
+    def path(self, rel: str, named_in: str = "") -> Path:
+        """The regular file ``rel`` inside the folder (links followed, but never out of it)."""
+        where = f" (named in {named_in})" if named_in else ""
+        shown = self.d / rel
+        if not rel or Path(rel).is_absolute() or Path(rel).drive or "\x00" in rel:
+            raise RunFolderError(
+                f"{self.d}: expected a path inside the run folder{where}, found {rel!r}; a run folder only "
+                "names its own files"
+            )
+        try:
+            target = (self.root / rel).resolve()
+        except (OSError, RuntimeError) as exc:
+            raise RunFolderError(f"{shown}: cannot follow this path{where} ({exc})") from None
+        if not target.is_relative_to(self.root):
+            raise RunFolderError(
+                f"{shown}{where}: leads outside the run folder {self.d}, to {target}; refused: the report "
+                "only reads files inside the folder"
+            )
+        parent = target.parent
+        while parent != self.root and not parent.exists():
+            parent = parent.parent
+        if not parent.is_dir():
+            raise RunFolderError(f"{parent}: expected a folder holding {rel}{where}, found a file; {AGAIN}")
+        if not target.exists():
+            raise RunFolderError(f"{shown}: missing{where}; the folder is incomplete: {AGAIN}")
+        if not target.is_file():
+            raise RunFolderError(f"{shown}: expected a file{where}, found a folder or other non-file; {AGAIN}")
+        return target
+
+    def text(self, rel: str, named_in: str = "") -> str:
+        path = self.path(rel, named_in)
+        try:
+            data = path.read_bytes()
+        except OSError as exc:
+            raise RunFolderError(f"{self.d / rel}: cannot read it ({exc.strerror or exc})") from None
+        try:
+            return data.decode("utf-8")
+        except UnicodeDecodeError as exc:
+            raise RunFolderError(
+                f"{self.d / rel}: expected UTF-8 text, found undecodable bytes ({exc.reason} at byte {exc.start}); "
+                f"the file is damaged: {AGAIN}"
+            ) from None
+
+    def summary(self) -> dict[str, Any]:
+        rel = "run.json"
+        text = self.text(rel)
+        try:
+            data = json.loads(text)
+        except (ValueError, RecursionError) as exc:
+            raise RunFolderError(f"{self.d / rel}: expected JSON, found damaged text ({exc}); {AGAIN}") from None
+        if not isinstance(data, dict):
+            raise RunFolderError(f"{self.d / rel}: expected a JSON object, found {_found(data)}; {AGAIN}")
+        for key, kind in _SUMMARY_KEYS.items():
+            if key in data and not _json_ok(kind, data[key]):
+                raise RunFolderError(
+                    f"{self.d / rel}: key '{key}': expected {_KIND_TEXT[kind]}, found {_found(data[key])}; {AGAIN}"
+                )
+        return data
+
+    def table(self, rel: str, columns: Sequence[str], named_in: str = "") -> tuple[list[str], list[_Row]]:
+        """The header and rows of a CSV file with (at least) ``columns``; blank lines are skipped."""
+        text = self.text(rel, named_in)
+        where = self.d / rel
+        rows: list[_Row] = []
+        try:
+            reader = csv.reader(io.StringIO(text, newline=""))
+            header = next(reader, None)
+            if header is None:
+                raise RunFolderError(
+                    f"{where}: empty file, expected a header line"
+                    + (f" ({','.join(columns)})" if columns else "") + f"; {AGAIN}"
+                )  # fmt: skip
+            missing = [c for c in columns if c not in header]
+            if missing:
+                raise RunFolderError(
+                    f"{where}: expected the column(s) {', '.join(missing)} in the header line, found "
+                    f"{','.join(header)[:200]!r}; {AGAIN}"
+                )
+            twice = sorted({c for c in header if header.count(c) > 1})
+            if twice:
+                raise RunFolderError(f"{where}: column(s) {', '.join(twice)} appear twice in the header; {AGAIN}")
+            for r in reader:
+                if not r:
+                    continue
+                if len(r) != len(header):
+                    raise RunFolderError(
+                        f"{where} line {reader.line_num}: expected {len(header)} fields, found {len(r)}; "
+                        f"the file is damaged: {AGAIN}"
+                    )
+                rows.append(_Row(where, reader.line_num, dict(zip(header, r, strict=True))))
+        except csv.Error as exc:
+            raise RunFolderError(f"{where}: not a readable CSV file ({exc}); {AGAIN}") from None
+        return header, rows
+
+    def rows(self, rel: str, columns: Sequence[str]) -> list[_Row]:
+        return self.table(rel, columns)[1]
+
+
+@dataclass(frozen=True)
+class _Row:
+    """One CSV record with its file and line, for messages."""
+
+    file: Path
+    line: int
+    cells: dict[str, str]
+
+    def _bad(self, col: str, expected: str) -> RunFolderError:
+        return RunFolderError(
+            f"{self.file} line {self.line}, column '{col}': expected {expected}, found {self.cells[col][:40]!r}; "
+            f"the file is damaged: {AGAIN}"
+        )
+
+    def text(self, col: str) -> str:
+        return self.cells[col]
+
+    def num(self, col: str, finite: bool = False) -> float:
+        """A float (``nan`` for an empty cell); with ``finite``, inf and nan are refused."""
+        s = self.cells[col]
+        if not s.strip():
+            return float("nan")
+        try:
+            v = float(s)
+        except ValueError:
+            raise self._bad(col, "a number") from None
+        if finite and not math.isfinite(v):
+            raise self._bad(col, "a finite number")
+        return v
+
+    def whole(self, col: str, optional: bool = False) -> int | None:
+        s = self.cells[col]
+        if optional and not s.strip():
+            return None
+        try:
+            return int(s)
+        except ValueError:
+            raise self._bad(col, "an integer" + (" or nothing" if optional else "")) from None
 
 
 def load_run(folder: str | Path) -> RunFiles:
     """Read a folder written by ``negotiate run`` (or :func:`negotiate.run.write_outputs`).
 
+    Only files inside ``folder`` are read: a trajectory path (or a link) that leads outside it is refused.
+
     Raises
     ------
     RunFolderError
-        If ``run.json`` or one of the CSV files is missing.
+        If the folder or one of its files is missing, damaged or of the wrong shape (the message names the
+        file, the line and column where it applies, what was expected and what was found).
     """
-    d = Path(folder)
-    need = ["run.json", "schedule.csv", "history.csv", "prices.csv", "agents.csv", "resources.csv"]
-    missing = [n for n in need if not (d / n).is_file()]
+    f = _Folder(folder)
+    d = f.d
+    missing = [n for n in NEED if not (d / n).exists() and not (d / n).is_symlink()]
     if missing:
         raise RunFolderError(
-            f"{d}: not a complete run folder, expected {', '.join(need)}; missing {', '.join(missing)} "
-            "(write it with: negotiate run FLEET --out DIR)"
+            f"{d}: not a complete run folder, expected {', '.join(NEED)}; missing {', '.join(missing)} "
+            f"(write it with: negotiate run FLEET --out {d})"
         )
-    summary = json.loads((d / "run.json").read_text())
+    summary = f.summary()
     schedule = tuple(
-        ScheduleRow(r["agent"], r["resource"], _float(r["enter"]), _float(r["leave"]), _float(r["share"]),
-                _float(r["value"]), _float(r["free_value"]), _float(r["d_enter"]), _float(r["d_leave"]),
-                _float(r["d_share"]), r["verdict"], _float(r.get("draw") or ""))
-        for r in _read_csv(d / "schedule.csv")
+        ScheduleRow(r.text("agent"), r.text("resource"), r.num("enter", True), r.num("leave", True), r.num("share"),
+                    r.num("value"), r.num("free_value"), r.num("d_enter"), r.num("d_leave"), r.num("d_share"),
+                    r.text("verdict"), r.num("draw") if "draw" in r.cells else float("nan"))
+        for r in f.rows("schedule.csv", _SCHEDULE_NEEDED)
     )  # fmt: skip
     history = tuple(
-        RoundRecord(int(r["round"]), _float(r["trial_total"]), _float(r["best_total"]), _float(r["measure"]),
-                       int(r["agent_solves"]), _split(r["flagged"]), _split(r["failed"]), r["note"])
-        for r in _read_csv(d / "history.csv")
+        RoundRecord(r.whole("round"), r.num("trial_total"), r.num("best_total"), r.num("measure"),  # type: ignore[arg-type]
+                    r.whole("agent_solves"), _split(r.text("flagged")), _split(r.text("failed")), r.text("note"))  # type: ignore[arg-type]
+        for r in f.rows("history.csv", HISTORY_COLUMNS)
     )  # fmt: skip
     prices = tuple(
-        PriceRow(r["agent"], r["resource"], r["parameter"], r["kind"], int(r["block"]) if r["block"] else None,
-                 r["unit"], _float(r["value"]), _float(r["free_optimum"]), _float(r["price"]), r["price_unit"],
-                 r["verdict"])
-        for r in _read_csv(d / "prices.csv")
+        PriceRow(r.text("agent"), r.text("resource"), r.text("parameter"), r.text("kind"), r.whole("block", True),
+                 r.text("unit"), r.num("value"), r.num("free_optimum"), r.num("price"), r.text("price_unit"),
+                 r.text("verdict"))
+        for r in f.rows("prices.csv", PRICES_COLUMNS)
     )  # fmt: skip
     agents = tuple(
-        AgentRow(r["agent"], r["model"], _float(r["weight"]), r["status"], _float(r["free_value"]),
-                 _float(r["value"]), _float(r["increase"]), r["verdict"], _split(r["weakly_active"]), r["reason"],
-                 r["trajectory_file"])
-        for r in _read_csv(d / "agents.csv")
+        AgentRow(r.text("agent"), r.text("model"), r.num("weight"), r.text("status"), r.num("free_value"),
+                 r.num("value"), r.num("increase"), r.text("verdict"), _split(r.text("weakly_active")),
+                 r.text("reason"), r.text("trajectory_file"))
+        for r in f.rows("agents.csv", AGENTS_COLUMNS)
     )  # fmt: skip
-    resources = tuple(
-        ResourceRow(r["resource"], r["kind"], _float(r["gap_s"]), int(r["block"]) if r["block"] else None,
-                    _float(r["start_s"]), _float(r["end_s"]), _float(r["limit"]), r["unit"])
-        for r in _read_csv(d / "resources.csv")
-    )  # fmt: skip
+    resources = tuple(_resource(r) for r in f.rows("resources.csv", RESOURCES_COLUMNS))
     trajectories: dict[str, dict[str, np.ndarray]] = {}
     for a in agents:
-        if a.trajectory_file and (d / a.trajectory_file).is_file():
-            rows = _read_csv(d / a.trajectory_file)
-            cols = list(rows[0]) if rows else []
-            trajectories[a.agent] = {c: np.array([_float(r[c]) for r in rows]) for c in cols}
+        if a.trajectory_file:
+            header, rows = f.table(a.trajectory_file, (), named_in=f"agents.csv for agent {a.agent!r}")
+            trajectories[a.agent] = {c: np.array([r.num(c) for r in rows], dtype=float) for c in header}
     return RunFiles(d, summary, schedule, history, prices, agents, resources, trajectories)
+
+
+def _resource(r: _Row) -> ResourceRow:
+    kind = r.text("kind")
+    if kind == "capacity":
+        block, finite = r.whole("block"), True
+    elif kind == "exclusive":
+        block, finite = r.whole("block", True), False
+    else:
+        raise r._bad("kind", "'exclusive' or 'capacity'")
+    return ResourceRow(r.text("resource"), kind, r.num("gap_s"), block, r.num("start_s", finite),
+                       r.num("end_s", finite), r.num("limit", finite), r.text("unit"))  # fmt: skip

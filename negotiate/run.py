@@ -1,31 +1,58 @@
 """The main job as one call: read a fleet, build its agents, choose orders, coordinate, verify, write files.
 
 ``run_fleet(spec)`` is what ``negotiate run fleet.toml`` does, minus printing. ``write_outputs(run, dir)``
-writes ``schedule.csv`` and ``run.json`` (columns and keys documented in the README).
+writes ``schedule.csv``, ``run.json`` and the other files of a run folder (columns and keys documented in the
+README and ``docs/outputs.md``).
+
+A run folder belongs to one run at a time: ``with claim_run_folder(dir):`` creates it, takes its lock
+(a second run into the same folder is refused, naming the process that holds it), refuses a folder that
+holds something other than a run, and removes an earlier run's files before a fresh run starts, so that the
+outputs of two runs are never mixed.
 """
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import importlib
 import importlib.util
+import io
 import json
+import os
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from negotiate._files import write_atomic
 from negotiate.agent import AgentModel
 from negotiate.centralized import CentralizedResult, solve_centralized
+from negotiate.checkpoint import FILENAME as CHECKPOINT_FILE
 from negotiate.coordinate import CoordinationResult, Method, RoundRecord, coordinate, register_method
 from negotiate.orders import OrderTrial, search_orders
-from negotiate.results import ScheduleRow
+from negotiate.results import SCHEDULE_COLUMNS, RunFolderError, ScheduleRow, write_result_files
 from negotiate.spec import CapacityResource, FleetSpec
 
-__all__ = ["RunResult", "ScheduleRow", "resolve_method", "run_fleet", "write_outputs"]
+__all__ = [
+    "LOCK_FILE",
+    "OUTPUT_FILES",
+    "RunResult",
+    "ScheduleRow",
+    "claim_run_folder",
+    "clear_outputs",
+    "resolve_method",
+    "run_fleet",
+    "write_outputs",
+]
+
+OUTPUT_FILES = ("schedule.csv", "run.json", "history.csv", "prices.csv", "agents.csv", "resources.csv", "report.html")
+"""The files :func:`write_outputs` writes into a run folder, besides ``trajectories/<agent>.csv``."""
+TRAJECTORY_FOLDER = "trajectories"
+LOCK_FILE = ".negotiate-run.lock"
+"""Held by the run that uses the folder (see :func:`claim_run_folder`); it holds that process's id."""
 
 
 @dataclass(frozen=True)
@@ -287,31 +314,212 @@ def _six(v: float) -> str:
     return text[1:] if text == "-0.000000" else text
 
 
+def _ours(name: str) -> bool:
+    """Whether ``name`` is a file a run writes into its folder (an output, the checkpoint, a temporary file)."""
+    known = (*OUTPUT_FILES, CHECKPOINT_FILE, LOCK_FILE, TRAJECTORY_FOLDER)
+    if name in known:
+        return True
+    return name.startswith(".") and name.endswith(".tmp") and any(name.startswith(f".{k}.") for k in known)
+
+
+def clear_outputs(folder: str | Path, *, checkpoint: bool = False) -> None:
+    """Remove the files an earlier run wrote into ``folder`` (:data:`OUTPUT_FILES`, ``trajectories/*.csv``,
+    temporary files; with ``checkpoint``, ``checkpoint.bin`` too). Nothing else is touched: a folder of
+    ``trajectories/`` that holds other files stays. Raises :class:`OSError` as the system reports it."""
+    d = Path(folder)
+    if not d.is_dir():
+        return
+    for entry in os.scandir(d):
+        name = entry.name
+        if name in (LOCK_FILE, TRAJECTORY_FOLDER) or not _ours(name):
+            continue
+        if name == CHECKPOINT_FILE and not checkpoint:
+            continue
+        if entry.is_symlink() or entry.is_file():
+            os.unlink(entry.path)
+    traj = d / TRAJECTORY_FOLDER
+    if traj.is_symlink():
+        traj.unlink()  # writing through it would leave the folder
+    elif traj.is_dir():
+        for entry in os.scandir(traj):
+            if entry.name.endswith((".csv", ".tmp")) and (entry.is_symlink() or entry.is_file()):
+                os.unlink(entry.path)
+        with contextlib.suppress(OSError):
+            traj.rmdir()  # only when empty
+
+
+class _Lock:
+    """An exclusive lock on a run folder: ``fcntl.flock`` on the lock file, which holds the holder's pid.
+
+    The kernel releases a flock when its process ends however it ends, so a lock file left by a run that
+    died is simply taken over. Where ``fcntl`` is missing (Windows) the lock file is created with
+    ``O_CREAT | O_EXCL`` instead, and one left behind must be deleted by hand (the message says so).
+    """
+
+    def __init__(self, folder: Path) -> None:
+        self.path = folder / LOCK_FILE
+        flags = os.O_RDWR | os.O_CREAT | getattr(os, "O_NOFOLLOW", 0)
+        try:
+            import fcntl
+        except ImportError:  # pragma: no cover - Windows
+            fcntl = None  # type: ignore[assignment]
+            flags |= os.O_EXCL
+        for _ in range(20):
+            try:
+                fd = os.open(self.path, flags, 0o644)
+            except FileExistsError:  # pragma: no cover - Windows
+                raise self._busy(self._holder(None), "; if no run is using it, delete that file") from None
+            except OSError as exc:
+                raise RunFolderError(
+                    f"{folder}: cannot write into this folder ({exc.strerror or exc} creating {self.path.name}); "
+                    "choose a folder you can write to with --out"
+                ) from None
+            if fcntl is not None:
+                try:
+                    fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                except OSError:
+                    holder = self._holder(fd)
+                    os.close(fd)
+                    raise self._busy(holder, "") from None
+                # The file locked must still be the one at the path: a run that ends removes its lock file
+                # (while holding it), and a lock on a removed file guards nothing.
+                try:
+                    same = os.path.samestat(os.fstat(fd), os.stat(self.path, follow_symlinks=False))
+                except FileNotFoundError:
+                    same = False
+                if not same:
+                    os.close(fd)
+                    continue
+            os.ftruncate(fd, 0)
+            os.write(fd, f"{os.getpid()}\n".encode())
+            self.fd = fd
+            return
+        raise RunFolderError(f"{folder}: cannot take the lock {self.path.name}: other runs keep taking it")
+
+    def _holder(self, fd: int | None) -> str:
+        try:
+            if fd is None:
+                text = self.path.read_text()
+            else:
+                text = os.pread(fd, 64, 0).decode("ascii", "replace")
+        except OSError:
+            text = ""
+        text = text.strip()
+        return f"pid {text}" if text.isdigit() else "a process whose id is not recorded yet"
+
+    def _busy(self, holder: str, hint: str) -> RunFolderError:
+        folder = self.path.parent
+        return RunFolderError(
+            f"folder {folder} is in use by another run ({holder}, lock file {self.path}); wait until it ends, or "
+            f"choose another folder with --out{hint}"
+        )
+
+    def release(self) -> None:
+        try:
+            os.unlink(self.path)  # removed while still held: a waiting run re-checks the path (see __init__)
+        except OSError:
+            pass
+        finally:
+            os.close(self.fd)
+
+
+@contextlib.contextmanager
+def claim_run_folder(folder: str | Path, *, resume: bool = False) -> Iterator[Path]:
+    """Make ``folder`` this run's folder for the duration of the ``with`` block, before anything is built.
+
+    * ``folder`` is created if needed (with its parents); a path that is a file, or that cannot be created
+      or written, is refused.
+    * Its lock is taken (:data:`LOCK_FILE`); a folder in use by another run is refused, naming that run's
+      process id. The lock is released however the block ends (the lock file is removed; one left by a run
+      that was killed is taken over).
+    * For a fresh run (``resume`` False) a non-empty folder must be a run folder (it holds ``run.json`` or
+      ``checkpoint.bin``, or only files a run writes), and not one whose run was interrupted
+      (``checkpoint.bin`` without ``run.json``: continue it with ``--resume``, or delete the checkpoint).
+      The earlier run's files are then removed (:func:`clear_outputs`, the checkpoint included), so that
+      no file of it mixes with the new run's.
+    * For ``resume`` the folder must exist; nothing in it is removed (the checkpoint is read afterwards, and
+      :func:`write_outputs` replaces the outputs at the end).
+
+    A folder this call created is removed again if it is empty when the block ends.
+
+    Raises
+    ------
+    RunFolderError
+        For each case above; the message names the folder and says what to do.
+    """
+    d = Path(folder)
+    if d.exists() and not d.is_dir():
+        raise RunFolderError(f"{d}: is a file, not a folder; give --out a folder (new, empty, or of an earlier run)")
+    created = False
+    if not d.exists():
+        if resume:
+            raise RunFolderError(
+                f"{d}: no such folder, so no run to resume; give the folder of an interrupted run "
+                "(the --out DIR it was started with)"
+            )
+        try:
+            d.mkdir(parents=True)
+            created = True
+        except OSError as exc:
+            raise RunFolderError(
+                f"{d}: cannot create this folder ({exc.strerror or exc}); choose a folder you can write to with --out"
+            ) from None
+    lock = _Lock(d)
+    try:
+        if not resume:
+            others = sorted(n for n in os.listdir(d) if n != LOCK_FILE)
+            foreign = [n for n in others if not _ours(n)]
+            if foreign and "run.json" not in others and CHECKPOINT_FILE not in others:
+                shown = ", ".join(foreign[:5]) + (f" and {len(foreign) - 5} more" if len(foreign) > 5 else "")
+                raise RunFolderError(
+                    f"{d}: not a run folder (it holds {shown}, but no run.json or {CHECKPOINT_FILE}); nothing was "
+                    "written: give --out a new or empty folder, or the folder of an earlier run"
+                )
+            if CHECKPOINT_FILE in others and "run.json" not in others:
+                raise RunFolderError(
+                    f"{d}: holds an interrupted run ({CHECKPOINT_FILE} without run.json); continue it with "
+                    f"'negotiate run --resume {d}', or delete {d / CHECKPOINT_FILE} to start afresh there"
+                )
+            try:
+                clear_outputs(d, checkpoint=True)
+            except OSError as exc:
+                raise RunFolderError(
+                    f"{d}: cannot remove the earlier run's files ({exc.strerror or exc}: {exc.filename}); "
+                    "fix the folder's permissions, or choose another folder with --out"
+                ) from None
+        yield d
+    finally:
+        lock.release()
+        if created:
+            with contextlib.suppress(OSError):
+                d.rmdir()  # only when nothing was written
+
+
 def write_outputs(run: RunResult, out_dir: str | Path) -> list[Path]:
     """Write ``schedule.csv``, ``run.json``, the files of :mod:`negotiate.results` (history, prices, agents,
-    resources, trajectories) and ``report.html`` into ``out_dir`` (created if needed); return the paths."""
+    resources, trajectories) and ``report.html`` into ``out_dir`` (created if needed); return the paths.
+
+    The files an earlier run wrote there are removed first (:func:`clear_outputs`; ``checkpoint.bin`` is
+    kept), so no trajectory of another fleet stays behind. Each file is written whole or not at all
+    (:func:`negotiate._files.write_atomic`). Raises :class:`OSError` when the folder cannot be written.
+    """
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    sched = out / "schedule.csv"
-    with sched.open("w", newline="") as fh:
-        w = csv.writer(fh)
-        w.writerow(["agent", "resource", "enter", "leave", "value", "share", "draw", "free_value", "increase",
-                    "d_enter", "d_leave", "d_share", "verdict"])  # fmt: skip
-        for r in run.schedule:
-            w.writerow([
-                r.agent, r.resource, f"{r.enter:.6f}", f"{r.leave:.6f}", f"{r.value:.6f}",
-                "" if np.isnan(r.share) else f"{r.share:.6f}", "" if np.isnan(r.draw) else _six(r.draw),
-                f"{r.free_value:.6f}",
-                f"{r.value - r.free_value:.6f}",
-                "" if np.isnan(r.d_enter) else f"{r.d_enter:.6g}", "" if np.isnan(r.d_leave) else f"{r.d_leave:.6g}",
-                "" if np.isnan(r.d_share) else f"{r.d_share:.6g}", r.verdict,
-            ])  # fmt: skip
-    summary = out / "run.json"
-    tmp = summary.with_suffix(".json.tmp")
-    tmp.write_text(json.dumps(_clean(run.summary()), indent=2) + "\n")
-    tmp.replace(summary)
+    clear_outputs(out)
+    buf = io.StringIO(newline="")
+    w = csv.writer(buf)
+    w.writerow(SCHEDULE_COLUMNS)
+    for r in run.schedule:
+        w.writerow([
+            r.agent, r.resource, f"{r.enter:.6f}", f"{r.leave:.6f}", f"{r.value:.6f}",
+            "" if np.isnan(r.share) else f"{r.share:.6f}", "" if np.isnan(r.draw) else _six(r.draw),
+            f"{r.free_value:.6f}", f"{r.value - r.free_value:.6f}",
+            "" if np.isnan(r.d_enter) else f"{r.d_enter:.6g}", "" if np.isnan(r.d_leave) else f"{r.d_leave:.6g}",
+            "" if np.isnan(r.d_share) else f"{r.d_share:.6g}", r.verdict,
+        ])  # fmt: skip
+    sched = write_atomic(out / "schedule.csv", buf.getvalue())
+    summary = write_atomic(out / "run.json", json.dumps(_clean(run.summary()), indent=2) + "\n")
     from negotiate.report import write_report
-    from negotiate.results import write_result_files
 
     files = write_result_files(run, out)
     return [sched, summary, *files, write_report(out)]

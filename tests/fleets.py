@@ -56,3 +56,59 @@ def slot_agent(
             b.append(0.0)
     free = np.ravel([[want_enter + j * duration, want_enter + (j + 1) * duration] for j in range(k)])
     return AgentModel(name, prob, tuple(params), ReachableSet(lower, upper, np.array(rows), np.array(b)), free)
+
+
+# INVENTED small fleets (every number made up, physically plausible; SI units) that run in a second or two.
+TWO_TRUCKS = """
+[fleet]
+name = "two-trucks"
+
+[resources.bridge]
+kind = "exclusive"
+gap = 6.0
+
+[defaults.vehicle]
+route_length = 1200.0
+stages = 12
+speed_limit = 13.0
+initial_speed = 6.0
+latest_arrival = 600.0
+
+[agents.truck-a]
+model = "vehicle"
+departure = 0.0
+desired_arrival = 140.0
+[[agents.truck-a.zones]]
+resource = "bridge"
+entry = 600.0
+exit = 660.0
+speed_limit = 6.0
+
+[agents.truck-b]
+model = "vehicle"
+departure = 5.0
+desired_arrival = 145.0
+[[agents.truck-b.zones]]
+resource = "bridge"
+entry = 500.0
+exit = 560.0
+speed_limit = 6.0
+"""
+
+ONE_TRACTOR = """
+[fleet]
+name = "one-tractor"
+
+[resources.grid]
+kind = "capacity"
+limits = [200e3, 150e3]
+block_length = 900.0
+
+[agents.tractor-1]
+model = "capacity"
+resource = "grid"
+tariff = [1.0, 1.4]
+battery_capacity = 3.6e8
+initial_soc = 0.3
+target_soc = 0.6
+"""

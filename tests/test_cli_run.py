@@ -1,13 +1,20 @@
-"""negotiate run from the command line: exit codes, files, verification, a user method, user mistakes."""
+"""negotiate run from the command line: exit codes, files, verification, a user method, user mistakes, and
+the run folder (one run at a time, never mixed with another run's files, refused before solving when it
+cannot be used)."""
 
 from __future__ import annotations
 
 import json
+import os
+import subprocess
+import sys
 from pathlib import Path
 
 import pytest
+from fleets import ONE_TRACTOR, TWO_TRUCKS
 
 from negotiate.cli import main
+from negotiate.run import LOCK_FILE, claim_run_folder
 
 EXAMPLES = Path(__file__).parents[1] / "examples"
 
@@ -15,7 +22,7 @@ EXAMPLES = Path(__file__).parents[1] / "examples"
 # Their reachable windows (computed by the vehicle builder): early enters in [125.4, 798.0] s and leaves no
 # sooner than 137.9 s; late enters in [245.4, 918.0] s and leaves no sooner than 257.9 s. So early-first
 # admits gaps up to 918.0 - 137.9 = 780 s, late-first only up to 798.0 - 257.9 = 540 s.
-TWO_TRUCKS = """
+LONG_GAP_TRUCKS = """
 [fleet]
 name = "two-trucks-long-gap"
 description = "Invented: two haul trucks and a bridge whose gap leaves room for only one of the two orders"
@@ -113,7 +120,7 @@ class TestRun:
     def test_order_search_skips_an_infeasible_candidate(self, tmp_path, capsys):
         """Gap 600 s: the swapped order admits no schedule; it is recorded and skipped, the run completes."""
         path = tmp_path / "two.toml"
-        path.write_text(TWO_TRUCKS.replace("GAP", "600.0"))
+        path.write_text(LONG_GAP_TRUCKS.replace("GAP", "600.0"))
         out = tmp_path / "two"
         code = main(["run", str(path), "--out", str(out), "--quiet"])
         text = capsys.readouterr().out
@@ -137,7 +144,7 @@ class TestRun:
     def test_infeasible_first_order_exits_1_naming_resource_and_agents(self, tmp_path, capsys):
         """Gap 800 s: no order admits a schedule; exit 1 with a message, no traceback."""
         path = tmp_path / "two.toml"
-        path.write_text(TWO_TRUCKS.replace("GAP", "800.0"))
+        path.write_text(LONG_GAP_TRUCKS.replace("GAP", "800.0"))
         code = main(["run", str(path), "--out", str(tmp_path / "o"), "--quiet"])
         err = capsys.readouterr().err
         assert code == 1
@@ -180,3 +187,151 @@ def test_every_example_verifies_within_a_tenth_of_a_percent(name, tmp_path):
     run = run_fleet(load_fleet(EXAMPLES / f"{name}.toml"), verify=True)
     assert run.centralized is not None and run.centralized.success
     assert abs(run.gap) <= 1e-3, run.gap
+
+
+@pytest.fixture()
+def fleets(tmp_path):
+    trucks, tractor = tmp_path / "trucks.toml", tmp_path / "tractor.toml"
+    trucks.write_text(TWO_TRUCKS)
+    tractor.write_text(ONE_TRACTOR)
+    return trucks, tractor
+
+
+class TestRunFolder:
+    """One run per folder; a folder that cannot be used is refused (exit 2) before anything is built."""
+
+    def test_folder_in_use_by_another_process(self, fleets, tmp_path, capsys):
+        """While another process holds the folder, 'negotiate run' (fresh or --resume) exits 2 naming the
+        folder and that process's id, before building, and writes nothing; once it ends, the run goes on."""
+        out = tmp_path / "run"
+        holder = subprocess.Popen(
+            [sys.executable, "-c", "import sys\nfrom negotiate.run import claim_run_folder\n"
+             "with claim_run_folder(sys.argv[1]):\n    print('held', flush=True)\n    sys.stdin.readline()\n",
+             str(out)],
+            stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
+        )  # fmt: skip
+        try:
+            assert holder.stdout.readline().strip() == "held"
+            for args in (["run", str(fleets[0]), "--out", str(out)], ["run", "--resume", str(out)]):
+                assert main([*args, "--quiet"]) == 2
+                text, err = capsys.readouterr()
+                assert f"folder {out} is in use by another run (pid {holder.pid}" in err, err
+                assert "agents" not in text  # the 'fleet ...: N agents' line comes after building
+                assert os.listdir(out) == [LOCK_FILE]
+        finally:
+            holder.communicate("\n", timeout=60)
+        assert holder.returncode == 0
+        assert main(["run", str(fleets[0]), "--out", str(out), "--quiet"]) in (0, 3)
+        assert json.loads((out / "run.json").read_text())["fleet"] == "two-trucks"
+        assert LOCK_FILE not in os.listdir(out)
+
+    def test_stale_lock_is_taken_over(self, fleets, tmp_path):
+        """A lock file left by a process that has ended (its pid inside), with the temporary file of a
+        checkpoint it was writing, does not block the next run; both are gone when the run ends."""
+        dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True,
+                              text=True, check=True)  # fmt: skip
+        out = tmp_path / "run"
+        out.mkdir()
+        (out / LOCK_FILE).write_text(dead.stdout)
+        (out / f".checkpoint.bin.{dead.stdout.strip()}.0a1b2c3d.tmp").write_bytes(b"cut short")
+        assert main(["run", str(fleets[1]), "--out", str(out), "--quiet"]) in (0, 3)
+        assert (out / "run.json").is_file()
+        assert not [n for n in os.listdir(out) if n.startswith(".")]
+
+    def test_lock_released_on_every_exit_path(self, fleets, tmp_path, monkeypatch, capsys):
+        """A user mistake (exit 1), an interrupt (exit 130) and an unexpected exception all release the
+        folder: the lock file is gone, a folder the run created and left empty is removed, and the next run
+        can take it."""
+        out = tmp_path / "run"
+        assert main(["run", str(fleets[1]), "--out", str(out), "--method", "nowhere.py:Nothing", "--quiet"]) == 1
+        assert not out.exists()
+        import negotiate.run
+
+        def interrupt(*a, **k):
+            raise KeyboardInterrupt
+
+        monkeypatch.setattr(negotiate.run, "run_fleet", interrupt)
+        assert main(["run", str(fleets[1]), "--out", str(out), "--quiet"]) == 130
+        assert not out.exists()
+
+        def broken(*a, **k):
+            (Path(k["checkpoint_dir"]) / "partial.txt").write_text("x")
+            raise RuntimeError("a bug")
+
+        monkeypatch.setattr(negotiate.run, "run_fleet", broken)
+        with pytest.raises(RuntimeError, match="a bug"):
+            main(["run", str(fleets[1]), "--out", str(out), "--quiet"])
+        assert os.listdir(out) == ["partial.txt"]
+        with claim_run_folder(out, resume=True):
+            pass
+
+    def test_not_a_run_folder(self, fleets, tmp_path, capsys):
+        """A non-empty folder that is not a run folder is refused, naming what it holds; nothing is written."""
+        out = tmp_path / "papers"
+        out.mkdir()
+        (out / "notes.txt").write_text("mine")
+        assert main(["run", str(fleets[0]), "--out", str(out), "--quiet"]) == 2
+        err = capsys.readouterr().err
+        assert f"{out}: not a run folder (it holds notes.txt" in err and "Traceback" not in err
+        assert os.listdir(out) == ["notes.txt"] and (out / "notes.txt").read_text() == "mine"
+
+    def test_interrupted_run_is_not_overwritten(self, fleets, tmp_path, capsys):
+        """A fresh run into a folder whose run was interrupted (checkpoint, no run.json) is refused and says
+        how to continue it: the checkpoint --resume needs is kept."""
+        out = tmp_path / "run"
+        assert main(["run", str(fleets[1]), "--out", str(out), "--quiet"]) in (0, 3)
+        (out / "run.json").unlink()
+        saved = (out / "checkpoint.bin").read_bytes()
+        assert main(["run", str(fleets[0]), "--out", str(out), "--quiet"]) == 2
+        err = capsys.readouterr().err
+        assert "holds an interrupted run" in err and f"negotiate run --resume {out}" in err
+        assert (out / "checkpoint.bin").read_bytes() == saved
+
+    def test_rerun_replaces_the_earlier_run(self, fleets, tmp_path):
+        """A run into the folder of a run of another fleet leaves none of the earlier files (no trajectory
+        of the other fleet), and a link planted at an output name is replaced, not written through."""
+        out = tmp_path / "run"
+        assert main(["run", str(fleets[1]), "--out", str(out), "--quiet"]) in (0, 3)
+        assert os.listdir(out / "trajectories") == ["tractor-1.csv"]
+        victim = tmp_path / "victim.csv"
+        victim.write_text("keep me")
+        (out / "schedule.csv").unlink()
+        (out / "schedule.csv").symlink_to(victim)
+        assert main(["run", str(fleets[0]), "--out", str(out), "--quiet"]) in (0, 3)
+        assert sorted(os.listdir(out / "trajectories")) == ["truck-a.csv", "truck-b.csv"]
+        assert json.loads((out / "run.json").read_text())["fleet"] == "two-trucks"
+        assert "tractor-1" not in (out / "agents.csv").read_text()
+        assert victim.read_text() == "keep me" and not (out / "schedule.csv").is_symlink()
+
+    def test_out_that_cannot_be_a_folder(self, fleets, tmp_path, capsys):
+        """--out naming a file, or a path under a file: exit 2 with the path named, before building."""
+        afile = tmp_path / "afile"
+        afile.write_text("x")
+        for out, says in ((afile, "is a file, not a folder"), (afile / "sub", "cannot create this folder")):
+            assert main(["run", str(fleets[0]), "--out", str(out), "--quiet"]) == 2
+            text, err = capsys.readouterr()
+            assert f"negotiate run: {out}: {says}" in err and "Traceback" not in err
+            assert "agents" not in text
+        assert afile.read_text() == "x"
+
+    @pytest.mark.skipif(not Path("/proc/self").is_dir(), reason="needs Linux's /proc")
+    def test_out_on_a_file_system_that_refuses_files(self, fleets, capsys):
+        """/proc takes no new files or folders, not even from root: exit 2 before building."""
+        for out, says in (("/proc/negotiate-out/sub", "cannot create this folder"), ("/proc", "cannot write into")):
+            assert main(["run", str(fleets[0]), "--out", out, "--quiet"]) == 2
+            text, err = capsys.readouterr()
+            assert f"{out}: {says}" in err and "agents" not in text and "Traceback" not in err
+
+    @pytest.mark.skipif(not hasattr(os, "geteuid") or os.geteuid() == 0, reason="root may write anywhere")
+    def test_out_without_write_permission(self, fleets, tmp_path, capsys):
+        """A folder the user may not write into (or create a folder in): exit 2 before building."""
+        ro = tmp_path / "ro"
+        ro.mkdir()
+        ro.chmod(0o500)
+        try:
+            for out, says in ((ro / "sub", "cannot create this folder"), (ro, "cannot write into this folder")):
+                assert main(["run", str(fleets[0]), "--out", str(out), "--quiet"]) == 2
+                text, err = capsys.readouterr()
+                assert f"{out}: {says}" in err and "agents" not in text
+        finally:
+            ro.chmod(0o700)

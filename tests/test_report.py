@@ -424,3 +424,182 @@ class TestPlannedDraw:
         assert all(math.isnan(s.draw) for s in old.schedule)
         assert cli.main(["report", str(copy)]) == 0
         assert "<code>draw</code>" not in (copy / "report.html").read_text(encoding="utf-8")
+
+
+# ---------------------------------------------------------------------------------------------------------
+# damaged run folders: `negotiate report DIR` exits 2 naming the file and what is wrong, never a traceback
+
+
+def _edit_csv(path: Path, line: int, column: str, value: str) -> None:
+    """Set one cell of a CSV file (line 1 is the header)."""
+    import csv as _csv
+
+    rows = list(_csv.reader(path.read_text().splitlines()))
+    rows[line - 1][rows[0].index(column)] = value
+    buf = io.StringIO()
+    _csv.writer(buf).writerows(rows)
+    path.write_text(buf.getvalue())
+
+
+def _json_key(d: Path, key: str, value: object) -> None:
+    import json
+
+    data = json.loads((d / "run.json").read_text())
+    data[key] = value
+    (d / "run.json").write_text(json.dumps(data))
+
+
+def _outside_csv(d: Path) -> Path:
+    """A valid trajectory CSV outside the run folder (what a path leading out of it would reach)."""
+    target = d.parent / "elsewhere.csv"
+    target.write_text("time_s,position_m\n0.0,1.0\n1.0,2.0\n")
+    return target
+
+
+# (damage done to a copy of a good run folder, the file the message must name, what it must say)
+DAMAGE = {
+    "run.json missing": (lambda d: (d / "run.json").unlink(), "run.json", "missing run.json"),
+    "run.json invalid JSON": (lambda d: (d / "run.json").write_text('{"status": "conv'), "run.json",
+                              "expected JSON"),
+    "run.json not an object": (lambda d: (d / "run.json").write_text("[1, 2]"), "run.json",
+                               "expected a JSON object, found a list"),
+    "run.json rounds not an integer": (lambda d: _json_key(d, "rounds", "many"), "run.json",
+                                       "key 'rounds': expected an integer"),
+    "run.json orders of the wrong shape": (lambda d: _json_key(d, "orders", {"bridge": 5}), "run.json",
+                                           "key 'orders'"),
+    "run.json total not a number": (lambda d: _json_key(d, "total_cost", "cheap"), "run.json",
+                                    "key 'total_cost': expected a number"),
+    "run.json binary garbage": (lambda d: (d / "run.json").write_bytes(bytes(range(256)) * 4), "run.json",
+                                "expected UTF-8 text"),
+    "run.json nested too deep": (lambda d: (d / "run.json").write_text("[" * 100000 + "]" * 100000), "run.json",
+                                 "expected JSON"),
+    "run.json is a folder": (lambda d: ((d / "run.json").unlink(), (d / "run.json").mkdir()), "run.json",
+                             "expected a file, found a folder"),
+    "schedule.csv empty": (lambda d: (d / "schedule.csv").write_text(""), "schedule.csv", "empty file"),
+    "history.csv column missing": (
+        lambda d: (d / "history.csv").write_text((d / "history.csv").read_text().replace("measure,", "", 1)),
+        "history.csv", "expected the column(s) measure"),
+    "history.csv round not an integer": (lambda d: _edit_csv(d / "history.csv", 2, "round", "1.5"),
+                                         "history.csv line 2, column 'round'", "expected an integer"),
+    "prices.csv value not a number": (lambda d: _edit_csv(d / "prices.csv", 3, "value", "soon"),
+                                      "prices.csv line 3, column 'value'", "expected a number, found 'soon'"),
+    "agents.csv row cut short": (
+        lambda d: (d / "agents.csv").write_text("\n".join(
+            line if k != 2 else ",".join(line.split(",")[:4])
+            for k, line in enumerate((d / "agents.csv").read_text().splitlines()))),
+        "agents.csv line 3", "expected 11 fields, found 4"),
+    "resources.csv unknown kind": (lambda d: _edit_csv(d / "resources.csv", 2, "kind", "shared"),
+                                   "resources.csv line 2, column 'kind'", "'exclusive' or 'capacity'"),
+    "resources.csv limit infinite": (lambda d: _edit_csv(d / "resources.csv", 4, "limit", "inf"),
+                                     "resources.csv line 4, column 'limit'", "expected a finite number"),
+    "schedule.csv binary garbage": (lambda d: (d / "schedule.csv").write_bytes(b"\x00\xff\xfe" * 100),
+                                    "schedule.csv", "expected UTF-8 text"),
+    "trajectory file missing": (lambda d: (d / "trajectories" / "truck-a.csv").unlink(),
+                                "trajectories/truck-a.csv", "missing (named in agents.csv for agent 'truck-a')"),
+    "trajectory file empty": (lambda d: (d / "trajectories" / "lathe.csv").write_text(""),
+                              "trajectories/lathe.csv", "empty file"),
+    "trajectory value not a number": (lambda d: _edit_csv(d / "trajectories" / "mill.csv", 2, "time_s", "x"),
+                                      "trajectories/mill.csv line 2, column 'time_s'", "expected a number, found 'x'"),
+    "trajectory path leaving the folder": (
+        lambda d: (_outside_csv(d), _edit_csv(d / "agents.csv", 2, "trajectory_file", "../elsewhere.csv")),
+        "elsewhere.csv", "leads outside the run folder"),
+    "trajectory path absolute": (
+        lambda d: _edit_csv(d / "agents.csv", 2, "trajectory_file", str(_outside_csv(d).resolve())),
+        "agents.csv for agent 'truck-a'", "expected a path inside the run folder"),
+    "trajectory link leaving the folder": (
+        lambda d: ((d / "trajectories" / "truck-b.csv").unlink(),
+                   (d / "trajectories" / "truck-b.csv").symlink_to(_outside_csv(d))),
+        "trajectories/truck-b.csv", "leads outside the run folder"),
+    "run.json link leaving the folder": (
+        lambda d: ((d.parent / "other.json").write_text((d / "run.json").read_text()), (d / "run.json").unlink(),
+                   (d / "run.json").symlink_to(d.parent / "other.json")),
+        "run.json", "leads outside the run folder"),
+    "trajectories a file, not a folder": (
+        lambda d: (shutil.rmtree(d / "trajectories"), (d / "trajectories").write_text("x")),
+        "trajectories/truck-a.csv", "trajectories/truck-a.csv"),
+}  # fmt: skip
+
+
+@pytest.mark.parametrize("case", list(DAMAGE))
+def test_damaged_folder_exits_2_naming_the_file(case: str, folder: Path, tmp_path: Path,
+                                                capsys: pytest.CaptureFixture[str]) -> None:  # fmt: skip
+    """Each damaged copy of a good run folder: exit status 2, the file (and line, column) named with what is
+    wrong, no traceback, and no report written (nor anything read from outside the folder)."""
+    damage, where, what = DAMAGE[case]
+    copy = tmp_path / "run"
+    shutil.copytree(folder, copy, symlinks=True)
+    (copy / "report.html").unlink()
+    damage(copy)
+    assert cli.main(["report", str(copy)]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("negotiate report: ") and "Traceback" not in err
+    assert where in err and what in err, err
+    assert not (copy / "report.html").exists()
+
+
+def test_folder_that_does_not_exist(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """A DIR that does not exist, or is a file: exit 2 with the path named."""
+    assert cli.main(["report", str(tmp_path / "nowhere")]) == 2
+    assert "nowhere: no such run folder" in capsys.readouterr().err
+    (tmp_path / "afile").write_text("x")
+    assert cli.main(["report", str(tmp_path / "afile")]) == 2
+    assert "afile: expected a run folder, found a file" in capsys.readouterr().err
+
+
+class TestReportWritesInsideTheFolder:
+    """The report is written to a new temporary file in DIR, then renamed: links placed in DIR at
+    report.html or at a temporary name never redirect the write."""
+
+    def test_link_at_report_html_is_replaced_not_followed(self, folder: Path, tmp_path: Path) -> None:
+        copy = tmp_path / "run"
+        shutil.copytree(folder, copy)
+        victim = tmp_path / "victim.txt"
+        victim.write_text("keep me")
+        (copy / "report.html").unlink()
+        (copy / "report.html").symlink_to(victim)
+        (copy / "report.html.tmp").symlink_to(victim)  # the temporary name used before
+        assert cli.main(["report", str(copy)]) == 0
+        assert victim.read_text() == "keep me"
+        assert not (copy / "report.html").is_symlink()
+        assert (copy / "report.html").read_bytes() == (folder / "report.html").read_bytes()
+
+    def test_link_at_the_temporary_name_is_not_followed(self, folder: Path, tmp_path: Path,
+                                                        monkeypatch: pytest.MonkeyPatch) -> None:  # fmt: skip
+        """The temporary name is made predictable here and a link planted at it: creating the file with
+        O_EXCL refuses the link, and the next name is used."""
+        import os
+
+        from negotiate import _files
+
+        copy = tmp_path / "run"
+        shutil.copytree(folder, copy)
+        victim = tmp_path / "victim.txt"
+        victim.write_text("keep me")
+        tokens = iter(["planted", "free"])
+        monkeypatch.setattr(_files.secrets, "token_hex", lambda n: next(tokens))
+        (copy / f".report.html.{os.getpid()}.planted.tmp").symlink_to(victim)
+        assert cli.main(["report", str(copy)]) == 0
+        assert victim.read_text() == "keep me"
+        assert (copy / "report.html").read_bytes() == (folder / "report.html").read_bytes()
+
+
+TOLERATED = {
+    "trajectory with infinite values": lambda d: _edit_csv(d / "trajectories" / "truck-a.csv", 3, "speed_m_per_s",
+                                                           "inf"),
+    "trajectory with only a time column": lambda d: (d / "trajectories" / "lathe.csv").write_text("time_s\n0.0\n"),
+    "trajectory with a header only": lambda d: (d / "trajectories" / "mill.csv").write_text("time_s,rate_kg_per_s\n"),
+    "run.json without optional keys": lambda d: (d / "run.json").write_text('{"fleet": "tiny-mixed"}'),
+}  # fmt: skip
+
+
+@pytest.mark.parametrize("case", list(TOLERATED))
+def test_odd_but_readable_folder_gives_a_report(case: str, folder: Path, tmp_path: Path) -> None:
+    """Files that are well formed but odd (a value that is not finite, a trajectory with nothing to draw, a
+    run.json with only some keys) still give a report (exit 0): a dash or a note where nothing can be shown."""
+    copy = tmp_path / "run"
+    shutil.copytree(folder, copy)
+    TOLERATED[case](copy)
+    assert cli.main(["report", str(copy)]) == 0
+    html = (copy / "report.html").read_text(encoding="utf-8")
+    if "only a time column" in case:
+        assert "No trajectory for: lathe" in html

@@ -19,8 +19,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from fleets import TWO_TRUCKS
 
-from negotiate.checkpoint import FILENAME, CheckpointError, fleet_digest, read_checkpoint
+from negotiate.checkpoint import FILENAME, FORMAT_VERSION, CheckpointError, fleet_digest, read_checkpoint
 from negotiate.cli import main
 from negotiate.fleet import build_agents, load_fleet
 from negotiate.run import run_fleet
@@ -159,7 +160,8 @@ class TestBadCheckpoints:
         h = json.loads(header)
         h["version"] = 99
         path.write_bytes(magic + b"\n" + json.dumps(h).encode() + b"\n" + payload)
-        with pytest.raises(CheckpointError, match="expected checkpoint format version 1, found version 99"):
+        expected = f"expected checkpoint format version {FORMAT_VERSION}, found version 99"
+        with pytest.raises(CheckpointError, match=expected):
             read_checkpoint(path.parent)
 
     def test_foreign(self, saved):
@@ -197,3 +199,191 @@ class TestBadCheckpoints:
         """``negotiate run`` without a fleet or --resume says what it needs."""
         assert main(["run", "--quiet"]) == 2
         assert "give a fleet file, or --resume DIR" in capsys.readouterr().err
+
+
+# ---------------------------------------------------------------------------------------------------------
+# a checkpoint is data only: reading one never runs code, and it keeps every number exactly
+
+
+class _RunsCode:
+    """Unpickling this runs a command that leaves a marker file (what a hostile checkpoint would do)."""
+
+    def __init__(self, marker: Path) -> None:
+        self.marker = marker
+
+    def __reduce__(self):
+        return (os.system, (f"touch '{self.marker}'",))
+
+
+def _forge(folder: Path, spec, payload: bytes, version: int, **extra) -> Path:
+    """A checkpoint file with a valid header (the digest of the fleet, the payload's length and checksum)."""
+    import hashlib
+
+    from negotiate.checkpoint import MAGIC
+
+    header = {"version": version, "fleet": spec.name, "digest": fleet_digest(spec, spec.coordinator.method),
+              "payload_bytes": len(payload), "payload_sha256": hashlib.sha256(payload).hexdigest(), "trial": 0,
+              "round": 0, **extra}  # fmt: skip
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / FILENAME
+    path.write_bytes(MAGIC + json.dumps(header).encode() + b"\n" + payload)
+    return path
+
+
+def _same(a, b, where="state"):
+    """Exact equality of two states: same types everywhere, arrays equal bit for bit (dtype, shape, memory
+    order), floats equal (nan to nan), records field by field (the CasADi problem aside)."""
+    import dataclasses
+
+    from negotiate.coordinate import Method
+
+    assert type(a) is type(b), f"{where}: {type(a)} != {type(b)}"
+    if isinstance(a, np.ndarray):
+        assert a.dtype == b.dtype and a.shape == b.shape, where
+        assert a.flags.c_contiguous == b.flags.c_contiguous and a.flags.f_contiguous == b.flags.f_contiguous, where
+        assert a.tobytes(order="A") == b.tobytes(order="A"), where
+    elif isinstance(a, float | np.floating):
+        assert a == b or (a != a and b != b), f"{where}: {a!r} != {b!r}"
+        assert np.signbit(a) == np.signbit(b), where
+    elif isinstance(a, list | tuple):
+        assert len(a) == len(b), where
+        for i, (x, y) in enumerate(zip(a, b, strict=True)):
+            _same(x, y, f"{where}[{i}]")
+    elif isinstance(a, dict):
+        assert list(a) == list(b), where
+        for k in a:
+            _same(a[k], b[k], f"{where}[{k!r}]")
+    elif dataclasses.is_dataclass(a):
+        for f in dataclasses.fields(a):
+            if f.name != "_problem":
+                _same(getattr(a, f.name), getattr(b, f.name), f"{where}.{f.name}")
+        if hasattr(a, "scale"):
+            _same(a.scale, b.scale, f"{where}.scale")
+    elif isinstance(a, Method):
+        _same(vars(a), vars(b), f"{where}.<{type(a).__name__}>")
+    else:
+        assert a == b, f"{where}: {a!r} != {b!r}"
+
+
+class TestCheckpointIsData:
+    def test_forged_pickle_checkpoint_never_runs(self, cell, tmp_path, capsys):
+        """A pickle that would run a command, in a checkpoint of the old pickle format with a valid digest and
+        checksum, or as the state or the array archive of the current format, or as the bare file: refused
+        with CheckpointError (exit 2 from the command line), and the command never runs."""
+        spec = cell[0]
+        marker = tmp_path / "ran"
+        evil = __import__("pickle").dumps(_RunsCode(marker))
+        old = _forge(tmp_path / "old", spec, evil, 1)
+        with pytest.raises(CheckpointError, match="found version 1 .a pickle, which is never loaded"):
+            read_checkpoint(old.parent)
+        assert main(["run", "--resume", str(old.parent), "--quiet"]) == 2
+        assert "found version 1" in capsys.readouterr().err
+        as_state = _forge(tmp_path / "state", spec, evil, FORMAT_VERSION, state_bytes=len(evil))
+        as_archive = _forge(tmp_path / "archive", spec, b'{"tree":null,"arrays":["|O"]}' + evil, FORMAT_VERSION,
+                            state_bytes=29)  # fmt: skip
+        bare = tmp_path / "bare" / FILENAME
+        bare.parent.mkdir()
+        bare.write_bytes(evil)
+        for path in (as_state, as_archive, bare):
+            with pytest.raises(CheckpointError):
+                read_checkpoint(path.parent)
+            assert main(["run", "--resume", str(path.parent), "--quiet"]) == 2
+        assert not marker.exists()
+
+    def test_object_arrays_are_refused(self, cell, tmp_path, monkeypatch):
+        """An archive holding an object array (which numpy would unpickle) is refused: numpy.load is called
+        with allow_pickle=False, for every checkpoint read."""
+        import io
+
+        spec = cell[0]
+        marker = tmp_path / "ran"
+        buf = io.BytesIO()
+        np.savez(buf, a0=np.array([_RunsCode(marker)], dtype=object))
+        state = b'{"tree":null,"arrays":["<f8"]}'
+        path = _forge(tmp_path / "run", spec, state + buf.getvalue(), FORMAT_VERSION, state_bytes=len(state))
+        calls = []
+        real = np.load
+
+        def load(*args, **kwargs):
+            calls.append(kwargs)
+            return real(*args, **kwargs)
+
+        monkeypatch.setattr(np, "load", load)
+        with pytest.raises(CheckpointError, match="allow_pickle=False"):
+            read_checkpoint(path.parent)
+        assert not marker.exists()
+        with pytest.raises(Interrupt):  # a real checkpoint is read the same way
+            run_fleet(spec, cell[1], checkpoint_dir=tmp_path / "real", progress=_stop_after(2))
+        read_checkpoint(tmp_path / "real")
+        assert len(calls) == 2 and all(k.get("allow_pickle") is False for k in calls)
+
+    def test_only_known_records_are_built(self, cell, tmp_path):
+        """A checkpoint whose state names a type outside the closed list (with a valid checksum) is refused."""
+        from negotiate.checkpoint import MAGIC
+
+        spec, agents, _ = cell
+        with pytest.raises(Interrupt):
+            run_fleet(spec, agents, checkpoint_dir=tmp_path / "run", progress=_stop_after(2))
+        data = (tmp_path / "run" / FILENAME).read_bytes()
+        header = json.loads(data[len(MAGIC) :].split(b"\n", 1)[0])
+        payload = data[len(MAGIC) :].split(b"\n", 1)[1]
+        state, archive = payload[: header["state_bytes"]], payload[header["state_bytes"] :]
+        state = state.replace(b'"$c":"RunState"', b'"$c":"subprocess.Popen"', 1)
+        header.pop("payload_bytes"), header.pop("payload_sha256"), header.pop("version")
+        _forge(tmp_path / "forged", spec, state + archive, FORMAT_VERSION, **{**header, "state_bytes": len(state)})
+        with pytest.raises(CheckpointError, match="unknown record type 'subprocess.Popen'"):
+            read_checkpoint(tmp_path / "forged")
+
+    @pytest.mark.parametrize("fleet, method", [("cell", "bundle"), ("cell", "newton"), ("trucks", "bundle"),
+                                               ("trucks", "gradient")])  # fmt: skip
+    def test_state_round_trips_exactly(self, cell, fleet, method):
+        """Everything a checkpoint holds comes back identical, after the start and after every round: the
+        method's state (the bundle's cuts and metric, the line-search state), the evaluations with each
+        agent's LocalResult, certificate and guard report, the warm starts, the history, and a finished
+        trial's full result."""
+        import tomllib
+
+        from negotiate.checkpoint import RunState, TrialRecord, _decode, _encode
+        from negotiate.coordinate import coordinate
+        from negotiate.fleet import parse_fleet
+
+        if fleet == "cell":
+            spec, agents, _ = cell
+        else:
+            spec = parse_fleet(tomllib.loads(TWO_TRUCKS))
+            agents = build_agents(spec)
+        settings = replace(spec.coordinator, method=method, max_rounds=6)
+        states = []
+        res = coordinate(agents, spec.resources, settings, checkpoint=states.append)
+        rec = TrialRecord({k: list(v) for k, v in res.orders.items()}, res.total, np.asarray(res.P), res)
+        assert len(states) >= 3
+        for st in states:
+            state = RunState(spec, method, [rec], (1, res.orders, st))
+            back = _decode(*_encode(state))
+            _same(state, back)
+            m = back.current[2].method
+            assert m.incumbent is None or m.incumbent.feasible is m.feasible  # shared objects stay shared
+        if fleet == "trucks":  # the start is flagged by the guard (the trucks' slots touch their bounds)
+            assert any(r.guard is not None for r in states[0].latest.reports)
+        if method == "bundle":
+            assert sum(len(c) for c in states[-1].method.cuts) > 0
+
+    def test_user_method_from_a_file_resumes_mid_trial(self, tmp_path):
+        """A method loaded from a file path is saved mid-trial through its attributes (it could not be
+        pickled), and an interrupted run resumes to the uninterrupted schedule."""
+        from negotiate.run import resolve_method
+
+        text = (EXAMPLES / "charging_depot.toml").read_text().replace("max_rounds = 60", "max_rounds = 12")
+        spec_path = tmp_path / "depot.toml"
+        spec_path.write_text(text)
+        spec = load_fleet(spec_path)
+        name = resolve_method(f"{EXAMPLES / 'custom_method.py'}:ShrinkingStep")
+        agents = build_agents(spec)
+        ref = run_fleet(spec, agents, method=name)
+        with pytest.raises(Interrupt):
+            run_fleet(spec, agents, method=name, checkpoint_dir=tmp_path / "run", progress=_stop_after(5))
+        saved = read_checkpoint(tmp_path / "run")
+        assert saved.current is not None and saved.current[2].rounds == 4
+        res = run_fleet(spec, build_agents(spec), method=name, checkpoint_dir=tmp_path / "run", resume=True)
+        assert _rel(res.coordination.P, ref.coordination.P) <= 1e-12
+        assert [h.trial_total for h in res.coordination.history] == [h.trial_total for h in ref.coordination.history]
