@@ -152,6 +152,17 @@ def _short_list(items: Sequence[str], n: int = 3) -> str:
 # sections
 
 
+def _infeasible(n: object) -> str:
+    return f" ({n} admitted no schedule and were skipped)" if isinstance(n, int) and n > 0 else ""
+
+
+def _phases(p: object) -> str:
+    """``" (build 1.2 s, ...)"`` from run.json's ``phase_times_s``; empty when absent or not numbers."""
+    if not isinstance(p, dict) or not p or not all(isinstance(v, int | float) for v in p.values()):
+        return ""
+    return " (" + ", ".join(f"{_e(str(k).replace('_', ' '))} {_sig(float(v), 2)} s" for k, v in p.items()) + ")"
+
+
 def _summary(f: RunFiles) -> str:
     s = f.summary
     st = s.get("settings", {})
@@ -161,8 +172,8 @@ def _summary(f: RunFiles) -> str:
                    f"tolerance {_e(st.get('tolerance', ''))}; at most {_e(st.get('max_rounds', ''))} rounds"),
         ("rounds", _e(s.get("rounds"))),
         ("agent solves", f"{_e(s.get('agent_solves'))} (guard probes included)"),
-        ("orders tried", _e(s.get("order_trials"))),
-        ("wall time", f"{_sig(s.get('wall_time_s', float('nan')), 2)} s"),
+        ("orders tried", _e(s.get("order_trials")) + _infeasible(s.get("order_trials_infeasible"))),
+        ("wall time", f"{_sig(s.get('wall_time_s', float('nan')), 2)} s" + _phases(s.get("phase_times_s"))),
         ("total cost (weighted)", _cost(_f(s.get("total_cost")))),
         ("total at free optima", f"{_cost(_f(s.get('free_total_cost')))} (each agent alone: a lower bound)"),
         ("cost of coordination", _cost(_f(s.get("total_cost")) - _f(s.get("free_total_cost")))),

@@ -133,6 +133,7 @@ class TestRun:
         assert skipped["total_cost"] is None
         assert "no schedule meets the orders bridge: late > early" in skipped["infeasible"]
         assert "2 order(s) tried (1 infeasible, skipped)" in text
+        assert "2 (1 admitted no schedule and were skipped)" in (out / "report.html").read_text()
         phases = summary["phase_times_s"]
         assert set(phases) == {"build", "free_optima", "order_search", "verify"}
         assert phases["build"] > 0 and abs(sum(phases.values()) - summary["wall_time_s"]) < 1e-9
