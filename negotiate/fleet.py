@@ -938,6 +938,7 @@ def build_report(
     """
     from agents import MODELS  # the model library needs CasADi; parsing does not
     from negotiate.agent import AgentModel
+    from negotiate.nlp import try_solve
 
     resources = {r.name: r for r in spec.resources}
     built: list[BuiltAgent] = []
@@ -974,7 +975,7 @@ def build_report(
             _check_model(model, resources, fail)
         if model is not None and model.start is None:
             # The solve at the free optimum warm-starts the first round (a failed one is simply not kept).
-            first = model.problem.solve(model.free_optimum)
+            first = try_solve(model.problem, model.free_optimum)
             model.start = first if first.success else None
         built.append(BuiltAgent(agent, model, time.perf_counter() - t0))
     return built, problems

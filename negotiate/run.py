@@ -21,6 +21,7 @@ import numpy as np
 from negotiate.agent import AgentModel
 from negotiate.centralized import CentralizedResult, solve_centralized
 from negotiate.coordinate import CoordinationResult, Method, RoundRecord, coordinate, register_method
+from negotiate.nlp import try_solve
 from negotiate.orders import OrderTrial, search_orders
 from negotiate.results import ScheduleRow
 from negotiate.spec import CapacityResource, FleetSpec
@@ -191,7 +192,7 @@ def run_fleet(
         free_results = executor(agents, [a.free_optimum for a in agents], [None] * len(agents))
         free = np.array([r.value for r in free_results])
     else:
-        free = np.array([a.problem.solve(a.free_optimum).value for a in agents])
+        free = np.array([try_solve(a.problem, a.free_optimum).value for a in agents])
 
     def one(
         orders: dict[str, list[str]], start: np.ndarray | None
