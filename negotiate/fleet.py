@@ -718,8 +718,30 @@ def _load(path: str | Path) -> tuple[FleetSpec, str]:
         ) from None
     except tomllib.TOMLDecodeError as exc:
         raise FleetError([Problem(source, "", None, "valid TOML", str(exc))]) from None
+    except RecursionError:  # the reader recurses once per level of nested arrays and inline tables
+        raise FleetError(
+            [Problem(source, "", None, _DEPTH_RULE, "nesting too deep for the TOML reader to follow")]
+        ) from None
     return _parse(data, source)
 
+
+MAX_DEPTH = 16
+"""Deepest nesting of tables and arrays in a fleet (the deepest the schema uses is 4, a zone's key)."""
+_DEPTH_RULE = f"tables and arrays nested at most {MAX_DEPTH} levels deep"
+
+
+def _too_deep(data: Mapping[str, Any]) -> tuple[str | int, ...] | None:
+    """Path of a value nested deeper than :data:`MAX_DEPTH` (None if there is none), found without recursion."""
+    stack: list[tuple[Any, tuple[str | int, ...]]] = [(data, ())]
+    while stack:
+        value, path = stack.pop()
+        if len(path) > MAX_DEPTH:
+            return path
+        if isinstance(value, Mapping):
+            stack.extend((v, (*path, str(k))) for k, v in value.items())
+        elif isinstance(value, list | tuple):
+            stack.extend((v, (*path, i)) for i, v in enumerate(value))
+    return None
 
 
 def parse_fleet(data: Mapping[str, Any], source: str = "<memory>") -> FleetSpec:
@@ -736,6 +758,12 @@ def _parse(data: Any, source: str) -> tuple[FleetSpec, str]:
     col = _Collector(source)
     if not isinstance(data, Mapping):
         col.add("", None, "a table of tables (fleet, resources, agents, ...)", describe(data))
+        raise FleetError(col.problems)
+    deep = _too_deep(data)
+    if deep is not None:
+        # Named by the first levels of its path; nothing below is read (it could not be checked or stored).
+        head = [p for p in deep[:3] if isinstance(p, str)] or [""]
+        col.add(table_path(*head), None, _DEPTH_RULE, f"a value nested more than {MAX_DEPTH} levels deep")
         raise FleetError(col.problems)
     _unknown_keys(col, "", data, _TOP_KEYS, what="table")
 

@@ -509,6 +509,44 @@ class TestRanges:
         assert f"{path}: {line}" in out.out + out.err and "Traceback" not in out.out + out.err
 
 
+class TestDeepNesting:
+    @pytest.mark.parametrize(
+        "text",
+        [
+            "a = " + "[" * 400 + "]" * 400,
+            "a = " + "{b = " * 400 + "1" + "}" * 400,
+            "[coordinator]\noptions = " + "{b = " * 400 + "1" + "}" * 400,
+            "[coordinator.options]\nb = " + "[" * 40 + "]" * 40,
+        ],
+        ids=["arrays", "inline-tables", "options", "options-40"],
+    )
+    def test_file_is_a_fleet_error(self, tmp_path, capsys, text):
+        """Arrays or inline tables nested 400 levels deep: a FleetError naming the file, and exit 1 from check."""
+        from negotiate.cli import main
+
+        path = tmp_path / "deep.toml"
+        path.write_text(text + "\n", encoding="utf-8")
+        with pytest.raises(FleetError) as info:
+            load_fleet(path)
+        (problem,) = info.value.problems
+        assert problem.file == str(path) and problem.expected == "tables and arrays nested at most 16 levels deep"
+        assert main(["check", str(path), "--no-build"]) == 1
+        out = capsys.readouterr()
+        assert f"{path}" in out.out + out.err and "Traceback" not in out.out + out.err
+
+    def test_deep_dictionary(self):
+        """parse_fleet of a dictionary nested 100 000 levels deep (no TOML reader involved): a FleetError."""
+        data = small_fleet()
+        deep: dict = {}
+        data["coordinator"]["options"] = {"b": deep}
+        for _ in range(100_000):
+            deep["b"] = deep = {}
+        assert problems_of(data) == [
+            "fleet.toml: [coordinator.options.b]: expected tables and arrays nested at most 16 levels deep, "
+            "found a value nested more than 16 levels deep"
+        ]
+
+
 class TestLoadFleet:
     def test_invalid_toml(self, tmp_path):
         """A TOML syntax error is a FleetError naming the file and the line."""
