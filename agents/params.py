@@ -10,18 +10,23 @@ Costs of all families are in a common unit, "J-equivalent": one joule of tractio
 of 1 costs 1. Prices and tariffs are therefore dimensionless multipliers, and every other weight is stated
 as J-equivalent per unit of what it penalises, so that the coordinator can add the agents' values.
 
-Invalid numbers (a negative mass, a zone outside the route, ...) raise :class:`ValueError` naming the field,
-the expected range and the value received.
+Every number has a documented range (field metadata ``"range"``, a :class:`Range`; list lengths under
+``"count"``): physical quantities are positive or non-negative and bounded far beyond any real vehicle,
+machine or battery, times are ``>= 0`` s, counts have maxima that keep building an agent within seconds to
+minutes on a 2-core machine. Invalid numbers (a negative mass, a zone outside the route, ...) raise
+:class:`ValueError` naming the field, the expected range and the value received.
 """
 
 from __future__ import annotations
 
 import math
+import numbers
 from dataclasses import dataclass, field, fields
 from typing import Any
 
 __all__ = [
     "STANDARD_GRAVITY",
+    "Range",
     "CapacityParams",
     "MachineParams",
     "StationParams",
@@ -34,9 +39,85 @@ __all__ = [
 STANDARD_GRAVITY = 9.80665
 
 
-def _f(default: Any, unit: str, doc: str) -> Any:
-    """A dataclass field with its SI unit and meaning in the metadata."""
-    return field(default=default, metadata={"unit": unit, "doc": doc})
+def _short(value: float) -> str:
+    """A bound as it is written in a message or a table: ``0``, ``0.1``, ``200``, ``1e6``, ``1e-6``."""
+    text = f"{value:g}"
+    return text.replace("e+0", "e").replace("e+", "e").replace("e-0", "e-")
+
+
+@dataclass(frozen=True)
+class Range:
+    """The values a number may take: from ``lo`` to ``hi``, each end included unless it is marked open.
+
+    ``str(Range(0, 1e6, lo_open=True))`` is ``"within (0, 1e6]"``, the phrase of messages and docs.
+    """
+
+    lo: float
+    hi: float
+    lo_open: bool = False
+    hi_open: bool = False
+
+    def __contains__(self, value: object) -> bool:
+        if isinstance(value, bool) or not isinstance(value, numbers.Real):
+            return False
+        above = value > self.lo if self.lo_open else value >= self.lo
+        below = value < self.hi if self.hi_open else value <= self.hi
+        return bool(above and below)  # False for NaN
+
+    @property
+    def interval(self) -> str:
+        """``"(0, 1e6]"``: the interval in the usual notation."""
+        return f"{'(' if self.lo_open else '['}{_short(self.lo)}, {_short(self.hi)}{')' if self.hi_open else ']'}"
+
+    def __str__(self) -> str:
+        return f"within {self.interval}"
+
+
+# Ranges shared by many fields. Physical bounds are generous (far beyond real equipment) but finite, so that
+# costs stay far from overflow; a time may be a clock time in s (a Unix time stamp is about 1.7e9 s).
+TIME = Range(0.0, 1e10)
+"""A point in time, s."""
+DURATION = Range(0.0, 1e10, lo_open=True)
+"""A length of time that must be positive, s."""
+COST_WEIGHT = Range(0.0, 1e12)
+"""A weight of a cost term, J-equivalent per unit of what it penalises."""
+PRICE = Range(0.0, 1e6)
+"""A price or tariff multiplier (dimensionless)."""
+FRACTION = Range(0.0, 1.0)
+EFFICIENCY = Range(0.0, 1.0, lo_open=True)
+LENGTH = Range(0.0, 1e7, lo_open=True)
+"""A position or length along a route, m (up to 10 000 km)."""
+MASS = Range(0.0, 1e7, lo_open=True)
+"""A mass, kg (up to 10 000 t)."""
+SPEED = Range(0.0, 1e3, lo_open=True)
+"""A speed, m/s."""
+ACCELERATION = Range(0.0, 100.0, lo_open=True)
+"""An acceleration, m/s^2 (about 10 g)."""
+MAX_ZONES = 4
+"""Most zones per vehicle. Building a vehicle verifies every vertex of its reachable set with a solve, and
+that set has about (vertices per zone)^zones vertices: measured on the 2-core machine at 100 stages, 4 zones
+took 212 s, 3 zones 54 s, 2 zones 6 s (5 zones: 99 s at 40 stages; 50 zones exhausted the memory)."""
+MAX_STATIONS = 20
+"""Most stations per machine."""
+MAX_STAGES = 500
+"""Most distance stages of a vehicle (building time grows faster than the square of the stages: measured on
+the 2-core machine, one zone at 100 / 200 / 400 / 500 stages: 4 / 13 / 52 / 104 s; 2400 stages took more
+than 300 s, and 1e8 stages exhausted the memory). Long horizons are a real use, so the bound is where
+building stops being practical, not where it is fast."""
+MAX_MACHINE_BLOCKS = 1000
+"""Most time blocks of a machine's rate."""
+MAX_BLOCKS = 500
+"""Most time blocks of a capacity resource (and of a capacity user's tariff)."""
+
+
+def _f(default: Any, unit: str, doc: str, rng: Range | None = None, count: Range | None = None) -> Any:
+    """A dataclass field with its SI unit, meaning, allowed range (numbers) or count (lists) in the metadata."""
+    meta: dict[str, Any] = {"unit": unit, "doc": doc}
+    if rng is not None:
+        meta["range"] = rng
+    if count is not None:
+        meta["count"] = count
+    return field(default=default, metadata=meta)
 
 
 def _check(owner: str, name: str, value: float, ok: bool, expected: str) -> None:
@@ -44,16 +125,27 @@ def _check(owner: str, name: str, value: float, ok: bool, expected: str) -> None
         raise ValueError(f"{owner}: '{name}' must be {expected}, got {value!r}")
 
 
-def _positive(owner: str, obj: Any, *names: str) -> None:
-    for name in names:
-        value = getattr(obj, name)
-        _check(owner, name, value, value > 0, "> 0")
-
-
-def _nonnegative(owner: str, obj: Any, *names: str) -> None:
-    for name in names:
-        value = getattr(obj, name)
-        _check(owner, name, value, value >= 0, ">= 0")
+def _check_ranges(owner: str, obj: Any) -> None:
+    """Every field against its metadata: ``range`` (a number, each entry of a list, ``None`` allowed where it
+    is the default) and ``count`` (the length of a list); integers must be integers."""
+    for f in fields(obj):
+        value = getattr(obj, f.name)
+        count = f.metadata.get("count")
+        if count is not None and len(value) not in count:
+            raise ValueError(
+                f"{owner}: '{f.name}' must be a list of {_short(count.lo)} to {_short(count.hi)} entries, "
+                f"got {len(value)} entries"
+            )
+        rng = f.metadata.get("range")
+        if rng is None or (value is None and f.default is None):
+            continue
+        if isinstance(value, tuple):
+            for v in value:
+                _check(owner, f.name, v, v in rng, f"made of numbers {rng}")
+        elif isinstance(f.default, int) and not isinstance(f.default, bool):
+            _check(owner, f.name, value, isinstance(value, int) and value in rng, f"an integer {rng}")
+        else:
+            _check(owner, f.name, value, value in rng, str(rng))
 
 
 def field_table(cls: type) -> list[tuple[str, str, Any, str]]:
@@ -71,67 +163,65 @@ class ZoneParams:
     """An exclusive zone on a vehicle's route (e.g. a single-lane bridge), as positions along the route."""
 
     resource: str = _f("bridge", "-", "name of the shared exclusive resource the zone belongs to")
-    entry: float = _f(900.0, "m", "route position where the vehicle's front enters the zone")
+    entry: float = _f(900.0, "m", "route position where the vehicle's front enters the zone", LENGTH)
     exit: float = _f(1100.0, "m", "route position where the zone ends; the vehicle has left it once its "
-                     "rear passes here (front at exit + vehicle length)")
-    speed_limit: float | None = _f(None, "m/s", "speed limit while on the zone; None keeps the route's limit")
+                     "rear passes here (front at exit + vehicle length)", LENGTH)
+    speed_limit: float | None = _f(None, "m/s", "speed limit while on the zone; None keeps the route's limit",
+                                   SPEED)
 
     def __post_init__(self) -> None:
         owner = f"zone {self.resource!r}"
-        _check(owner, "entry", self.entry, self.entry > 0, "> 0 (the route starts at 0 m)")
+        _check_ranges(owner, self)
         _check(owner, "exit", self.exit, self.exit > self.entry, f"> entry = {self.entry}")
-        if self.speed_limit is not None:
-            _check(owner, "speed_limit", self.speed_limit, self.speed_limit > 0, "> 0 or None")
 
 
 @dataclass(frozen=True)
 class VehicleParams:
     """A road vehicle driving a fixed route once, with exclusive zones on it (invented demo defaults)."""
 
-    route_length: float = _f(2000.0, "m", "length of the route from departure to arrival")
-    zones: tuple[ZoneParams, ...] = _f((ZoneParams(),), "-", "exclusive zones along the route, in route order")
+    route_length: float = _f(2000.0, "m", "length of the route from departure to arrival", LENGTH)
+    zones: tuple[ZoneParams, ...] = _f((ZoneParams(),), "-", "exclusive zones along the route, in route order",
+                                       count=Range(1, MAX_ZONES))
     stages: int = _f(40, "-", "number of distance stages of the discretisation (nodes are also put at every "
-                     "zone entry and exit)")
-    mass: float = _f(18000.0, "kg", "vehicle mass without payload")
-    payload: float = _f(0.0, "kg", "payload mass carried on this trip")
-    length: float = _f(12.0, "m", "vehicle length (a zone is occupied until the rear has left it)")
-    max_accel: float = _f(1.0, "m/s^2", "largest drive force per total mass")
-    max_brake: float = _f(2.0, "m/s^2", "largest braking force per total mass")
-    speed_limit: float = _f(20.0, "m/s", "speed limit on the route")
+                     "zone entry and exit)", Range(4, MAX_STAGES))
+    mass: float = _f(18000.0, "kg", "vehicle mass without payload", MASS)
+    payload: float = _f(0.0, "kg", "payload mass carried on this trip", Range(0.0, MASS.hi))
+    length: float = _f(12.0, "m", "vehicle length (a zone is occupied until the rear has left it)", Range(0.0, 1e4))
+    max_accel: float = _f(1.0, "m/s^2", "largest drive force per total mass", ACCELERATION)
+    max_brake: float = _f(2.0, "m/s^2", "largest braking force per total mass", ACCELERATION)
+    speed_limit: float = _f(20.0, "m/s", "speed limit on the route", SPEED)
     min_speed: float = _f(1.0, "m/s", "smallest speed allowed anywhere (> 0 so that the time per stage, "
-                          "ds / speed, stays finite; the vehicle never stops on the route)")
-    initial_speed: float = _f(10.0, "m/s", "speed at departure")
-    rolling_coeff: float = _f(0.007, "-", "rolling resistance coefficient C_rr (force = C_rr * m * g)")
-    drag_area: float = _f(6.0, "m^2", "aerodynamic drag area C_d * A")
-    air_density: float = _f(1.2, "kg/m^3", "density of air")
-    efficiency: float = _f(0.9, "-", "drivetrain efficiency from stored energy to traction work")
+                          "ds / speed, stays finite; the vehicle never stops on the route)", SPEED)
+    initial_speed: float = _f(10.0, "m/s", "speed at departure", SPEED)
+    rolling_coeff: float = _f(0.007, "-", "rolling resistance coefficient C_rr (force = C_rr * m * g)", FRACTION)
+    drag_area: float = _f(6.0, "m^2", "aerodynamic drag area C_d * A", Range(0.0, 1e3))
+    air_density: float = _f(1.2, "kg/m^3", "density of air", Range(0.0, 100.0))
+    efficiency: float = _f(0.9, "-", "drivetrain efficiency from stored energy to traction work", EFFICIENCY)
     traction_smoothing: float = _f(0.05, "m/s^2", "smoothing width of the positive part of the drive force "
-                                   "per mass in the energy cost (its error is at most half of it)")
-    departure: float = _f(0.0, "s", "departure time at route position 0")
-    desired_arrival: float = _f(130.0, "s", "arrival time the vehicle would like")
-    latest_arrival: float = _f(400.0, "s", "arrival deadline (hard constraint; also bounds the reachable slots)")
-    arrival_weight: float = _f(2000.0, "J/s^2", "cost weight of the squared deviation from the desired arrival")
-    comfort_weight: float = _f(20000.0, "kg*s", "cost weight of the time integral of the squared acceleration")
+                                   "per mass in the energy cost (its error is at most half of it)", ACCELERATION)
+    departure: float = _f(0.0, "s", "departure time at route position 0", TIME)
+    desired_arrival: float = _f(130.0, "s", "arrival time the vehicle would like (not before departure)", TIME)
+    latest_arrival: float = _f(400.0, "s", "arrival deadline (hard constraint; also bounds the reachable slots)",
+                               TIME)
+    arrival_weight: float = _f(2000.0, "J/s^2", "cost weight of the squared deviation from the desired arrival",
+                               Range(0.0, COST_WEIGHT.hi, lo_open=True))
+    comfort_weight: float = _f(20000.0, "kg*s", "cost weight of the time integral of the squared acceleration",
+                               COST_WEIGHT)
 
     def __post_init__(self) -> None:
         owner = "vehicle"
         object.__setattr__(self, "zones", tuple(self.zones))
-        _positive(owner, self, "route_length", "mass", "max_accel", "max_brake", "speed_limit", "min_speed",
-                  "efficiency", "traction_smoothing", "arrival_weight")
-        _nonnegative(owner, self, "payload", "length", "rolling_coeff", "drag_area", "air_density",
-                     "comfort_weight")
-        _check(owner, "stages", self.stages, isinstance(self.stages, int) and self.stages >= 4,
-               "an integer >= 4")
-        _check(owner, "efficiency", self.efficiency, self.efficiency <= 1, "<= 1")
+        _check_ranges(owner, self)
         _check(owner, "min_speed", self.min_speed, self.min_speed < self.speed_limit,
                f"< speed_limit = {self.speed_limit}")
         _check(owner, "initial_speed", self.initial_speed,
                self.min_speed <= self.initial_speed <= self.speed_limit,
                f"within [min_speed, speed_limit] = [{self.min_speed}, {self.speed_limit}]")
+        _check(owner, "desired_arrival", self.desired_arrival, self.desired_arrival >= self.departure,
+               f">= departure = {self.departure}")
         _check(owner, "latest_arrival", self.latest_arrival,
                self.latest_arrival > self.departure + self.route_length / self.speed_limit,
                "later than departure + route_length / speed_limit")
-        _check(owner, "zones", len(self.zones), len(self.zones) >= 1, "at least one zone")
         previous_exit = 0.0
         for zone in self.zones:
             if not isinstance(zone, ZoneParams):
@@ -164,48 +254,50 @@ class StationParams:
     """A shared station the finished batch must pass through (e.g. a heat-treatment furnace)."""
 
     resource: str = _f("furnace", "-", "name of the shared exclusive resource")
-    duration: float = _f(1800.0, "s", "processing time of the batch at the station (shortest slot length)")
-    transfer: float = _f(0.0, "s", "shortest time between leaving the previous step and entering this station")
+    duration: float = _f(1800.0, "s", "processing time of the batch at the station (shortest slot length)",
+                         DURATION)
+    transfer: float = _f(0.0, "s", "shortest time between leaving the previous step and entering this station",
+                         Range(0.0, DURATION.hi))
     holding_cost: float = _f(5.0, "J/s", "cost per second the batch waits before entering this station "
-                             "(after the previous step ended)")
+                             "(after the previous step ended)", COST_WEIGHT)
 
     def __post_init__(self) -> None:
-        owner = f"station {self.resource!r}"
-        _positive(owner, self, "duration")
-        _nonnegative(owner, self, "transfer", "holding_cost")
+        _check_ranges(f"station {self.resource!r}", self)
 
 
 @dataclass(frozen=True)
 class MachineParams:
     """A machine processing one batch, then handing it to shared stations in sequence (invented defaults)."""
 
-    work: float = _f(500.0, "kg", "amount of material in the batch")
-    release: float = _f(0.0, "s", "time from which the machine may work on the batch")
-    max_rate: float = _f(0.5, "kg/s", "largest processing rate")
-    power_coeff: float = _f(3.2e5, "W*s^2/kg^2", "power drawn at rate r is power_coeff * r^2")
+    work: float = _f(500.0, "kg", "amount of material in the batch", Range(0.0, 1e9, lo_open=True))
+    release: float = _f(0.0, "s", "time from which the machine may work on the batch", TIME)
+    max_rate: float = _f(0.5, "kg/s", "largest processing rate", Range(0.0, 1e6, lo_open=True))
+    power_coeff: float = _f(3.2e5, "W*s^2/kg^2", "power drawn at rate r is power_coeff * r^2",
+                            Range(0.0, 1e12, lo_open=True))
     blocks: int = _f(12, "-", "number of equal time blocks between release and finishing (the rate is "
-                     "constant within a block)")
+                     "constant within a block)", Range(1, MAX_MACHINE_BLOCKS))
     stations: tuple[StationParams, ...] = _f(
         (StationParams(), StationParams("inspection", duration=600.0, transfer=60.0, holding_cost=5.0)),
-        "-", "shared stations the batch visits after processing, in order")
-    base_price: float = _f(1.0, "-", "energy price multiplier outside the peak period")
-    peak_price: float = _f(1.8, "-", "energy price multiplier during the peak period")
-    peak_start: float = _f(1200.0, "s", "start of the peak-price period")
-    peak_end: float = _f(2400.0, "s", "end of the peak-price period")
-    price_ramp: float = _f(120.0, "s", "time scale of the smooth (logistic) change between price levels")
-    due: float = _f(5400.0, "s", "due time for leaving the last station")
-    tardiness_weight: float = _f(2.0e4, "J/s", "cost per second of lateness against the due time")
-    tardiness_smoothing: float = _f(120.0, "s", "smoothing width of the lateness (positive part)")
-    horizon: float = _f(14400.0, "s", "latest time the last station may be left (bounds the reachable slots)")
+        "-", "shared stations the batch visits after processing, in order", count=Range(1, MAX_STATIONS))
+    base_price: float = _f(1.0, "-", "energy price multiplier outside the peak period",
+                           Range(0.0, PRICE.hi, lo_open=True))
+    peak_price: float = _f(1.8, "-", "energy price multiplier during the peak period",
+                           Range(0.0, PRICE.hi, lo_open=True))
+    peak_start: float = _f(1200.0, "s", "start of the peak-price period", TIME)
+    peak_end: float = _f(2400.0, "s", "end of the peak-price period (not before its start)", TIME)
+    price_ramp: float = _f(120.0, "s", "time scale of the smooth (logistic) change between price levels", DURATION)
+    due: float = _f(5400.0, "s", "due time for leaving the last station", TIME)
+    tardiness_weight: float = _f(2.0e4, "J/s", "cost per second of lateness against the due time", COST_WEIGHT)
+    tardiness_smoothing: float = _f(120.0, "s", "smoothing width of the lateness (positive part)", DURATION)
+    horizon: float = _f(14400.0, "s", "latest time the last station may be left (bounds the reachable slots)",
+                        TIME)
 
     def __post_init__(self) -> None:
         owner = "machine"
         object.__setattr__(self, "stations", tuple(self.stations))
-        _positive(owner, self, "work", "max_rate", "power_coeff", "base_price", "peak_price", "price_ramp",
-                  "tardiness_smoothing")
-        _nonnegative(owner, self, "tardiness_weight")
-        _check(owner, "blocks", self.blocks, isinstance(self.blocks, int) and self.blocks >= 1, "an integer >= 1")
-        _check(owner, "stations", len(self.stations), len(self.stations) >= 1, "at least one station")
+        _check_ranges(owner, self)
+        _check(owner, "peak_end", self.peak_end, self.peak_end >= self.peak_start,
+               f">= peak_start = {self.peak_start}")
         for st in self.stations:
             if not isinstance(st, StationParams):
                 raise ValueError(f"machine: 'stations' must hold StationParams, got {type(st).__name__}")
@@ -227,30 +319,27 @@ class CapacityParams:
     """A battery vehicle charging from a shared grid connection over K time blocks (invented defaults)."""
 
     resource: str = _f("grid", "-", "name of the shared capacity resource")
-    start: float = _f(0.0, "s", "start of the first time block")
-    block_length: float = _f(900.0, "s", "length of each time block")
+    start: float = _f(0.0, "s", "start of the first time block", TIME)
+    block_length: float = _f(900.0, "s", "length of each time block", DURATION)
     tariff: tuple[float, ...] = _f((1.0, 1.0, 1.4, 1.6, 1.2, 0.9, 0.8, 0.8), "-",
-                                   "energy price multiplier of each block; its length is the number of blocks")
-    battery_capacity: float = _f(7.2e8, "J", "usable battery energy (7.2e8 J = 200 kWh)")
-    initial_soc: float = _f(0.3, "-", "state of charge at the start, as a fraction of battery_capacity")
-    target_soc: float = _f(0.8, "-", "state of charge wanted at the end of the last block (the deadline)")
-    charger_power: float = _f(1.5e5, "W", "largest power the charger can draw from the grid")
-    efficiency: float = _f(0.92, "-", "charging efficiency from grid energy to stored energy")
-    wear_coeff: float = _f(1.0e-6, "1/W", "battery wear cost per block is wear_coeff * power^2 * block_length")
-    shortfall_weight: float = _f(1.0e-6, "1/J", "cost of missing energy u at the deadline is weight * u^2")
+                                   "energy price multiplier of each block; its length is the number of blocks",
+                                   PRICE, count=Range(1, MAX_BLOCKS))
+    battery_capacity: float = _f(7.2e8, "J", "usable battery energy (7.2e8 J = 200 kWh)",
+                                 Range(0.0, 1e13, lo_open=True))
+    initial_soc: float = _f(0.3, "-", "state of charge at the start, as a fraction of battery_capacity", FRACTION)
+    target_soc: float = _f(0.8, "-", "state of charge wanted at the end of the last block (the deadline)",
+                           FRACTION)
+    charger_power: float = _f(1.5e5, "W", "largest power the charger can draw from the grid",
+                              Range(0.0, 1e10, lo_open=True))
+    efficiency: float = _f(0.92, "-", "charging efficiency from grid energy to stored energy", EFFICIENCY)
+    wear_coeff: float = _f(1.0e-6, "1/W", "battery wear cost per block is wear_coeff * power^2 * block_length",
+                           COST_WEIGHT)
+    shortfall_weight: float = _f(1.0e-6, "1/J", "cost of missing energy u at the deadline is weight * u^2",
+                                 Range(0.0, COST_WEIGHT.hi, lo_open=True))
 
     def __post_init__(self) -> None:
-        owner = "capacity user"
         object.__setattr__(self, "tariff", tuple(float(c) for c in self.tariff))
-        _positive(owner, self, "block_length", "battery_capacity", "charger_power", "efficiency",
-                  "shortfall_weight")
-        _nonnegative(owner, self, "wear_coeff")
-        _check(owner, "tariff", len(self.tariff), len(self.tariff) >= 1, "at least one block")
-        for c in self.tariff:
-            _check(owner, "tariff", c, c >= 0, "made of prices >= 0")
-        _check(owner, "efficiency", self.efficiency, self.efficiency <= 1, "<= 1")
-        _check(owner, "initial_soc", self.initial_soc, 0 <= self.initial_soc <= 1, "within [0, 1]")
-        _check(owner, "target_soc", self.target_soc, 0 <= self.target_soc <= 1, "within [0, 1]")
+        _check_ranges("capacity user", self)
 
     @property
     def blocks(self) -> int:

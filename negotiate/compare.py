@@ -25,6 +25,7 @@ from negotiate.agent import AgentModel
 from negotiate.centralized import CentralizedResult, solve_centralized
 from negotiate.coordinate import CoordinationResult, RoundRecord, coordinate, method_names
 from negotiate.coupling import build_feasible_set, fcfs_orders
+from negotiate.nlp import try_solve
 from negotiate.spec import FleetSpec
 
 __all__ = ["COMPARE_COLUMNS", "Comparison", "MethodRow", "compare_methods", "write_comparison"]
@@ -115,7 +116,7 @@ def compare_methods(
     if unknown:
         raise ValueError(f"unknown coordination method(s) {unknown}; expected some of {method_names()}")
     for a in agents:  # build the warm-start solvers before any timing
-        a.problem.solve(a.free_optimum, warm=a.problem.solve(a.free_optimum))
+        try_solve(a.problem, a.free_optimum, warm=try_solve(a.problem, a.free_optimum))
     orders = fcfs_orders(agents, spec.resources)
     results: dict[str, CoordinationResult] = {}
     errors: dict[str, tuple[float, str]] = {}

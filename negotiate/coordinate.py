@@ -36,8 +36,8 @@ import numpy as np
 
 from negotiate.agent import AgentModel
 from negotiate.coupling import FeasibleSet, build_feasible_set, fcfs_orders
-from negotiate.executor import AgentOutcome, Executor, InProcessExecutor
-from negotiate.guard import GuardReport, guard
+from negotiate.executor import AgentOutcome, Executor, InProcessExecutor, evaluate_agent
+from negotiate.guard import GuardReport
 from negotiate.kkt import Certificate
 from negotiate.nlp import LocalResult
 from negotiate.spec import CoordinatorSettings, Resource
@@ -285,16 +285,13 @@ class Oracle:
                 self.agents, parts, warm, use_guard=self.use_guard, want_hessian=self.want_hessian
             )
         results = self.executor(self.agents, parts, warm)
-        outs = []
-        for a, res, w in zip(self.agents, results, warm, strict=True):
-            rep = guard(a.problem, res, w) if self.use_guard else None
-            hess = None
-            cert = res.certificate
-            if self.want_hessian and res.success and cert is not None and cert.verdict == "smooth":
-                sens = res.sensitivity()
-                hess = sens.value_hessian if sens.available else None
-            outs.append(AgentOutcome(res, rep, hess, 1 + (rep.solves if rep is not None else 0)))
-        return outs
+        # The callable's answers are checked and completed (guard, Hessian) as an executor's would be.
+        return [
+            evaluate_agent(
+                a.problem, p, w, use_guard=self.use_guard, want_hessian=self.want_hessian, result=res
+            )
+            for a, p, w, res in zip(self.agents, parts, warm, results, strict=True)
+        ]
 
     def __call__(self, P: np.ndarray) -> Evaluation:
         parts = self.feasible.layout.split(P)

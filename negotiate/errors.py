@@ -4,7 +4,7 @@ A fleet file can hold many mistakes at once; the parser collects all of them bef
 one run shows everything to fix. :class:`FleetError` carries them as :class:`Problem` records (file, table
 path, key, what was expected, what was found); its text lists them one per line::
 
-    fleet.toml: [agents.truck-03] key 'mass': expected a number > 0 (kg), found -5
+    fleet.toml: [agents.truck-03] key 'mass': expected a number within (0, 1e7] (kg), found -5
 
 ``FleetError`` subclasses :class:`ValueError`, so callers may catch either. Numerical failures of a solve
 are not exceptions (they are a status in a result); only a fleet that cannot even be built -- an agent whose

@@ -58,7 +58,7 @@ from typing import TYPE_CHECKING, Any, ClassVar
 import numpy as np
 
 from negotiate.guard import MAX_PROBED_ROWS, GuardReport, guard
-from negotiate.nlp import LocalResult, ParametricNLP
+from negotiate.nlp import LocalResult, ParametricNLP, screen_result, try_solve
 from negotiate.spec import AgentSpec, FleetSpec
 from negotiate.status import Status
 
@@ -113,18 +113,31 @@ def evaluate_agent(
     *,
     use_guard: bool = False,
     want_hessian: bool = False,
+    result: LocalResult | None = None,
 ) -> AgentOutcome:
     """Solve one agent and, when asked, probe it with the guard and compute its value Hessian.
 
     ``warm`` is the agent's previous converged result: the solver starts from it and the guard compares
-    active sets with it. Every executor calls this function where the agent's solver lives.
+    active sets with it. Every executor calls this function where the agent's solver lives; ``result`` is an
+    answer already at hand (from a plain executor callable), checked and completed here instead of a solve.
+
+    Any agent answers here, built-in or user-written: an exception raised by its code (the solve, the guard's
+    probes, the Hessian) makes the answer a ``failed`` result whose message names the exception's type and
+    text, and a result claiming a solution whose value or gradient is not finite is ``failed`` too
+    (:func:`negotiate.nlp.try_solve`). A value Hessian that is not finite is not passed on.
     """
-    res = problem.solve(p, warm=warm)
-    rep = guard(problem, res, warm) if use_guard else None
-    hess = None
-    if want_hessian and res.success and res.certificate is not None and res.certificate.verdict == "smooth":
-        sens = problem.sensitivity(res)
-        hess = sens.value_hessian if sens.available else None
+    res = try_solve(problem, p, warm) if result is None else screen_result(problem, p, result)
+    try:
+        rep = guard(problem, res, warm) if use_guard else None
+        hess = None
+        if want_hessian and res.success and res.certificate is not None and res.certificate.verdict == "smooth":
+            sens = problem.sensitivity(res)
+            hess = sens.value_hessian if sens.available else None
+            if hess is not None and not np.all(np.isfinite(hess)):
+                hess = None
+    except Exception as exc:  # noqa: BLE001 - user code: any exception is a failed answer of this agent
+        res = LocalResult.failure(problem, p, f"the agent raised {type(exc).__name__}: {exc} (after its solve)")
+        return AgentOutcome(res, None, None, 1)
     return AgentOutcome(res, rep, hess, 1 + (rep.solves if rep is not None else 0))
 
 

@@ -39,11 +39,26 @@ from dataclasses import MISSING, dataclass, fields
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from agents.params import CapacityParams, MachineParams, StationParams, VehicleParams, ZoneParams
+from agents.params import (
+    DURATION,
+    MAX_BLOCKS,
+    TIME,
+    CapacityParams,
+    MachineParams,
+    Range,
+    StationParams,
+    VehicleParams,
+    ZoneParams,
+)
 from negotiate.errors import FleetError, Problem, describe, table_path
 from negotiate.spec import (
+    BLOCK_LIMIT,
+    GAP,
+    MAX_ROUNDS,
     METHODS,
     ORDER_RULES,
+    TOLERANCE,
+    WEIGHT,
     AgentSpec,
     CapacityResource,
     CoordinatorSettings,
@@ -107,6 +122,7 @@ class _Key:
     doc: str
     choices: tuple[str, ...] = ()
     record: type | None = None  # for kind "tables": the record of each entry
+    allowed: str = ""  # the allowed values (range of a number, entries of a list), for the docs
 
 
 def _spec_default(cls: type, name: str) -> Any:
@@ -132,6 +148,7 @@ _EXCLUSIVE_KEYS = (
         "s",
         _spec_default(ExclusiveResource, "gap"),
         "smallest time between one user's exit and the next user's entry (headway or changeover)",
+        allowed=GAP.interval,
     ),
 )
 _CAPACITY_KEYS = (
@@ -142,9 +159,12 @@ _CAPACITY_KEYS = (
         "W",
         REQUIRED,
         "limit of the summed shares in each time block; its length is the number of blocks",
+        allowed=f"each {BLOCK_LIMIT.interval}; 1 to {MAX_BLOCKS} entries",
     ),
-    _Key("start", "number", "s", _spec_default(CapacityResource, "start"), "start of the first block"),
-    _Key("block_length", "number", "s", _spec_default(CapacityResource, "block_length"), "length of each block"),
+    _Key("start", "number", "s", _spec_default(CapacityResource, "start"), "start of the first block",
+         allowed=TIME.interval),
+    _Key("block_length", "number", "s", _spec_default(CapacityResource, "block_length"), "length of each block",
+         allowed=DURATION.interval),
     _Key(
         "unit",
         "string",
@@ -169,6 +189,7 @@ _COORDINATOR_KEYS = (
         "-",
         _spec_default(CoordinatorSettings, "max_rounds"),
         "largest number of coordination rounds (one round = one solve of every agent)",
+        allowed=MAX_ROUNDS.interval,
     ),
     _Key(
         "tolerance",
@@ -176,6 +197,7 @@ _COORDINATOR_KEYS = (
         "-",
         _spec_default(CoordinatorSettings, "tolerance"),
         "stopping tolerance, relative to max(1, |total cost|)",
+        allowed=TOLERANCE.interval,
     ),
     _Key(
         "order",
@@ -203,7 +225,7 @@ _AGENT_KEYS = (
         'model family ("vehicle", "machine", "capacity") or "package.module:function" of a user-written '
         "builder (imported and run by build_agents)",
     ),
-    _Key("weight", "number", "-", 1.0, "weight of the agent's cost in the fleet total (> 0)"),
+    _Key("weight", "number", "-", 1.0, "weight of the agent's cost in the fleet total", allowed=WEIGHT.interval),
 )
 
 # Fleet-file rules that differ from the records' own defaults: keys that must be written (the records'
@@ -219,6 +241,18 @@ _REQUIRED_IN_FILE: dict[type, frozenset[str]] = {
 _INHERITED: dict[type, frozenset[str]] = {CapacityParams: frozenset({"start", "block_length"})}
 _RESOURCE_KIND: dict[type, str] = {ZoneParams: "exclusive", StationParams: "exclusive", CapacityParams: "capacity"}
 _NESTED_NAMES: dict[type, str] = {ZoneParams: "zone", StationParams: "station"}
+
+
+def _allowed(meta: Mapping[str, Any]) -> str:
+    """The allowed values of a record field, from its ``range`` and ``count`` metadata (for the docs)."""
+    rng: Range | None = meta.get("range")
+    count: Range | None = meta.get("count")
+    parts = []
+    if rng is not None:
+        parts.append(("each " if count is not None else "") + rng.interval)
+    if count is not None:
+        parts.append(f"1 to {count.hi:g} entries" if count.lo == 1 else f"{count.lo:g} to {count.hi:g} entries")
+    return "; ".join(parts)
 
 
 @functools.cache
@@ -254,7 +288,8 @@ def _record_keys(cls: type) -> tuple[_Key, ...]:
         doc = f.metadata.get("doc", "")
         if cls is CapacityParams and f.name == "tariff":
             doc += " and must equal the resource's; one number means that price in every block of the resource"
-        keys.append(_Key(f.name, kind, f.metadata.get("unit", "-"), default, doc, record=record))
+        keys.append(_Key(f.name, kind, f.metadata.get("unit", "-"), default, doc, record=record,
+                         allowed=_allowed(f.metadata)))  # fmt: skip
     return tuple(keys)
 
 
@@ -415,7 +450,7 @@ def _record_problem(message: str, unit_of: Mapping[str, str]) -> tuple[str, str,
     elif exp.startswith("made of"):
         exp = "a list " + exp
     unit = unit_of.get(key, "-")
-    if unit and unit != "-" and not exp.endswith(f" {unit}"):
+    if unit and unit != "-" and not exp.endswith((f" {unit}", " entries")):
         exp += f" ({unit})"
     return m["owner"], key, exp, m["got"]
 
@@ -683,7 +718,30 @@ def _load(path: str | Path) -> tuple[FleetSpec, str]:
         ) from None
     except tomllib.TOMLDecodeError as exc:
         raise FleetError([Problem(source, "", None, "valid TOML", str(exc))]) from None
+    except RecursionError:  # the reader recurses once per level of nested arrays and inline tables
+        raise FleetError(
+            [Problem(source, "", None, _DEPTH_RULE, "nesting too deep for the TOML reader to follow")]
+        ) from None
     return _parse(data, source)
+
+
+MAX_DEPTH = 16
+"""Deepest nesting of tables and arrays in a fleet (the deepest the schema uses is 4, a zone's key)."""
+_DEPTH_RULE = f"tables and arrays nested at most {MAX_DEPTH} levels deep"
+
+
+def _too_deep(data: Mapping[str, Any]) -> tuple[str | int, ...] | None:
+    """Path of a value nested deeper than :data:`MAX_DEPTH` (None if there is none), found without recursion."""
+    stack: list[tuple[Any, tuple[str | int, ...]]] = [(data, ())]
+    while stack:
+        value, path = stack.pop()
+        if len(path) > MAX_DEPTH:
+            return path
+        if isinstance(value, Mapping):
+            stack.extend((v, (*path, str(k))) for k, v in value.items())
+        elif isinstance(value, list | tuple):
+            stack.extend((v, (*path, i)) for i, v in enumerate(value))
+    return None
 
 
 def parse_fleet(data: Mapping[str, Any], source: str = "<memory>") -> FleetSpec:
@@ -700,6 +758,12 @@ def _parse(data: Any, source: str) -> tuple[FleetSpec, str]:
     col = _Collector(source)
     if not isinstance(data, Mapping):
         col.add("", None, "a table of tables (fleet, resources, agents, ...)", describe(data))
+        raise FleetError(col.problems)
+    deep = _too_deep(data)
+    if deep is not None:
+        # Named by the first levels of its path; nothing below is read (it could not be checked or stored).
+        head = [p for p in deep[:3] if isinstance(p, str)] or [""]
+        col.add(table_path(*head), None, _DEPTH_RULE, f"a value nested more than {MAX_DEPTH} levels deep")
         raise FleetError(col.problems)
     _unknown_keys(col, "", data, _TOP_KEYS, what="table")
 
@@ -784,7 +848,8 @@ def _parse_resources(col: _Collector, table: dict[str, Any] | None) -> dict[str,
                 col.add(path, None, f"a valid {kind} resource", str(exc))
             else:
                 _owner, key, exp, got = parsed
-                col.add(path, key, exp, describe(t[key]) if key in t else got)
+                # A list is named by the record's own words (its bad entry or its length), not in full.
+                col.add(path, key, exp, describe(t[key]) if key in t and not isinstance(t[key], list) else got)
     return out
 
 
@@ -894,10 +959,11 @@ def _parse_agent(
     weight = 1.0
     if "weight" in merged:
         w = merged.pop("weight")
-        if w.value > 0:
+        if w.value in WEIGHT:
             weight = w.value
         else:
-            col.add(w.table, "weight", "a number > 0", describe(w.raw))
+            found = describe(w.raw) + ("" if w.table == path else f" (set in [{w.table}])")
+            col.add(path, "weight", f"a number {WEIGHT}", found)
     if keys is None:
         if len(col.problems) > n_before:
             return None
@@ -938,6 +1004,7 @@ def build_report(
     """
     from agents import MODELS  # the model library needs CasADi; parsing does not
     from negotiate.agent import AgentModel
+    from negotiate.nlp import try_solve
 
     resources = {r.name: r for r in spec.resources}
     built: list[BuiltAgent] = []
@@ -974,7 +1041,7 @@ def build_report(
             _check_model(model, resources, fail)
         if model is not None and model.start is None:
             # The solve at the free optimum warm-starts the first round (a failed one is simply not kept).
-            first = model.problem.solve(model.free_optimum)
+            first = try_solve(model.problem, model.free_optimum)
             model.start = first if first.success else None
         built.append(BuiltAgent(agent, model, time.perf_counter() - t0))
     return built, problems
@@ -1097,10 +1164,11 @@ def _type_text(key: _Key) -> str:
 
 
 def _key_table(keys: tuple[_Key, ...]) -> list[str]:
-    lines = ["| key | type | unit | default | meaning |", "|---|---|---|---|---|"]
+    lines = ["| key | type | unit | default | allowed | meaning |", "|---|---|---|---|---|---|"]
     for k in keys:
         doc = k.doc.replace("|", "\\|")
-        lines.append(f"| `{k.name}` | {_type_text(k)} | {k.unit} | {_default_text(k)} | {doc} |")
+        allowed = k.allowed or "-"
+        lines.append(f"| `{k.name}` | {_type_text(k)} | {k.unit} | {_default_text(k)} | {allowed} | {doc} |")
     return lines
 
 

@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from negotiate.kkt import ConstraintRef
-from negotiate.nlp import LocalResult, ParametricNLP
+from negotiate.nlp import LocalResult, ParametricNLP, try_solve
 
 __all__ = ["GuardReport", "guard"]
 
@@ -88,7 +88,7 @@ def guard(problem: ParametricNLP, result: LocalResult, previous: LocalResult | N
     solves = 0
     for ref in rows:
         for kw in ({"hold": [ref]}, {"release": [ref]}):
-            r = problem.solve(result.p, warm=result, **kw)  # type: ignore[arg-type]
+            r = try_solve(problem, result.p, warm=result, **kw)  # a probe that raises gives no gradient
             solves += 1
             # A piece's gradient only counts if its value matches (the re-solve found the same point).
             if (

@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import casadi as ca
@@ -37,7 +37,7 @@ from negotiate.kkt import (
 from negotiate.sensitivity import Sensitivity, solve_sensitivity
 from negotiate.status import SOLUTION_PRESENT, Status, from_ipopt
 
-__all__ = ["LocalResult", "ParametricNLP"]
+__all__ = ["LocalResult", "ParametricNLP", "screen_result", "try_solve"]
 
 _IPOPT_QUIET = {"ipopt.print_level": 0, "ipopt.sb": "yes", "print_time": False}
 _IPOPT_WARM = {
@@ -63,7 +63,9 @@ class LocalResult:
         Optimal value ``V(p)`` (``nan`` when no point was found).
     gradient : numpy.ndarray or None
         ``dV/dp = partial_p L`` at the KKT point, so that ``V(p + d) ~ V(p) + gradient @ d``. ``None``
-        unless ``status`` is ``converged``: a failed solve never yields a number.
+        unless ``status`` is ``converged``: a failed solve never yields a number. A converged result's value
+        and gradient are finite (a solve whose value or gradient is not, e.g. a cost ``sqrt(p)`` at
+        ``p = 0``, is ``failed``, its message naming the quantity).
     x : numpy.ndarray
         Primal point (polished when the polish was accepted).
     lam_g, lam_x : numpy.ndarray
@@ -106,6 +108,16 @@ class LocalResult:
     def success(self) -> bool:
         """Whether the point is a certified-converged KKT point (a gradient is present)."""
         return self.status in SOLUTION_PRESENT
+
+    @classmethod
+    def failure(cls, problem: ParametricNLP, p: Any, message: str, status: Status = Status.FAILED) -> LocalResult:
+        """A result without a point (value, primal point and multipliers NaN) saying why: ``message``."""
+        n_x, n_g = int(getattr(problem, "n_x", 0)), int(getattr(problem, "n_g", 0))
+        nan_x, nan_g = np.full(n_x, np.nan), np.full(n_g, np.nan)
+        p = np.asarray(p, dtype=float).ravel()
+        return cls(
+            p, np.nan, None, nan_x, nan_g, nan_x.copy(), nan_g.copy(), status, message, 0, 0.0, 0.0, None, problem
+        )  # fmt: skip
 
     def sensitivity(self) -> Sensitivity:
         """dx*/dp, multiplier derivatives and the Hessian of V, where the certificate allows them."""
@@ -550,24 +562,7 @@ class ParametricNLP:
             stats = solver.stats()
             raw = str(stats.get("return_status", "unknown"))
         except RuntimeError as exc:  # evaluation errors surface as exceptions in some CasADi paths
-            elapsed = time.perf_counter() - t0
-            nan_x = np.full(self.n_x, np.nan)
-            return LocalResult(
-                p,
-                np.nan,
-                None,
-                nan_x,
-                np.full(self.n_g, np.nan),
-                nan_x.copy(),
-                np.full(self.n_g, np.nan),
-                Status.FAILED,
-                f"solver raised: {exc}",
-                0,
-                elapsed,
-                0.0,
-                None,
-                self,
-            )
+            return replace(LocalResult.failure(self, p, f"solver raised: {exc}"), solve_time=time.perf_counter() - t0)
         solve_time = time.perf_counter() - t0
         status = from_ipopt(raw)
         iterations = int(stats.get("iter_count", 0))
@@ -577,7 +572,12 @@ class ParametricNLP:
         if status not in (Status.CONVERGED, Status.INACCURATE) or not np.all(np.isfinite(x)):
             g = np.asarray(out["g"]).ravel()
             value = float(out["f"])
-            return LocalResult(p, value, None, x, lam_g, lam_x, g, status, raw, iterations, solve_time, 0.0, None, self)
+            message = raw
+            if status in (Status.CONVERGED, Status.INACCURATE):  # a point that is not a number is no point
+                status, message = Status.FAILED, f"{raw}; re-check failed: {_not_finite('x', x, self.x_names)}"
+            return LocalResult(
+                p, value, None, x, lam_g, lam_x, g, status, message, iterations, solve_time, 0.0, None, self
+            )  # fmt: skip
 
         t1 = time.perf_counter()
         tol = self.tolerances
@@ -597,7 +597,10 @@ class ParametricNLP:
                 cross_derivative=lambda: self._cross(pt.x, p, pt.lam_g)[0],
             )
         message = raw
-        if status is Status.CONVERGED and (cert.stationarity > tol.stationarity or cert.feasibility > tol.feasibility):
+        # Written so that a NaN residual fails the re-check too.
+        if status is Status.CONVERGED and not (
+            cert.stationarity <= tol.stationarity and cert.feasibility <= tol.feasibility
+        ):
             status = Status.INACCURATE
             message = (
                 f"{raw}; re-check failed: stationarity {cert.stationarity:.2e} (tolerance {tol.stationarity:.0e}), "
@@ -605,7 +608,7 @@ class ParametricNLP:
             )
         gradient = pt.grad_p.copy() if status is Status.CONVERGED else None
         certify_time = time.perf_counter() - t1
-        return LocalResult(
+        result = LocalResult(
             p,
             pt.f,
             gradient,
@@ -621,6 +624,7 @@ class ParametricNLP:
             cert,
             self,
         )
+        return _screened(result)
 
     def _continue(self, p: np.ndarray, warm: LocalResult) -> LocalResult | None:
         """Continuation of a smooth warm start: Newton's method on the KKT equalities of the warm point's
@@ -658,6 +662,8 @@ class ParametricNLP:
             return None
         ok = (
             cert.verdict == "smooth"
+            and np.isfinite(pt.f)
+            and bool(np.all(np.isfinite(pt.grad_p)))
             and cert.stationarity <= tol.stationarity
             and cert.feasibility <= tol.feasibility
             and {str(r) for r in cert.strictly_active} == {str(r) for r in cert0.strictly_active}
@@ -695,3 +701,69 @@ class ParametricNLP:
 
     def __repr__(self) -> str:
         return f"ParametricNLP(name={self.name!r}, n_x={self.n_x}, n_p={self.n_p}, n_g={self.n_g})"
+
+
+def _not_finite(what: str, values: np.ndarray, names: Sequence[str]) -> str:
+    """``"gradient not finite: dV/d(share) = inf"``: the first entries of ``values`` that are not finite."""
+    bad = np.flatnonzero(~np.isfinite(values))
+    label = "dV/d({})" if what == "gradient" else "{}"
+    shown = ", ".join(
+        f"{label.format(names[i] if i < len(names) else f'[{i}]')} = {values[i]}" for i in bad[:3]
+    ) + (f" and {bad.size - 3} more" if bad.size > 3 else "")
+    return f"{what} not finite: {shown}"
+
+
+def _screened(res: LocalResult) -> LocalResult:
+    """``res``, or -- when it claims a solution whose value or gradient is not a finite number (of the
+    parameters' shape) -- a ``failed`` copy without gradient or certificate, its message naming the quantity.
+
+    The coordinator's QPs take values and gradients as they come; an ``inf`` there is no failed agent but a
+    failed run. :meth:`ParametricNLP.solve` screens its own answers, :func:`try_solve` those of any agent.
+    """
+    if not res.success:
+        return res if res.gradient is None else replace(res, gradient=None)
+    names = res._problem.p_names if isinstance(res._problem, ParametricNLP) else ()
+    try:
+        value = float(res.value)
+        grad = None if res.gradient is None else np.asarray(res.gradient, dtype=float)
+    except (TypeError, ValueError) as exc:
+        why = f"value or gradient not a number ({exc})"
+    else:
+        p_shape = np.shape(res.p)
+        if not np.isfinite(value):
+            why = f"value not finite: V = {value}"
+        elif grad is None:
+            why = "no gradient"
+        elif grad.shape != p_shape:
+            why = f"gradient of shape {grad.shape}, expected {p_shape}"
+        elif not np.all(np.isfinite(grad)):
+            why = _not_finite("gradient", grad, names)
+        else:
+            return res
+    return replace(
+        res, gradient=None, certificate=None, status=Status.FAILED, message=f"{res.message}; re-check failed: {why}"
+    )
+
+
+def screen_result(problem: ParametricNLP, p: Any, result: Any) -> LocalResult:
+    """An agent's answer at ``p`` as the coordinator may use it: ``result`` when it is a sound
+    :class:`LocalResult`; a ``failed`` one, its message saying why, when it is not a LocalResult or claims a
+    solution whose value or gradient is not finite (see :func:`try_solve`)."""
+    if not isinstance(result, LocalResult):
+        return LocalResult.failure(problem, p, f"the solve returned a {type(result).__name__}, not a LocalResult")
+    return _screened(result)
+
+
+def try_solve(problem: ParametricNLP, p: Any, warm: LocalResult | None = None, **kwargs: Any) -> LocalResult:
+    """``problem.solve(p, warm=warm, **kwargs)`` for any agent, built-in or user-written, as a result always.
+
+    An exception raised by the solve (a user model's code) becomes a ``failed`` result whose message names
+    the exception's type and text; a result that claims a solution whose value or gradient is not finite
+    becomes ``failed`` too (never a gradient). Every place that solves an agent for the coordinator goes
+    through here, so a faulty agent is a failed agent, never a failed run.
+    """
+    try:
+        res = problem.solve(p, warm=warm, **kwargs)
+    except Exception as exc:  # noqa: BLE001 - user code: any exception of a solve is a failed solve
+        return LocalResult.failure(problem, p, f"the solve raised {type(exc).__name__}: {exc}")
+    return screen_result(problem, p, res)

@@ -32,6 +32,7 @@ from negotiate.agent import AgentModel
 from negotiate.centralized import CentralizedResult, solve_centralized
 from negotiate.checkpoint import FILENAME as CHECKPOINT_FILE
 from negotiate.coordinate import CoordinationResult, Method, RoundRecord, coordinate, register_method
+from negotiate.nlp import try_solve
 from negotiate.orders import OrderTrial, search_orders
 from negotiate.results import SCHEDULE_COLUMNS, RunFolderError, ScheduleRow, write_result_files
 from negotiate.spec import CapacityResource, FleetSpec
@@ -244,7 +245,7 @@ def run_fleet(
         free_results = executor(agents, [a.free_optimum for a in agents], [None] * len(agents))
         free = np.array([r.value for r in free_results])
     else:
-        free = np.array([a.problem.solve(a.free_optimum).value for a in agents])
+        free = np.array([try_solve(a.problem, a.free_optimum).value for a in agents])
     t2 = time.perf_counter()
     phases["free_optima"] = t2 - t1
     coordinated = 0  # order trials handed to the coordinator so far

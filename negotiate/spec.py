@@ -7,11 +7,17 @@ NLPs from them is the model library's job.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
+from agents.params import DURATION, MAX_BLOCKS, TIME, Range
+
 __all__ = [
+    "BLOCK_LIMIT",
+    "GAP",
+    "MAX_ROUNDS",
+    "TOLERANCE",
+    "WEIGHT",
     "AgentSpec",
     "CapacityResource",
     "CoordinatorSettings",
@@ -30,6 +36,23 @@ ORDER_RULES = ("fcfs", "swap", "exhaustive")
 that followed by improving neighbour swaps, or exhaustive search (small resources only)."""
 
 
+GAP = Range(0.0, DURATION.hi)
+"""Allowed gap (headway, changeover) of an exclusive resource, s."""
+BLOCK_LIMIT = Range(0.0, 1e12)
+"""Allowed limit of a capacity block, in the resource's unit (W for power: up to 1 TW)."""
+MAX_ROUNDS = Range(1, 10_000)
+"""Allowed ``max_rounds`` of the coordinator."""
+TOLERANCE = Range(0.0, 0.1, lo_open=True, hi_open=True)
+"""Allowed stopping tolerance (relative): a tolerance of 0.1 or more would stop before any real progress."""
+WEIGHT = Range(0.0, 1e6, lo_open=True)
+"""Allowed weight of an agent's cost in the fleet total (dimensionless)."""
+
+
+def _check(owner: str, name: str, value: Any, ok: bool, expected: str) -> None:
+    if not ok:
+        raise ValueError(f"{owner}: '{name}' must be {expected}, got {value!r}")
+
+
 @dataclass(frozen=True)
 class ExclusiveResource:
     """A resource used by one agent at a time (a single-lane bridge, a furnace, a crossing).
@@ -46,8 +69,7 @@ class ExclusiveResource:
     gap: float = 0.0
 
     def __post_init__(self) -> None:
-        if not (isinstance(self.gap, int | float) and math.isfinite(self.gap) and self.gap >= 0):
-            raise ValueError(f"resource {self.name!r}: 'gap' must be a finite number >= 0 s, got {self.gap!r}")
+        _check(f"resource {self.name!r}", "gap", self.gap, self.gap in GAP, str(GAP))
 
 
 @dataclass(frozen=True)
@@ -77,13 +99,15 @@ class CapacityResource:
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "limits", tuple(float(v) for v in self.limits))
-        if not self.limits or any(not math.isfinite(v) or v < 0 for v in self.limits):
+        owner = f"resource {self.name!r}"
+        if not 1 <= len(self.limits) <= MAX_BLOCKS:
             raise ValueError(
-                f"resource {self.name!r}: 'limits' must be a non-empty list of finite numbers >= 0, "
-                f"got {list(self.limits)!r}"
+                f"{owner}: 'limits' must be a list of 1 to {MAX_BLOCKS} entries, got {len(self.limits)} entries"
             )
-        if not (math.isfinite(self.block_length) and self.block_length > 0):
-            raise ValueError(f"resource {self.name!r}: 'block_length' must be > 0 s, got {self.block_length!r}")
+        bad = [v for v in self.limits if v not in BLOCK_LIMIT]
+        _check(owner, "limits", bad[0] if bad else None, not bad, f"made of numbers {BLOCK_LIMIT}")
+        _check(owner, "start", self.start, self.start in TIME, str(TIME))
+        _check(owner, "block_length", self.block_length, self.block_length in DURATION, str(DURATION))
 
     @property
     def blocks(self) -> int:
@@ -122,10 +146,9 @@ class CoordinatorSettings:
     options: dict[str, Any] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
-        if not (isinstance(self.max_rounds, int) and self.max_rounds >= 1):
-            raise ValueError(f"coordinator: 'max_rounds' must be an integer >= 1, got {self.max_rounds!r}")
-        if not (isinstance(self.tolerance, int | float) and self.tolerance > 0):
-            raise ValueError(f"coordinator: 'tolerance' must be a number > 0, got {self.tolerance!r}")
+        rounds_ok = isinstance(self.max_rounds, int) and self.max_rounds in MAX_ROUNDS
+        _check("coordinator", "max_rounds", self.max_rounds, rounds_ok, f"an integer {MAX_ROUNDS}")
+        _check("coordinator", "tolerance", self.tolerance, self.tolerance in TOLERANCE, str(TOLERANCE))
         if self.order not in ORDER_RULES:
             raise ValueError(f"coordinator: 'order' must be one of {list(ORDER_RULES)}, got {self.order!r}")
 

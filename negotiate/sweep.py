@@ -21,7 +21,7 @@ from pathlib import Path
 import numpy as np
 
 from negotiate.agent import AgentModel
-from negotiate.nlp import LocalResult, ParametricNLP
+from negotiate.nlp import LocalResult, ParametricNLP, try_solve
 from negotiate.spec import FleetSpec
 
 __all__ = ["SweepResult", "sweep_agent", "sweep_fleet", "sweep_problem", "write_sweep"]
@@ -132,7 +132,7 @@ def sweep_problem(
     for v in values:
         p = base.copy()
         p[index] = v
-        res = problem.solve(p, warm=warm)
+        res = try_solve(problem, p, warm=warm)
         results.append(res)
         if res.success:
             warm = res

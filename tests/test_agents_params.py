@@ -48,7 +48,7 @@ class TestRecords:
 
     def test_negative_mass_message(self):
         """Messages name the field, the expected range and the value received."""
-        with pytest.raises(ValueError, match=r"vehicle: 'mass' must be > 0, got -1.0"):
+        with pytest.raises(ValueError, match=r"vehicle: 'mass' must be within \(0, 1e7\], got -1.0"):
             VehicleParams(mass=-1.0)
 
 

@@ -208,5 +208,5 @@ class TestParams:
 
     def test_min_speed_positive(self):
         """min_speed must be > 0 (stage times ds / v stay finite)."""
-        with pytest.raises(ValueError, match="'min_speed' must be > 0, got 0.0"):
+        with pytest.raises(ValueError, match=r"'min_speed' must be within \(0, 1000\], got 0.0"):
             VehicleParams(min_speed=0.0)

@@ -146,7 +146,7 @@ class TestProblems:
         assert str(res.error).splitlines() == [
             f"{path}: [agents.truck-03.zones[0]] key 'resource': expected the name of a declared exclusive "
             'resource (bridge), found "brdge"',
-            f"{path}: [agents.truck-03] key 'mass': expected a number > 0 (kg), found -5",
+            f"{path}: [agents.truck-03] key 'mass': expected a number within (0, 1e7] (kg), found -5",
         ]
 
     def test_build_error_keeps_other_rows(self):

@@ -187,7 +187,9 @@ class TestMessages:
         data = small_fleet()
         data["agents"]["truck-03"] = copy.deepcopy(data["agents"].pop("truck-01"))
         data["agents"]["truck-03"]["mass"] = -5
-        assert problems_of(data) == ["fleet.toml: [agents.truck-03] key 'mass': expected a number > 0 (kg), found -5"]
+        assert problems_of(data) == [
+            "fleet.toml: [agents.truck-03] key 'mass': expected a number within (0, 1e7] (kg), found -5"
+        ]
 
     def test_all_errors_collected(self):
         """Independent mistakes in different tables and in one record are all reported, in file order."""
@@ -199,12 +201,12 @@ class TestMessages:
         truck["zones"][0]["exit"] = 400.0
         data["agents"]["mill"]["work"] = "heavy"
         assert problems_of(data) == [
-            "fleet.toml: [resources.bridge] key 'gap': expected a finite number >= 0 s, found -1.0",
-            "fleet.toml: [coordinator] key 'max_rounds': expected an integer >= 1, found 0",
+            "fleet.toml: [resources.bridge] key 'gap': expected a number within [0, 1e10] (s), found -1.0",
+            "fleet.toml: [coordinator] key 'max_rounds': expected an integer within [1, 10000], found 0",
             "fleet.toml: [agents.truck-01] key 'stages': expected an integer, found 7.5",
             "fleet.toml: [agents.truck-01.zones[0]] key 'exit': expected a number > entry = 500.0 (m), found 400.0",
-            "fleet.toml: [agents.truck-01] key 'mass': expected a number > 0 (kg), found -5",
-            "fleet.toml: [agents.truck-01] key 'efficiency': expected a number <= 1, found 1.5",
+            "fleet.toml: [agents.truck-01] key 'mass': expected a number within (0, 1e7] (kg), found -5",
+            "fleet.toml: [agents.truck-01] key 'efficiency': expected a number within (0, 1], found 1.5",
             "fleet.toml: [agents.mill] key 'work': expected a number (kg), found \"heavy\"",
         ]
 
@@ -326,7 +328,7 @@ class TestMessages:
         data = small_fleet()
         data["defaults"]["vehicle"]["mass"] = -1.0
         assert problems_of(data) == [
-            "fleet.toml: [agents.truck-01] key 'mass': expected a number > 0 (kg), found -1.0 (set in "
+            "fleet.toml: [agents.truck-01] key 'mass': expected a number within (0, 1e7] (kg), found -1.0 (set in "
             "[defaults.vehicle])"
         ]
 
@@ -364,6 +366,184 @@ class TestMessages:
         data["agents"] = {}
         assert problems_of(data) == [
             "fleet.toml: [agents]: expected at least one agent ([agents.<name>] with a model), found an empty table"
+        ]
+
+
+def _zones(n: int) -> tuple[dict, list[dict]]:
+    """``n`` exclusive resources and one zone on each, in route order on a 1200 m route (invented)."""
+    resources = {f"z{i}": {"kind": "exclusive"} for i in range(n)}
+    return resources, [{"resource": f"z{i}", "entry": 100.0 + 200 * i, "exit": 150.0 + 200 * i} for i in range(n)]
+
+
+def _stations(n: int) -> tuple[dict, list[dict]]:
+    """``n`` exclusive resources and a 600 s station on each (invented)."""
+    resources = {f"s{i}": {"kind": "exclusive"} for i in range(n)}
+    return resources, [{"resource": f"s{i}", "duration": 600.0} for i in range(n)]
+
+
+# (path in small_fleet(), value, the FleetError's one line); every range documented in docs/fleet.md has a
+# case here, at or beyond its bound.
+OUT_OF_RANGE = [
+    (("coordinator", "tolerance"), 1e300,
+     "[coordinator] key 'tolerance': expected a number within (0, 0.1), found 1e+300"),
+    (("coordinator", "tolerance"), 0.1, "[coordinator] key 'tolerance': expected a number within (0, 0.1), found 0.1"),
+    (("coordinator", "max_rounds"), 10**6,
+     "[coordinator] key 'max_rounds': expected an integer within [1, 10000], found 1000000"),
+    (("agents", "truck-01", "weight"), 1e300,
+     "[agents.truck-01] key 'weight': expected a number within (0, 1e6], found 1e+300"),
+    (("agents", "mill", "weight"), 0.0, "[agents.mill] key 'weight': expected a number within (0, 1e6], found 0.0"),
+    (("defaults", "vehicle", "weight"), 2e6,
+     "[agents.truck-01] key 'weight': expected a number within (0, 1e6], found 2000000.0 (set in [defaults.vehicle])"),
+    (("resources", "bridge", "gap"), 1e300,
+     "[resources.bridge] key 'gap': expected a number within [0, 1e10] (s), found 1e+300"),
+    (("resources", "grid", "start"), -1.0,
+     "[resources.grid] key 'start': expected a number within [0, 1e10] (s), found -1.0"),
+    (("resources", "grid", "block_length"), 1e11,
+     "[resources.grid] key 'block_length': expected a number within (0, 1e10] (s), found 100000000000.0"),
+    (("resources", "grid", "limits"), [2e5, 1e300, 1e5],
+     "[resources.grid] key 'limits': expected a list made of numbers within [0, 1e12] (W), found 1e+300"),
+    (("resources", "grid", "limits"), [1e5] * 501,
+     "[resources.grid] key 'limits': expected a list of 1 to 500 entries, found 501 entries"),
+    (("agents", "truck-01", "stages"), 10**8,
+     "[agents.truck-01] key 'stages': expected an integer within [4, 500], found 100000000"),
+    (("agents", "truck-01", "stages"), 501,
+     "[agents.truck-01] key 'stages': expected an integer within [4, 500], found 501"),
+    (("agents", "truck-01", "zones"), _zones(5),
+     "[agents.truck-01] key 'zones': expected a list of 1 to 4 entries, found 5 entries"),
+    (("agents", "truck-01", "departure"), -1.0,
+     "[agents.truck-01] key 'departure': expected a number within [0, 1e10] (s), found -1.0"),
+    (("agents", "truck-01", "desired_arrival"), 1e300,
+     "[agents.truck-01] key 'desired_arrival': expected a number within [0, 1e10] (s), found 1e+300"),
+    (("agents", "truck-01", "mass"), 1e300,
+     "[agents.truck-01] key 'mass': expected a number within (0, 1e7] (kg), found 1e+300"),
+    (("agents", "truck-01", "length"), 2e4,
+     "[agents.truck-01] key 'length': expected a number within [0, 10000] (m), found 20000.0"),
+    (("agents", "truck-01", "max_accel"), 1e3,
+     "[agents.truck-01] key 'max_accel': expected a number within (0, 100] (m/s^2), found 1000.0"),
+    (("agents", "truck-01", "rolling_coeff"), 2.0,
+     "[agents.truck-01] key 'rolling_coeff': expected a number within [0, 1], found 2.0"),
+    (("agents", "truck-01", "air_density"), 1e300,
+     "[agents.truck-01] key 'air_density': expected a number within [0, 100] (kg/m^3), found 1e+300"),
+    (("agents", "truck-01", "arrival_weight"), 1e300,
+     "[agents.truck-01] key 'arrival_weight': expected a number within (0, 1e12] (J/s^2), found 1e+300"),
+    (("agents", "truck-01", "comfort_weight"), 1e13,
+     "[agents.truck-01] key 'comfort_weight': expected a number within [0, 1e12] (kg*s), found 10000000000000.0"),
+    (("agents", "truck-01", "zones", 0, "speed_limit"), 1e300,
+     "[agents.truck-01.zones[0]] key 'speed_limit': expected a number within (0, 1000] (m/s), found 1e+300"),
+    (("agents", "truck-01", "zones", 0, "exit"), 1e300,
+     "[agents.truck-01.zones[0]] key 'exit': expected a number within (0, 1e7] (m), found 1e+300"),
+    (("agents", "mill", "due"), -1.0, "[agents.mill] key 'due': expected a number within [0, 1e10] (s), found -1.0"),
+    (("agents", "mill", "release"), -1.0,
+     "[agents.mill] key 'release': expected a number within [0, 1e10] (s), found -1.0"),
+    (("agents", "mill", "blocks"), 10**6,
+     "[agents.mill] key 'blocks': expected an integer within [1, 1000], found 1000000"),
+    (("agents", "mill", "stations"), _stations(21),
+     "[agents.mill] key 'stations': expected a list of 1 to 20 entries, found 21 entries"),
+    (("agents", "mill", "peak_end"), 100.0,
+     "[agents.mill] key 'peak_end': expected a number >= peak_start = 1200.0 (s), found 100.0"),
+    (("agents", "mill", "peak_price"), 1e300,
+     "[agents.mill] key 'peak_price': expected a number within (0, 1e6], found 1e+300"),
+    (("agents", "mill", "tardiness_weight"), 1e300,
+     "[agents.mill] key 'tardiness_weight': expected a number within [0, 1e12] (J/s), found 1e+300"),
+    (("agents", "mill", "price_ramp"), 1e300,
+     "[agents.mill] key 'price_ramp': expected a number within (0, 1e10] (s), found 1e+300"),
+    (("agents", "mill", "power_coeff"), 1e300,
+     "[agents.mill] key 'power_coeff': expected a number within (0, 1e12] (W*s^2/kg^2), found 1e+300"),
+    (("agents", "mill", "stations", 0, "duration"), 1e300,
+     "[agents.mill.stations[0]] key 'duration': expected a number within (0, 1e10] (s), found 1e+300"),
+    (("agents", "mill", "stations", 0, "holding_cost"), 1e300,
+     "[agents.mill.stations[0]] key 'holding_cost': expected a number within [0, 1e12] (J/s), found 1e+300"),
+    (("agents", "tractor", "tariff"), [1.0, 1e300, 1.0],
+     "[agents.tractor] key 'tariff': expected a list made of numbers within [0, 1e6], found 1e+300"),
+    (("agents", "tractor", "battery_capacity"), 1e300,
+     "[agents.tractor] key 'battery_capacity': expected a number within (0, 1e13] (J), found 1e+300"),
+    (("agents", "tractor", "charger_power"), 1e300,
+     "[agents.tractor] key 'charger_power': expected a number within (0, 1e10] (W), found 1e+300"),
+    (("agents", "tractor", "wear_coeff"), 1e300,
+     "[agents.tractor] key 'wear_coeff': expected a number within [0, 1e12] (1/W), found 1e+300"),
+    (("agents", "tractor", "efficiency"), 0.0,
+     "[agents.tractor] key 'efficiency': expected a number within (0, 1], found 0.0"),
+]  # fmt: skip
+
+
+class TestRanges:
+    @pytest.mark.parametrize(("path", "value", "line"), OUT_OF_RANGE, ids=lambda v: None)
+    def test_out_of_range(self, path, value, line):
+        """A number outside its documented range is one FleetError naming file, table, key, range and value."""
+        data = small_fleet()
+        if isinstance(value, tuple):  # a list of zones or stations and the resources they name
+            resources, value = value
+            data["resources"].update(resources)
+        table = data
+        for part in path[:-1]:
+            table = table[part]
+        table[path[-1]] = value
+        assert problems_of(data) == ["fleet.toml: " + line]
+
+    def test_desired_arrival_before_departure(self):
+        """A vehicle may not wish to arrive before it departs."""
+        data = small_fleet()
+        data["agents"]["truck-01"].update(departure=50.0, desired_arrival=10.0, latest_arrival=400.0)
+        assert problems_of(data) == [
+            "fleet.toml: [agents.truck-01] key 'desired_arrival': expected a number >= departure = 50.0 (s), "
+            "found 10.0"
+        ]
+
+    @pytest.mark.parametrize("table", ["coordinator", "agent"])
+    def test_cli_check_refuses_without_traceback(self, tmp_path, capsys, table):
+        """weight = 1e300 or tolerance = 1e300 in a file: negotiate check exits 1 with the located message."""
+        from negotiate.cli import main
+
+        text = (EXAMPLES / "charging_depot.toml").read_text(encoding="utf-8")
+        if table == "coordinator":
+            text = text.replace("[coordinator]", "[coordinator]\ntolerance = 1e300", 1)
+            line = "[coordinator] key 'tolerance': expected a number within (0, 0.1), found 1e+300"
+        else:
+            text += "\n[agents.extra]\nmodel = \"capacity\"\nresource = \"grid\"\ntariff = 1.0\nweight = 1e300\n"
+            line = "[agents.extra] key 'weight': expected a number within (0, 1e6], found 1e+300"
+        path = tmp_path / "fleet.toml"
+        path.write_text(text, encoding="utf-8")
+        code = main(["check", str(path), "--no-build"])
+        out = capsys.readouterr()
+        assert code == 1
+        assert f"{path}: {line}" in out.out + out.err and "Traceback" not in out.out + out.err
+
+
+class TestDeepNesting:
+    @pytest.mark.parametrize(
+        "text",
+        [
+            "a = " + "[" * 400 + "]" * 400,
+            "a = " + "{b = " * 400 + "1" + "}" * 400,
+            "[coordinator]\noptions = " + "{b = " * 400 + "1" + "}" * 400,
+            "[coordinator.options]\nb = " + "[" * 40 + "]" * 40,
+        ],
+        ids=["arrays", "inline-tables", "options", "options-40"],
+    )
+    def test_file_is_a_fleet_error(self, tmp_path, capsys, text):
+        """Arrays or inline tables nested 400 levels deep: a FleetError naming the file, and exit 1 from check."""
+        from negotiate.cli import main
+
+        path = tmp_path / "deep.toml"
+        path.write_text(text + "\n", encoding="utf-8")
+        with pytest.raises(FleetError) as info:
+            load_fleet(path)
+        (problem,) = info.value.problems
+        assert problem.file == str(path) and problem.expected == "tables and arrays nested at most 16 levels deep"
+        assert main(["check", str(path), "--no-build"]) == 1
+        out = capsys.readouterr()
+        assert f"{path}" in out.out + out.err and "Traceback" not in out.out + out.err
+
+    def test_deep_dictionary(self):
+        """parse_fleet of a dictionary nested 100 000 levels deep (no TOML reader involved): a FleetError."""
+        data = small_fleet()
+        deep: dict = {}
+        data["coordinator"]["options"] = {"b": deep}
+        for _ in range(100_000):
+            deep["b"] = deep = {}
+        assert problems_of(data) == [
+            "fleet.toml: [coordinator.options.b]: expected tables and arrays nested at most 16 levels deep, "
+            "found a value nested more than 16 levels deep"
         ]
 
 
@@ -408,7 +588,9 @@ class TestLoadFleet:
         )
         with pytest.raises(FleetError) as info:
             load_fleet(str(path))
-        assert str(info.value) == f"{path}: [agents.truck-03] key 'mass': expected a number > 0 (kg), found -5"
+        assert str(info.value) == (
+            f"{path}: [agents.truck-03] key 'mass': expected a number within (0, 1e7] (kg), found -5"
+        )
 
 
 class TestFleetError:

@@ -3,12 +3,14 @@
 from __future__ import annotations
 
 import json
+from dataclasses import replace
 
 import casadi as ca
 import numpy as np
 import pytest
 
 from negotiate import LocalResult, ParametricNLP, Status
+from negotiate.nlp import try_solve
 
 
 def shifted_quadratic(sym=ca.SX):
@@ -124,6 +126,73 @@ class TestSolve:
             res.value = 0.0  # type: ignore[misc]
         data = json.loads(json.dumps(res.to_dict()))
         assert data["status"] == "converged" and data["certificate"]["verdict"] == "smooth"
+
+
+def sqrt_fee():
+    """min (x - 1)^2 + sqrt(p): x* = 1, V = sqrt(p), dV/dp = 1 / (2 sqrt(p)) -- +inf at p = 0 (calculus)."""
+    x, p = ca.SX.sym("x"), ca.SX.sym("p")
+    return ParametricNLP({"x": x, "p": p, "f": (x - 1) ** 2 + ca.sqrt(p)}, p_names=["share"])
+
+
+class TestNonFinite:
+    def test_infinite_gradient_is_a_failed_solve(self):
+        """IPOPT converges at p = 0 but dV/dp = +inf there: a failed solve, no gradient, the quantity named."""
+        prob = sqrt_fee()
+        ok = prob.solve([0.25])
+        assert ok.success
+        np.testing.assert_allclose(ok.gradient, [1.0], rtol=1e-12)  # 1 / (2 sqrt(0.25)), calculus
+        res = prob.solve([0.0])
+        assert res.status is Status.FAILED and not res.success
+        assert res.gradient is None and res.certificate is None
+        assert res.message == "Solve_Succeeded; re-check failed: gradient not finite: dV/d(share) = inf"
+        assert res.value == 0.0 and res.x == pytest.approx([1.0])  # the point itself is kept, for the record
+
+    def test_infinite_gradient_after_a_warm_start(self):
+        """Continuing from a smooth warm start to p = 0 gives the same failed solve (never a converged inf)."""
+        prob = sqrt_fee()
+        res = prob.solve([0.0], warm=prob.solve([0.25]))
+        assert res.status is Status.FAILED and res.gradient is None
+        assert res.message.endswith("gradient not finite: dV/d(share) = inf")
+
+    def test_user_solve_with_infinite_value(self):
+        """A user-written solve that reports convergence with V = inf is failed by try_solve."""
+
+        class InfiniteValue(ParametricNLP):
+            def solve(self, p, warm=None, **kw):
+                return replace(super().solve(p, warm, **kw), value=np.inf)
+
+        prob = sqrt_fee()
+        prob.__class__ = InfiniteValue
+        res = try_solve(prob, [0.25])
+        assert res.status is Status.FAILED and res.gradient is None
+        assert res.message == "Solve_Succeeded; re-check failed: value not finite: V = inf"
+
+    def test_user_solve_with_nan_gradient(self):
+        """A user-written solve that reports convergence with a NaN gradient is failed by try_solve."""
+
+        class NanGradient(ParametricNLP):
+            def solve(self, p, warm=None, **kw):
+                return replace(super().solve(p, warm, **kw), gradient=np.array([np.nan]))
+
+        prob = sqrt_fee()
+        prob.__class__ = NanGradient
+        res = try_solve(prob, [0.25])
+        assert res.status is Status.FAILED and res.gradient is None
+        assert res.message == "Solve_Succeeded; re-check failed: gradient not finite: dV/d(share) = nan"
+
+    def test_exception_in_solve_is_a_failed_solve(self):
+        """An exception raised by a user-written solve becomes a failed result naming its type and text."""
+
+        class Raising(ParametricNLP):
+            def solve(self, p, warm=None, **kw):
+                raise ZeroDivisionError("share / 0")
+
+        prob = sqrt_fee()
+        prob.__class__ = Raising
+        res = try_solve(prob, [0.25])
+        assert res.status is Status.FAILED and res.gradient is None and np.isnan(res.value)
+        assert res.message == "the solve raised ZeroDivisionError: share / 0"
+        assert res.p.tolist() == [0.25] and res.x.shape == (1,)
 
 
 class TestOpti:
