@@ -321,8 +321,7 @@ def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ign
     print(_table(["agent", "resource", "enter s", "leave s", "share", "draw", "dV/denter /s", "dV/dleave /s",
                   "dV/dshare", "cost increase", "certificate"], rows))  # fmt: skip
     skipped = sum(1 for t in result.order_trials if t.infeasible)
-    phases = ", ".join(f"{k.replace('_', ' ')} {v:.1f} s" for k, v in result.phase_times.items() if k != "verify"
-                       or result.centralized is not None)  # fmt: skip
+    phases = ", ".join(f"{k.replace('_', ' ')} {v:.1f} s" for k, v in result.phase_times.items())
     print(f"status: {c.status} ({c.message}); {c.rounds} rounds, {c.agent_solves} agent solves in the best order; "
           f"{len(result.order_trials)} order(s) tried"
           + (f" ({skipped} infeasible, skipped)" if skipped else "")

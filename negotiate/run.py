@@ -70,7 +70,7 @@ class RunResult:
     agents: tuple[AgentModel, ...] = field(repr=False, default=())
     phase_times: dict[str, float] = field(default_factory=dict)
     """Seconds spent in each phase: ``build`` (the agents), ``free_optima``, ``order_search`` (every
-    coordination of every order tried) and ``verify``; they add up to ``wall_time``."""
+    coordination of every order tried) and, with ``verify``, ``verify``; they add up to ``wall_time``."""
 
     @property
     def total(self) -> float:
@@ -283,7 +283,7 @@ def run_fleet(
             start=[rep.result.x for rep in best.evaluation.reports],
             start_P=best.P,
         )
-    phases["verify"] = time.perf_counter() - t3
+        phases["verify"] = time.perf_counter() - t3
     return RunResult(
         spec=spec,
         coordination=best,

@@ -135,7 +135,7 @@ class TestRun:
         assert "2 order(s) tried (1 infeasible, skipped)" in text
         assert "2 (1 admitted no schedule and were skipped)" in (out / "report.html").read_text()
         phases = summary["phase_times_s"]
-        assert set(phases) == {"build", "free_optima", "order_search", "verify"}
+        assert set(phases) == {"build", "free_optima", "order_search"}  # "verify" only with --verify
         assert phases["build"] > 0 and abs(sum(phases.values()) - summary["wall_time_s"]) < 1e-9
         # a resumed run of a finished search gives the same schedule, without a crash
         before = (out / "schedule.csv").read_bytes()
