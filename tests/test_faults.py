@@ -1,13 +1,16 @@
-"""Faults: a worker killed in the middle of a round (local process and Dask worker), a solve that hangs past
-its time limit, IPOPT's own wall-time limit.
+"""Faults: a worker killed in the middle of a round or between rounds (local process and Dask worker), a
+cluster left without workers, a solve that hangs past its time limit, IPOPT's own wall-time limit.
 
 The killed worker's requests are sent again, so the run must end at exactly the undisturbed schedule
-(compared to 1e-9 relative, far below the solver tolerance). A hung solve must come back as a failed
-status for that agent within its time budget, not as a hung run.
+(compared to 1e-9 relative, far below the solver tolerance) and a round at exactly the in-process answers.
+A hung solve must come back as a failed status for that agent, not as a hung run. Waits for a process to go
+are polled with generous deadlines.
 """
 
 from __future__ import annotations
 
+import os
+import threading
 import time
 from dataclasses import replace
 from pathlib import Path
@@ -16,7 +19,7 @@ import numpy as np
 import pytest
 from refproblems import by_name
 
-from negotiate.executor import DaskExecutor, ProcessExecutor
+from negotiate.executor import DaskExecutor, InProcessExecutor, ProcessExecutor
 from negotiate.fleet import build_agents, load_fleet
 from negotiate.nlp import ParametricNLP
 from negotiate.run import run_fleet
@@ -24,6 +27,8 @@ from negotiate.spec import AgentSpec
 from negotiate.status import Status
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
+DEADLINE = 300.0
+"""Seconds after which a wait for an event counts as a hang (far beyond any expected duration)."""
 SKIP_DASK = "Dask is not installed: the optional 'cluster' extra (pip install -e '.[test,cluster]') runs these tests"
 
 
@@ -85,6 +90,141 @@ class TestWorkerLoss:
         assert (
             np.max(np.abs(res.coordination.P - ref.coordination.P) / np.maximum(1, np.abs(ref.coordination.P))) <= 1e-9
         )
+
+
+def _round(agents):
+    """One round's arguments near the free optima: agent i at its free optimum shifted by 30 s, no warm start."""
+    return [a.free_optimum + 30.0 for a in agents], [None] * len(agents)
+
+
+def _same(outcomes, reference) -> bool:
+    """Bit-for-bit equal answers (status, value, gradient): a request is a pure function of its arguments."""
+    return all(
+        o.result.status == r.result.status
+        and o.result.value == r.result.value
+        and np.array_equal(o.result.gradient, r.result.gradient)
+        for o, r in zip(outcomes, reference, strict=True)
+    )
+
+
+def _until(test, what: str, deadline: float = DEADLINE) -> None:
+    """Poll ``test()`` until it holds; fail naming ``what`` after ``deadline`` seconds."""
+    end = time.monotonic() + deadline
+    while not test():
+        assert time.monotonic() < end, f"{what}: not within {deadline:.0f} s"
+        time.sleep(0.01)
+
+
+def _kill(pids, wait: bool = True) -> None:
+    """SIGKILL each process; with ``wait``, wait until it is gone (reaped by its parent: the executor noticed)."""
+    import psutil
+
+    procs = [psutil.Process(pid) for pid in pids]
+    for proc in procs:
+        proc.kill()
+    for proc in procs if wait else ():
+        _until(lambda p=proc: not _exists(p), f"process {proc.pid} gone")
+
+
+def _exists(proc) -> bool:
+    import psutil
+
+    try:
+        return proc.is_running()
+    except psutil.Error:
+        return False
+
+
+def _returns(call, deadline: float = DEADLINE):
+    """``call()``'s value, run in a thread; a test failure instead of a hung test if it does not return."""
+    box: list = []
+
+    def run():
+        try:
+            box.append((True, call()))
+        except BaseException as exc:  # noqa: BLE001 - handed back to the test
+            box.append((False, exc))
+
+    t = threading.Thread(target=run, daemon=True)
+    t.start()
+    t.join(deadline)
+    assert box, f"no answer within {deadline:.0f} s: the executor hangs"
+    ok, value = box[0]
+    if not ok:
+        raise value
+    return value
+
+
+@pytest.fixture(scope="module")
+def cell():
+    """The shipped machining cell (invented data), its agents and one in-process round near the free optima."""
+    spec = load_fleet(EXAMPLES / "machining_cell.toml")
+    agents = build_agents(spec)
+    params, warm = _round(agents)
+    return spec, agents, params, warm, InProcessExecutor().evaluate(agents, params, warm)
+
+
+class TestWorkerLossBetweenRounds:
+    def test_local_worker_killed_between_rounds(self, cell):
+        """A worker process killed between two rounds, then its replacement and the other worker together: every
+        round gets the in-process answers, one pool replaced per dead process."""
+        spec, agents, params, warm, ref = cell
+        with ProcessExecutor(spec, 2) as ex:
+            first = ex.evaluate(agents, params, warm)
+            _kill(ex.worker_pids()[:1])
+            second = ex.evaluate(agents, params, warm)
+            _kill(ex.worker_pids())
+            third = ex.evaluate(agents, params, warm)
+            lost = ex.lost_workers
+        assert _same(first, ref) and _same(second, ref) and _same(third, ref)
+        assert lost == 3
+
+    def test_dask_workers_all_killed_between_rounds(self, cell):
+        """Every worker process of the local cluster killed just before a round (their nannies start new ones;
+        the round is sent before the scheduler has noticed): the round gets the in-process answers instead of
+        waiting forever for the dead workers."""
+        pytest.importorskip("distributed", reason=SKIP_DASK)
+        spec, agents, params, warm, ref = cell
+        with DaskExecutor(spec, workers=2) as ex:
+            first = ex.evaluate(agents, params, warm)
+            _kill(ex.client.run(os.getpid).values(), wait=False)
+            second = _returns(lambda: ex.evaluate(agents, params, warm))
+        assert _same(first, ref) and _same(second, ref)
+
+    def test_dask_local_cluster_without_workers(self, cell):
+        """The local cluster's workers all gone for good (scaled to none): after ``worker_wait`` s without a
+        worker the executor starts them again and the round gets the in-process answers. (The short wait does
+        not race anything: no worker would ever come back on its own.)"""
+        pytest.importorskip("distributed", reason=SKIP_DASK)
+        spec, agents, params, warm, ref = cell
+        with DaskExecutor(spec, workers=2, worker_wait=0.5) as ex:
+            first = ex.evaluate(agents, params, warm)
+            ex._cluster.scale(0)
+            _until(lambda: not ex.worker_addresses(), "workers retired")
+            second = _returns(lambda: ex.evaluate(agents, params, warm))
+            _until(lambda: len(ex.worker_addresses()) == 2, "both workers started again")
+        assert _same(first, ref) and _same(second, ref)
+
+    def test_external_scheduler_without_workers(self, cell):
+        """A scheduler the executor did not start, with no worker: the builds that ``start`` sent and each round
+        give up after ``worker_wait`` s; every agent of both rounds is a failed solve whose message names the
+        scheduler."""
+        distributed = pytest.importorskip("distributed", reason=SKIP_DASK)
+        spec, agents, params, warm, _ = cell
+        with distributed.LocalCluster(
+            n_workers=0, processes=False, protocol="tcp://", host="127.0.0.1", scheduler_port=0,
+            dashboard_address=None, scheduler_kwargs={"dashboard_address": "127.0.0.1:0"},
+        ) as bare:  # fmt: skip
+            address = bare.scheduler_address
+            with DaskExecutor(spec, address, worker_wait=0.5) as ex:
+                ex.start()
+                out = _returns(lambda: ex.evaluate(agents, params, warm))
+                again = _returns(lambda: ex.evaluate(agents, params, warm))
+        for o in out + again:
+            assert o.result.status is Status.FAILED and o.result.gradient is None
+            assert o.result.message == (
+                f"no worker alive on the Dask scheduler {address} for 0.5 s; the request was not answered"
+            )
 
 
 class TestTimeLimit:
