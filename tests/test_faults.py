@@ -1,15 +1,20 @@
 """Faults: a worker killed in the middle of a round or between rounds (local process and Dask worker), a
-cluster left without workers, a solve that hangs past its time limit, IPOPT's own wall-time limit.
+cluster left without workers, a solve that hangs past its time limit, IPOPT's own wall-time limit, a run
+stopped at once by a second signal.
 
 The killed worker's requests are sent again, so the run must end at exactly the undisturbed schedule
 (compared to 1e-9 relative, far below the solver tolerance) and a round at exactly the in-process answers.
 A hung solve must come back as a failed status for that agent, not as a hung run. Waits for a process to go
-are polled with generous deadlines.
+or a line to be printed are polled with generous deadlines.
 """
 
 from __future__ import annotations
 
+import contextlib
 import os
+import signal
+import subprocess
+import sys
 import threading
 import time
 from dataclasses import replace
@@ -21,12 +26,14 @@ from refproblems import by_name
 
 from negotiate.executor import DaskExecutor, InProcessExecutor, ProcessExecutor
 from negotiate.fleet import build_agents, load_fleet
+from negotiate.generate import generate_fleet
 from negotiate.nlp import ParametricNLP
 from negotiate.run import run_fleet
 from negotiate.spec import AgentSpec
 from negotiate.status import Status
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
+ROOT = EXAMPLES.parent
 DEADLINE = 300.0
 """Seconds after which a wait for an event counts as a hang (far beyond any expected duration)."""
 SKIP_DASK = "Dask is not installed: the optional 'cluster' extra (pip install -e '.[test,cluster]') runs these tests"
@@ -289,3 +296,55 @@ class TestTimeLimit:
         assert ex.solver_options == {"ipopt.max_wall_time": 7.5}
         assert ex._budget(use_guard=False) == 7.5 + ex.grace
         ex.close()
+
+
+def _workers(proc) -> list:
+    """The worker processes below ``proc`` (spawned interpreters: multiprocessing's ``spawn_main``)."""
+    import psutil
+
+    found = []
+    for child in proc.children(recursive=True):
+        with contextlib.suppress(psutil.Error):
+            if any("spawn_main" in part for part in child.cmdline()):
+                found.append(child)
+    return found
+
+
+class TestSecondSignal:
+    @pytest.mark.parametrize("executor", [["--workers", "2"], ["--cluster", "local", "--workers", "2"]])
+    def test_no_worker_outlives_the_run(self, tmp_path, executor):
+        """``negotiate run`` with two workers, sent SIGTERM twice while it builds (a generated fleet of 24 bridge
+        trucks): the first signal is acknowledged, the second stops the run at once (exit 130), and no process
+        it started survives it."""
+        if executor[0] == "--cluster":
+            pytest.importorskip("distributed", reason=SKIP_DASK)
+        psutil = pytest.importorskip("psutil")
+        fleet = tmp_path / "bridge-24.toml"
+        fleet.write_text(generate_fleet("bridge", 24, seed=0))
+        run = subprocess.Popen(
+            [sys.executable, "-m", "negotiate.cli", "run", str(fleet), "--out", str(tmp_path / "run"), "--quiet",
+             *executor],
+            cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+        )  # fmt: skip
+        try:
+            proc = psutil.Process(run.pid)
+            _until(lambda: len(_workers(proc)) >= 2 or run.poll() is not None, "two worker processes started")
+            assert run.poll() is None, run.stderr.read()
+            run.send_signal(signal.SIGTERM)
+            seen = []
+            for line in run.stderr:  # until the first signal's acknowledgement (or the end of the output)
+                seen.append(line)
+                if "a second signal stops at once" in line:
+                    break
+            assert seen and "a second signal stops at once" in seen[-1], "".join(seen)
+            started = proc.children(recursive=True)
+            assert len(_workers(proc)) >= 2
+            run.send_signal(signal.SIGTERM)
+            assert run.wait(timeout=DEADLINE) == 130
+            _, alive = psutil.wait_procs(started, timeout=DEADLINE)
+            assert alive == [], f"left running: {[(p.pid, p.cmdline()) for p in alive]}"
+        finally:
+            if run.poll() is None:
+                run.kill()
+            run.wait()
+            run.stderr.close()
