@@ -4,8 +4,9 @@ stopped at once by a second signal.
 
 The killed worker's requests are sent again, so the run must end at exactly the undisturbed schedule
 (compared to 1e-9 relative, far below the solver tolerance) and a round at exactly the in-process answers.
-A hung solve must come back as a failed status for that agent, not as a hung run. Waits for a process to go
-or a line to be printed are polled with generous deadlines.
+A hung solve must come back as a failed status for that agent, not as a hung run. Nothing here depends on
+how fast the machine is: waits are for events (a process gone, a line printed), polled with generous
+deadlines, and time budgets are far above what an undisturbed request takes.
 """
 
 from __future__ import annotations
@@ -236,44 +237,53 @@ class TestWorkerLossBetweenRounds:
 
 class TestTimeLimit:
     def test_hung_solve_is_a_failed_agent(self, tmp_path):
-        """A solve stuck for 120 s under a 1 s limit (budget 1 s + 2 s grace) is reported as time-limit."""
+        """A solve stuck (120 s) under a 1 s limit is reported as time-limit after its budget (1 s + 4 s grace);
+        its worker is replaced and serves the next round.
+
+        No budget here races the machine's speed: the agents are built ahead (``prepare``: no budget), so a
+        budget only has to cover prepared solves (a machine solves in ~5 ms: 200 times under the limit), and
+        the hanging agent is the last of its worker's round (agents 1 and 3 go to worker 1), so no request
+        waits in that round for a fresh process to start."""
         marker = tmp_path / "hang"
-        spec = _fleet("hanging_machine", marker, index=1, size=4)
+        spec = _fleet("hanging_machine", marker, index=3, size=4)
         agents = build_agents(spec)
         P = [a.free_optimum for a in agents]
-        with ProcessExecutor(spec, 2, time_limit=1.0, grace=2.0) as ex:
+        with ProcessExecutor(spec, 2, time_limit=1.0, grace=4.0) as ex:
+            ex.prepare(agents)
             assert all(o.result.success for o in ex.evaluate(agents, P, [None] * 4))
             marker.touch()
-            t0 = time.perf_counter()
             out = ex.evaluate(agents, P, [None] * 4)
-            elapsed = time.perf_counter() - t0
             marker.unlink()
-            again = ex.evaluate(agents, P, [None] * 4)
             lost = ex.lost_workers
-        assert [str(o.result.status) for o in out] == ["converged", "time-limit", "converged", "converged"]
-        hung = out[1].result
+            ex.prepare(agents)
+            again = ex.evaluate(agents, P, [None] * 4)
+        assert [str(o.result.status) for o in out] == ["converged", "converged", "converged", "time-limit"]
+        hung = out[3].result
         assert hung.gradient is None and np.isnan(hung.value)
-        assert hung.message == "no answer from the worker within 3 s (per-solve limit 1 s); the worker was replaced"
-        assert elapsed < 15.0  # the budget (3 s) plus one rebuild of the other agent on that worker
+        assert hung.message == "no answer from the worker within 5 s (per-solve limit 1 s); the worker was replaced"
         assert lost == 1
         assert all(o.result.success for o in again)  # the replaced worker serves the next round
 
     def test_hung_solve_on_dask_is_a_failed_agent(self, tmp_path):
-        """The same on a two-worker LocalCluster (one batch per worker and round): the stuck batch (agents 1, 3)
+        """The same on a two-worker local cluster (one batch per worker and round): the stuck batch (agents 1, 3)
         is split and sent again one by one, the hanging request is reported as time-limit and the other
-        answered; the stuck worker is restarted and serves the next round."""
+        answered; the stuck workers are restarted and serve the next round. Budgets as above (prepared
+        solves; the one build inside a budget, agent 3 on its restarted worker, takes ~50 ms of 5 s)."""
         pytest.importorskip("distributed", reason=SKIP_DASK)
         marker = tmp_path / "hang"
         spec = _fleet("hanging_machine", marker, index=1, size=4)
         agents = build_agents(spec)
         P = [a.free_optimum for a in agents]
-        with DaskExecutor(spec, workers=2, time_limit=1.0, grace=2.0) as ex:
+        with DaskExecutor(spec, workers=2, time_limit=1.0, grace=4.0) as ex:
+            ex.prepare(agents)
             assert all(o.result.success for o in ex.evaluate(agents, P, [None] * 4))
             marker.touch()
             out = ex.evaluate(agents, P, [None] * 4)
             marker.unlink()
-            again = ex.evaluate(agents, P, [None] * 4)
             lost = ex.lost_workers
+            ex.client.wait_for_workers(2, timeout=DEADLINE)
+            ex.prepare(agents)
+            again = ex.evaluate(agents, P, [None] * 4)
         assert [str(o.result.status) for o in out] == ["converged", "time-limit", "converged", "converged"]
         assert out[1].result.gradient is None
         assert lost >= 1
