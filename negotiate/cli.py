@@ -192,6 +192,7 @@ def _run(args: argparse.Namespace) -> int:
 
 
 def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ignore[no-untyped-def]
+    import contextlib
     import os
     import signal
     import time
@@ -231,8 +232,13 @@ def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ign
 
     def interrupted(signum, frame):  # type: ignore[no-untyped-def]
         if stop:
+            if executor is not None:  # no worker process may outlive the run
+                with contextlib.suppress(Exception):
+                    executor.terminate()
             os._exit(130)
         stop.append(signum)
+        # os.write, not print: the handler may run while the progress bar is writing to stderr.
+        os.write(2, b"negotiate run: stopping after the round in progress; a second signal stops at once\n")
 
     previous = {s: signal.signal(s, interrupted) for s in (signal.SIGINT, signal.SIGTERM)}
     try:

@@ -28,12 +28,21 @@ are pickled without their CasADi problem and re-attached to the coordinator's co
 
 Faults. A worker process that dies during a round (killed, out of memory, a crash in a solver) loses only
 its unanswered requests: they are sent again (to a fresh process) up to ``retries`` times, so the round
-completes with the answers it would have had. A solve has a wall-time limit ``time_limit`` (s) when one is
-given: inside the solver through IPOPT's ``max_wall_time`` option (the agent reports ``time-limit``), and
-for a request that gets no answer at all (a solve stuck outside IPOPT) through the request's future, after
-``time_limit`` per solve the request may make (the solve and the guard's probes) plus
-:data:`REPLY_GRACE` s. Such an agent is reported with status ``time-limit`` for that round and its worker
-is replaced; the run goes on.
+completes with the answers it would have had; one that died between rounds is replaced before the next
+round's requests are sent (nothing was lost with it). One policy (:class:`_Losses`) counts the losses of
+both remote executors. A Dask cluster left with no worker at all is waited for at most ``worker_wait`` s
+(:data:`WORKER_WAIT`): then a local cluster is replaced by a new one, and on another scheduler the
+round's unanswered agents are failed solves -- a round never waits forever. A solve has a wall-time limit
+``time_limit`` (s) when one is given: inside the solver through IPOPT's ``max_wall_time`` option (the agent
+reports ``time-limit``), and for a request that gets no answer at all (a solve stuck outside IPOPT) through
+the request's future, after ``time_limit`` per solve the request may make (the solve and the guard's
+probes) plus :data:`REPLY_GRACE` s. Such an agent is reported with status ``time-limit`` for that round and
+its worker is replaced; the run goes on.
+
+Processes. Local worker processes end with their coordinator, however it ends (:func:`_die_with_parent`);
+:meth:`Executor.terminate` kills them at once, for a coordinator that exits without cleaning up. The local
+Dask cluster listens on 127.0.0.1 only, on ports the system chooses, and speaks TLS with credentials made for
+that cluster alone, so that no other user of the machine can connect to it and run code in a worker.
 
 Determinism: the same fleet and settings give the same schedule with every executor. Each request is a
 pure function of (agent record, parameters, warm start), the answers are put back in the order of the
@@ -46,6 +55,8 @@ import contextlib
 import hashlib
 import os
 import pickle
+import signal
+import sys
 import threading
 import time
 from collections import deque
@@ -67,6 +78,7 @@ if TYPE_CHECKING:
 
 __all__ = [
     "REPLY_GRACE",
+    "WORKER_WAIT",
     "AgentOutcome",
     "DaskExecutor",
     "Executor",
@@ -82,6 +94,14 @@ split into single requests to find the agent that hangs)."""
 
 REPLY_GRACE = 10.0
 """Seconds added to a remote request's time budget for building the agent, certification and transport."""
+
+WORKER_WAIT = 60.0
+"""Seconds a Dask executor waits while its cluster has no worker at all (a nanny restarting a killed worker
+takes a few): then a local cluster is replaced by a new one, and on another scheduler the round's
+unanswered agents are failed solves."""
+
+_POLL = 0.5
+"""Seconds between two looks at a Dask cluster's workers while a round waits for its answers."""
 
 
 @dataclass(frozen=True)
@@ -179,6 +199,11 @@ class Executor:
     def close(self) -> None:
         """Release processes or connections (nothing for the in-process executor)."""
 
+    def terminate(self) -> None:
+        """Kill the worker processes this executor started, at once, without waiting for anything: for a
+        coordinator about to exit without cleaning up (a second interrupt). Safe to call from a signal handler.
+        Nothing to do in process or on a cluster the executor did not start."""
+
     def __enter__(self) -> Executor:
         return self
 
@@ -231,11 +256,42 @@ def _build_from_record(blob: bytes) -> ParametricNLP:
     return built[0].model.problem
 
 
-def _ignore_interrupts() -> None:
-    """Worker processes leave Ctrl-C to the coordinator (an interrupt inside IPOPT ends the solve as failed)."""
-    import signal
-
+def _worker_init(kernel_watch: bool) -> None:
+    """Start of a local worker process: Ctrl-C is left to the coordinator (an interrupt inside IPOPT ends the
+    solve as failed), and the worker ends with the coordinator."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    _die_with_parent(kernel_watch)
+
+
+def _die_with_parent(kernel_watch: bool) -> None:
+    """End this process as soon as its parent process ends, however it ends (killed outright, or exiting at
+    once on a second interrupt): an orphaned worker would otherwise wait for requests forever.
+
+    Everywhere: a daemon thread waits on multiprocessing's sentinel of the parent (a pipe the parent holds
+    open, readable once it is gone) and exits. On Linux, with ``kernel_watch``, the kernel also sends SIGKILL
+    when the parent ends (``prctl(PR_SET_PDEATHSIG)``), which reaches a worker busy in compiled code that does
+    not let the thread run. The kernel's signal follows the *thread* that started the process, so it is asked
+    for only by processes started from the parent's main thread.
+    """
+    import multiprocessing
+    from multiprocessing.connection import wait
+
+    parent = multiprocessing.parent_process()
+    if parent is None:  # not started by multiprocessing
+        return
+    if kernel_watch and sys.platform.startswith("linux"):
+        import ctypes
+
+        with contextlib.suppress(OSError, AttributeError):
+            ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGKILL)  # 1: PR_SET_PDEATHSIG
+        if os.getppid() != parent.pid:  # the parent ended before the request took effect
+            os._exit(1)
+
+    def watch() -> None:
+        wait([parent.sentinel])
+        os._exit(1)
+
+    threading.Thread(target=watch, name="negotiate-parent-watch", daemon=True).start()
 
 
 def _cached(digest: str, blob: bytes) -> tuple[ParametricNLP, threading.Lock]:
@@ -302,6 +358,25 @@ def _failed(agent: AgentModel, p: np.ndarray, status: Status, message: str) -> A
         0, 0.0, 0.0, None, prob,
     )  # fmt: skip
     return AgentOutcome(res, None, None, 1)
+
+
+class _Losses:
+    """The remote executors' one retry policy, kept per round: a request whose worker was lost with it (the
+    process died, or left the cluster) is sent again, at most ``retries`` times; after that its agent is a
+    failed solve for the round."""
+
+    def __init__(self, retries: int) -> None:
+        self.retries = retries
+        self.count: dict[int, int] = {}
+
+    def resend(self, batch: Sequence[int]) -> bool:
+        """Count one loss for each request of ``batch``; True while they may be sent again."""
+        for i in batch:
+            self.count[i] = self.count.get(i, 0) + 1
+        return all(self.count[i] <= self.retries for i in batch)
+
+    def failed(self, agent: AgentModel, p: np.ndarray, i: int) -> AgentOutcome:
+        return _failed(agent, p, Status.FAILED, f"worker lost {self.count[i]} times in this round")
 
 
 class _RemoteExecutor(Executor):
@@ -417,10 +492,27 @@ class ProcessExecutor(_RemoteExecutor):
     def _pool(self, j: int) -> ProcessPoolExecutor:
         pool = self._pools[j]
         if pool is None:
+            # The pool starts its process in the thread that submits to it, which is this one (see _send).
+            main = threading.current_thread() is threading.main_thread()
             pool = self._pools[j] = ProcessPoolExecutor(
-                max_workers=1, mp_context=self._context, initializer=_ignore_interrupts
+                max_workers=1, mp_context=self._context, initializer=_worker_init, initargs=(main,)
             )
         return pool
+
+    def _send(self, j: int, fn: Any, *args: Any) -> Future[Any]:
+        """Submit ``fn(*args)`` to worker ``j``. A worker found dead before anything is sent to it (it died
+        between rounds) is replaced first: no request was lost with it. One that dies while requests are being
+        sent hands back a failed future, which the round treats as any worker lost with its requests."""
+        try:
+            return self._pool(j).submit(fn, *args)
+        except BrokenProcessPool:
+            self._replace(j, kill=False)
+        try:
+            return self._pool(j).submit(fn, *args)
+        except BrokenProcessPool as exc:
+            fut: Future[Any] = Future()
+            fut.set_exception(exc)
+            return fut
 
     def _replace(self, j: int, kill: bool) -> None:
         """Drop worker ``j`` (killing its process when it hangs); the next request starts a fresh one."""
@@ -431,7 +523,7 @@ class ProcessExecutor(_RemoteExecutor):
             return
         if kill:
             # concurrent.futures has no public way to stop a busy worker before Python 3.14.
-            for proc in list(getattr(pool, "_processes", {}).values()):
+            for proc in _processes(pool):
                 proc.kill()
         pool.shutdown(wait=False, cancel_futures=True)
 
@@ -445,29 +537,21 @@ class ProcessExecutor(_RemoteExecutor):
 
     def _submit_builds(self, agents: Sequence[AgentModel | AgentSpec]) -> None:
         for i, a in enumerate(agents):
-            j = i % self.workers
-            self._building.append((j, self._pool(j).submit(_prepare, *self._record(a))))
-
-    def _built(self) -> None:
-        building, self._building = self._building, []
-        broken: set[int] = set()
-        for j, fut in building:
-            try:
-                fut.result()
-            except BrokenProcessPool:  # the worker died while building: the next request starts a fresh one
-                broken.add(j)
-            except Exception:  # noqa: BLE001 - a build that fails is reported by the first request
-                pass
-        for j in sorted(broken):
-            self._replace(j, kill=False)
+            self._building.append(self._send(i % self.workers, _prepare, *self._record(a)))
 
     def worker_pids(self) -> list[int | None]:
         """Process id of each running worker (``None`` where none has started yet)."""
         pids: list[int | None] = []
         for pool in self._pools:
-            procs = list(getattr(pool, "_processes", {}).values()) if pool is not None else []
+            procs = _processes(pool)
             pids.append(procs[0].pid if procs else None)
         return pids
+
+    def terminate(self) -> None:
+        for pool in list(self._pools):
+            for proc in _processes(pool):
+                with contextlib.suppress(Exception):
+                    proc.kill()
 
     def evaluate(
         self,
@@ -491,13 +575,13 @@ class ProcessExecutor(_RemoteExecutor):
             queues.append(deque(tuple(mine[k : k + size]) for k in range(0, len(mine), size)))
         futures: dict[tuple[int, ...], Future[Any]] = {}
         started = [0.0] * self.workers  # when the batch at the head of each queue began, s
-        lost = [0] * self.workers
+
+        losses = _Losses(self.retries)
 
         def submit(j: int) -> None:
-            pool = self._pool(j)
             for batch in queues[j]:
                 reqs = [(*records[i], params[i], warm[i], use_guard, want_hessian) for i in batch]
-                futures[batch] = pool.submit(_serve_batch, reqs)
+                futures[batch] = self._send(j, _serve_batch, reqs)
             started[j] = time.perf_counter()
 
         for j in range(self.workers):
@@ -517,16 +601,14 @@ class ProcessExecutor(_RemoteExecutor):
                     try:
                         replies = fut.result()
                     except BrokenProcessPool:
-                        # The worker died: its unanswered requests go again to a fresh process.
-                        self._replace(j, kill=False)
-                        lost[j] += 1
-                        if lost[j] > self.retries:
-                            for b in queues[j]:
-                                for k in b:
-                                    out[k] = _failed(agents[k], params[k], Status.FAILED,
-                                                     f"worker lost {lost[j]} times in this round")  # fmt: skip
-                            queues[j].clear()
-                        else:
+                        # The worker died: its unanswered requests go again to a fresh process (_send
+                        # replaces the dead one), as long as the retry policy allows.
+                        again = [b for b in queues[j] if losses.resend(b)]
+                        for b in set(queues[j]) - set(again):
+                            for k in b:
+                                out[k] = losses.failed(agents[k], params[k], k)
+                        queues[j] = deque(again)
+                        if again:
                             submit(j)
                         continue
                     for i, (reply, _pid) in zip(batch, replies, strict=True):
@@ -552,6 +634,11 @@ class ProcessExecutor(_RemoteExecutor):
             self._pools[j] = None
 
 
+def _processes(pool: ProcessPoolExecutor | None) -> list[Any]:
+    """The live processes of a pool (concurrent.futures keeps them in a private mapping)."""
+    return list((getattr(pool, "_processes", None) or {}).values()) if pool is not None else []
+
+
 class DaskExecutor(_RemoteExecutor):
     """Solve agents on a Dask distributed cluster (the optional ``cluster`` extra).
 
@@ -561,17 +648,25 @@ class DaskExecutor(_RemoteExecutor):
         The fleet whose agents are solved (the workers build them from its records).
     scheduler : str, optional
         Address of a running scheduler, ``tcp://HOST:PORT``. When omitted, a ``LocalCluster`` of
-        ``workers`` single-threaded worker processes is started on the loopback interface (127.0.0.1) and
-        closed with the executor.
+        ``workers`` single-threaded worker processes is started and closed with the executor: on the
+        loopback interface (127.0.0.1), on ports the system chooses (no dashboard), speaking TLS with
+        temporary credentials made for it alone (``distributed.security.Security.temporary``; the
+        ``cryptography`` package, part of the ``cluster`` extra).
     workers : int
         Number of workers of the local cluster.
     solver_options, time_limit, retries, grace
         As for :class:`ProcessExecutor`.
+    worker_wait : float
+        Seconds to wait while the cluster has no worker at all (:data:`WORKER_WAIT`). After that the local
+        cluster is replaced by a new one (scheduler, workers and credentials) and the round's unanswered
+        requests are sent again; on another scheduler they are failed solves, and later rounds fail at once
+        until a worker shows up. This bound holds with or without ``time_limit``.
 
     Agent ``i`` is sent preferably to the ``i mod W``-th worker (by address); the scheduler may move it when
     that worker is gone. Every worker keeps its own cache of built agents (a module-level dictionary of the
-    worker process). A lost worker's requests are rescheduled by Dask itself; a request that still fails
-    with a lost worker is sent again up to ``retries`` times.
+    worker process). A lost worker's requests are rescheduled by Dask itself; a request still bound to a
+    worker that has left the cluster (Dask leaves it waiting for that worker), or that fails with a lost
+    worker, is sent again up to ``retries`` times.
     """
 
     def __init__(
@@ -584,6 +679,7 @@ class DaskExecutor(_RemoteExecutor):
         time_limit: float | None = None,
         retries: int = 2,
         grace: float = REPLY_GRACE,
+        worker_wait: float = WORKER_WAIT,
     ) -> None:
         try:
             import distributed
@@ -593,23 +689,20 @@ class DaskExecutor(_RemoteExecutor):
             ) from exc
         if not (isinstance(workers, int) and workers >= 1):
             raise ValueError(f"'workers' must be an integer >= 1, got {workers!r}")
+        if not (isinstance(worker_wait, int | float) and 0 < worker_wait < float("inf")):
+            raise ValueError(f"'worker_wait' must be a number of seconds > 0, got {worker_wait!r}")
         super().__init__(spec, solver_options=solver_options, time_limit=time_limit, retries=retries, grace=grace)
+        self.workers = workers
+        self.worker_wait = float(worker_wait)
         self._cluster = None
         self._tag = os.urandom(4).hex()  # task keys unique to this executor on a shared scheduler
+        self._workerless_since: float | None = None  # when the cluster was first seen without a worker
         if scheduler is None:
-            import logging
-
-            import dask
-
-            # No work stealing on our own cluster: moving an agent's request means building it again.
-            with dask.config.set({"distributed.scheduler.work-stealing": False}):
-                self._cluster = distributed.LocalCluster(
-                    n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-                    dashboard_address=None, silence_logs=logging.ERROR,
-                )  # fmt: skip
-            self.client = distributed.Client(self._cluster)
+            self._cluster = _local_cluster(workers)
+            self.client = distributed.Client(self._cluster)  # with the cluster's credentials
         else:
             self.client = distributed.Client(scheduler)
+        self.scheduler = self.client.scheduler.address
         self._round = 0
 
     def prepare(self, agents: Sequence[AgentModel]) -> None:
@@ -623,9 +716,24 @@ class DaskExecutor(_RemoteExecutor):
     def _submit_builds(self, agents: Sequence[AgentModel | AgentSpec]) -> None:
         addresses = self.worker_addresses()
         for i, a in enumerate(agents):
-            where = {"workers": [addresses[i % len(addresses)]], "allow_other_workers": True} if addresses else {}
+            target = addresses[i % len(addresses)] if addresses else None
             key = f"negotiate-{self._tag}-build-{i}"
-            self._building.append(self.client.submit(_prepare, *self._record(a), key=key, pure=False, **where))
+            self._building.append((self._submit(target, _prepare, *self._record(a), key=key), target))
+
+    def _built(self) -> None:
+        """Wait for the builds that :meth:`start` began, as a round waits for its answers; builds left
+        unfinished (a worker gone, no worker) are dropped: the requests build what is missing."""
+        building, self._building = self._building, []
+        if building:
+            futures, targets = zip(*building, strict=True)
+            self._await(futures, targets, None)
+            for fut in futures:
+                with contextlib.suppress(Exception):  # nothing for finished ones, nor on a replaced cluster
+                    fut.cancel()
+
+    def _submit(self, target: str | None, fn: Any, *args: Any, key: str) -> Any:
+        where = {"workers": [target], "allow_other_workers": True} if target is not None else {}
+        return self.client.submit(fn, *args, key=key, pure=False, **where)
 
     def worker_addresses(self) -> list[str]:
         """Addresses of the cluster's workers, sorted."""
@@ -650,7 +758,8 @@ class DaskExecutor(_RemoteExecutor):
         out: list[AgentOutcome | None] = [None] * n
         pending = list(range(n))
         alone: set[int] = set()  # requests of a batch that hung: sent one per task to find the one that hangs
-        attempt, passes = 0, 0  # attempt: passes that resent requests of lost workers
+        losses = _Losses(self.retries)
+        passes = 0
         while pending:
             addresses = self.worker_addresses()
             w = max(1, len(addresses))
@@ -668,38 +777,53 @@ class DaskExecutor(_RemoteExecutor):
             singles = [i for i in pending if i in alone]
             batches += [(k, (i,)) for k, i in enumerate(singles[:w])]
             later = singles[w:]
-            futures = {}
+            futures, targets = [], []
             for b, (j, batch) in enumerate(batches):
                 reqs = [(*records[i], params[i], warm[i], use_guard, want_hessian) for i in batch]
-                where = {"workers": [addresses[j]], "allow_other_workers": True} if addresses else {}
+                target = addresses[j] if addresses else None
                 packed = pickle.dumps(reqs, protocol=pickle.HIGHEST_PROTOCOL)
-                futures[batch] = self.client.submit(
-                    _serve_packed, packed, key=f"negotiate-{self._tag}-{self._round}-{passes}-{b}", pure=False,
-                    **where,
-                )  # fmt: skip
+                key = f"negotiate-{self._tag}-{self._round}-{passes}-{b}"
+                futures.append(self._submit(target, _serve_packed, packed, key=key))
+                targets.append(target)
             # Requests queue on single-threaded workers, so the budget covers the longest queue.
             load = [0] * w
             for j, batch in batches:
                 load[j] += len(batch)
             timeout = None if budget is None else budget * max(load)
-            _wait_quiet(distributed, list(futures.values()), timeout)
+            gone, workerless = self._await(futures, targets, timeout)
             retry: list[int] = []
             stuck_workers: set[str] = set()
-            lost = False
-            for batch, fut in futures.items():
-                if fut.status == "finished":
+            for k, ((_, batch), fut) in enumerate(zip(batches, futures, strict=True)):
+                if k not in gone and fut.status == "finished":
                     for i, (reply, _pid) in zip(batch, pickle.loads(fut.result()), strict=True):
                         out[i] = self._attach(agents[i], reply)
-                elif fut.status == "error":
-                    exc = fut.exception()
-                    if isinstance(exc, distributed.KilledWorker) and attempt < self.retries:
+                    continue
+                error = fut.exception() if k not in gone and fut.status == "error" else None
+                if workerless:
+                    fut.cancel()
+                    for i in batch:
+                        out[i] = _failed(agents[i], params[i], Status.FAILED,
+                                         f"no worker alive on the Dask scheduler {self.scheduler} for "
+                                         f"{self.worker_wait:.3g} s; the request was not answered")  # fmt: skip
+                elif (
+                    k in gone
+                    or fut.status in ("cancelled", "lost")
+                    or isinstance(error, distributed.KilledWorker)
+                    or budget is None  # (not answered though the wait had no end: lost too)
+                ):
+                    # Lost with its worker, left bound to a worker that is gone, or cancelled by the cluster.
+                    with contextlib.suppress(Exception):  # (a replaced local cluster took its client along)
+                        fut.cancel()
+                    self.lost_workers += 1
+                    if losses.resend(batch):
                         retry += batch
-                        self.lost_workers += 1
-                        lost = True
                     else:
                         for i in batch:
-                            out[i] = _failed(agents[i], params[i], Status.FAILED, f"worker error: {exc!r}")
-                elif budget is not None and fut.status in ("pending", "processing"):
+                            out[i] = losses.failed(agents[i], params[i], i)
+                elif error is not None:
+                    for i in batch:
+                        out[i] = _failed(agents[i], params[i], Status.FAILED, f"worker error: {error!r}")
+                else:
                     # Still running or queued after the budget: a single request counts as hung, a batch is
                     # split and sent again one by one.
                     if len(batch) == 1:
@@ -709,20 +833,79 @@ class DaskExecutor(_RemoteExecutor):
                         alone.update(batch)
                     stuck_workers.update(self._where(fut))
                     fut.cancel()
-                elif attempt < self.retries:  # lost with its worker or cancelled by the cluster
-                    retry += batch
-                    self.lost_workers += 1
-                    lost = True
-                else:
-                    for i in batch:
-                        out[i] = _failed(agents[i], params[i], Status.FAILED, f"no answer (request {fut.status})")
             if stuck_workers:
                 self.lost_workers += len(stuck_workers)
-                self.client.restart_workers(sorted(stuck_workers), raise_for_error=False)
+                self._restart_workers(stuck_workers)
             pending = sorted(retry + later)
             passes += 1
-            attempt += int(lost)
         return out  # type: ignore[return-value]
+
+    def _await(
+        self, futures: Sequence[Any], targets: Sequence[str | None], timeout: float | None
+    ) -> tuple[set[int], bool]:
+        """Wait until every future is done or ``timeout`` s have passed, looking at the cluster's workers every
+        :data:`_POLL` s. Returns early with the indices of unfinished futures bound to a worker that has left
+        the cluster (Dask would keep them waiting for it), or with True when the cluster has had no worker for
+        ``worker_wait`` s (on a scheduler this executor did not start; a local cluster is replaced instead, and
+        every future counts as gone with it)."""
+        import distributed
+
+        end = None if timeout is None else time.monotonic() + timeout
+        while True:
+            step = _POLL if end is None else max(0.0, min(_POLL, end - time.monotonic()))
+            with contextlib.suppress(TimeoutError):
+                distributed.wait(futures, timeout=step)
+                return set(), False
+            now = time.monotonic()
+            if end is not None and now >= end:
+                return set(), False
+            alive = set(self.worker_addresses())
+            if alive:
+                self._workerless_since = None
+                gone = {k for k, (f, t) in enumerate(zip(futures, targets, strict=True))
+                        if t is not None and t not in alive and not f.done()}  # fmt: skip
+                if gone:
+                    return gone, False
+                continue
+            if self._workerless_since is None:
+                self._workerless_since = now
+            if now - self._workerless_since < self.worker_wait:
+                continue
+            if self._cluster is None:
+                return set(), True
+            self._restart_local()
+            return set(range(len(futures))), False
+
+    def _restart_workers(self, addresses: set[str]) -> None:
+        """Restart the workers at ``addresses`` (a hung request occupies them). On the local cluster the worker
+        processes are killed and their nannies start new ones at once: Dask's graceful restart can time out
+        on a busy machine, and the scheduler then closes the nanny for good."""
+        if self._cluster is None:
+            self.client.restart_workers(sorted(addresses), raise_for_error=False)
+            return
+        self._kill_workers(lambda nanny: nanny.worker_address in addresses)
+
+    def _kill_workers(self, which: Any) -> None:
+        """SIGKILL the local cluster's worker processes whose nanny passes ``which`` (signal-handler safe)."""
+        for nanny in list(self._cluster.workers.values()) if self._cluster is not None else ():
+            with contextlib.suppress(Exception):
+                if which(nanny) and nanny.pid:
+                    os.kill(nanny.pid, signal.SIGKILL)
+
+    def _restart_local(self) -> None:
+        """Replace the local cluster after it lost every worker for good: a new scheduler and new workers
+        (and credentials), started as at construction, which returns once they are up."""
+        import distributed
+
+        self._workerless_since = None
+        self.lost_workers += self.workers
+        with contextlib.suppress(Exception):
+            self.client.close()
+        with contextlib.suppress(Exception):
+            self._cluster.close()
+        self._cluster = _local_cluster(self.workers)
+        self.client = distributed.Client(self._cluster)
+        self.scheduler = self.client.scheduler.address
 
     def _where(self, fut: Any) -> list[str]:
         """Workers processing ``fut`` (empty when unknown)."""
@@ -734,6 +917,9 @@ class DaskExecutor(_RemoteExecutor):
         where = [w for w, keys in processing.items() if fut.key in keys]
         return where or list(info.get(fut.key, ()))
 
+    def terminate(self) -> None:
+        self._kill_workers(lambda nanny: True)
+
     def close(self) -> None:
         self.client.close()
         if self._cluster is not None:
@@ -741,11 +927,35 @@ class DaskExecutor(_RemoteExecutor):
             self._cluster = None
 
 
-def _wait_quiet(distributed: Any, futures: list[Any], timeout: float | None) -> None:
+def _local_cluster(workers: int) -> Any:
+    """A Dask ``LocalCluster`` of ``workers`` single-threaded worker processes that only this process can use:
+    loopback interface, ports chosen by the system (the scheduler's HTTP endpoint, which Dask always opens,
+    included: no dashboard, health check only), TLS with temporary credentials made here."""
+    import logging
+
+    import dask
+    import distributed
+
     try:
-        distributed.wait(futures, timeout=timeout)
-    except TimeoutError:
-        pass
+        from distributed.security import Security
+
+        security = Security.temporary()
+    except ImportError as exc:
+        raise ImportError(
+            "the local Dask cluster needs the 'cryptography' package for its TLS credentials: "
+            "pip install 'negotiate[cluster]'"
+        ) from exc
+    settings = {
+        # No work stealing on our own cluster: moving an agent's request means building it again.
+        "distributed.scheduler.work-stealing": False,
+        "distributed.scheduler.http.routes": ["distributed.http.health"],
+    }
+    with dask.config.set(settings):
+        return distributed.LocalCluster(
+            n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1", protocol="tls://",
+            security=security, scheduler_port=0, dashboard_address=None,
+            scheduler_kwargs={"dashboard_address": "127.0.0.1:0"}, silence_logs=logging.ERROR,
+        )  # fmt: skip
 
 
 def make_executor(

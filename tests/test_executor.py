@@ -8,7 +8,10 @@ different warm start or a different solve order would show).
 
 from __future__ import annotations
 
+import contextlib
 import pickle
+import socket
+import warnings
 from dataclasses import replace
 from pathlib import Path
 
@@ -115,18 +118,62 @@ class TestProcessExecutor:
             ProcessExecutor(spec, 1, time_limit=0)
 
 
+@pytest.fixture(scope="module")
+def local_cluster(cell):
+    """A two-worker local cluster started while port 8787 (Dask's usual dashboard port) is taken: bound here when
+    free, else already held by another program. Any warning while it starts is an error."""
+    pytest.importorskip("distributed", reason=SKIP_DASK)
+    with socket.socket() as taken:
+        with contextlib.suppress(OSError):
+            taken.bind(("127.0.0.1", 8787))
+            taken.listen()
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")
+            ex = DaskExecutor(cell[0], workers=2)
+    with ex:
+        yield ex
+
+
 class TestDaskExecutor:
-    def test_same_schedule_as_in_process(self, cell):
-        """A two-worker LocalCluster on 127.0.0.1 gives the in-process schedule."""
-        pytest.importorskip("distributed", reason=SKIP_DASK)
+    def test_same_schedule_as_in_process(self, cell, local_cluster):
+        """A two-worker local cluster on 127.0.0.1 gives the in-process schedule."""
         spec, agents, ref = cell
-        with DaskExecutor(spec, workers=2) as ex:
-            ex.start()
-            addresses = ex.worker_addresses()
-            res = run_fleet(spec, agents, executor=ex)
-        assert len(addresses) == 2 and all(a.startswith("tcp://127.0.0.1:") for a in addresses)
+        ex = local_cluster
+        ex.start()
+        addresses = ex.worker_addresses()
+        res = run_fleet(spec, agents, executor=ex)
+        assert len(addresses) == 2 and all(a.startswith("tls://127.0.0.1:") for a in addresses)
         assert _rel(res.coordination.P, ref.coordination.P) <= 1e-9
         assert res.coordination.agent_solves == ref.coordination.agent_solves
+
+    def test_no_fixed_port(self, local_cluster):
+        """The local cluster started (the fixture) although 8787 was taken: its scheduler and its HTTP endpoint
+        listen on ports the system chose, never on Dask's default ones (8786, 8787)."""
+        ex = local_cluster
+        http = ex.client.run_on_scheduler(_http_port)
+        port = int(ex.client.scheduler.address.rsplit(":", 1)[1])
+        assert http not in (None, 8787) and port not in (8786, 8787)
+
+    def test_strangers_are_refused(self, local_cluster):
+        """The local cluster speaks TLS with credentials made for this run only: a client without them -- plain,
+        over TCP, or with credentials of its own -- cannot connect, so no other local user can run code in a
+        worker. The executor's own client works (the other tests)."""
+        import distributed
+        from distributed.security import Security
+
+        address = local_cluster.client.scheduler.address
+        assert address.startswith("tls://127.0.0.1:")
+        attempts = [{}, {"security": Security.temporary()}]
+        for kwargs in attempts:
+            with pytest.raises((OSError, TypeError)):
+                distributed.Client(address, timeout=5, **kwargs)
+        with pytest.raises(OSError):
+            distributed.Client("tcp://" + address.split("://", 1)[1], timeout=5)
+
+
+def _http_port(dask_scheduler) -> int | None:  # type: ignore[no-untyped-def]
+    server = getattr(dask_scheduler, "http_server", None)
+    return None if server is None else server.port
 
 
 class TestPlainCallable:
