@@ -8,6 +8,7 @@ different warm start or a different solve order would show).
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import pickle
 import socket
@@ -163,12 +164,26 @@ class TestDaskExecutor:
 
         address = local_cluster.client.scheduler.address
         assert address.startswith("tls://127.0.0.1:")
-        attempts = [{}, {"security": Security.temporary()}]
-        for kwargs in attempts:
-            with pytest.raises((OSError, TypeError)):
-                distributed.Client(address, timeout=5, **kwargs)
+
+        async def ask(where: str, security: Security | None = None) -> None:
+            # What a client does first: open a connection and ask the scheduler who it is. Done on this event
+            # loop with Dask's own comm layer (a full Client starts an IO-loop thread whose start Dask bounds by
+            # a fixed wall-clock wait that a loaded machine can miss).
+            args = (security or Security()).get_connection_args("client")
+            comm = await distributed.comm.connect(where, timeout=5, **args)
+            try:
+                await comm.write({"op": "identity"})
+                await comm.read()
+            finally:
+                await comm.close()
+
+        for security in (None, Security.temporary()):
+            with pytest.raises((OSError, TypeError)):  # TypeError: no TLS context at all for a tls:// address
+                asyncio.run(ask(address, security))
         with pytest.raises(OSError):
-            distributed.Client("tcp://" + address.split("://", 1)[1], timeout=5)
+            asyncio.run(ask("tcp://" + address.split("://", 1)[1]))
+        # The same request with the run's own credentials is answered: the refusals above are about them.
+        asyncio.run(ask(address, local_cluster.client.security))
 
 
 def _http_port(dask_scheduler) -> int | None:  # type: ignore[no-untyped-def]
