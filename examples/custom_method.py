@@ -10,19 +10,29 @@ the agents report -- values, value gradients, certificates -- and the feasible s
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
-from negotiate.coordinate import Evaluation, Method, Proposal, register_method
+from negotiate.coordinate import Evaluation, Method, Proposal, option, register_method
+
+
+@dataclass(frozen=True)
+class ShrinkingStepOptions:
+    """The method's options ([coordinator.options]); an unknown key or a mistyped value is refused."""
+
+    step: float = option(0.05, "length of the first step, in scaled units")
 
 
 @register_method
 class ShrinkingStep(Method):
     name = "shrinking-step"
+    Options = ShrinkingStepOptions
 
     def start(self, first: Evaluation) -> None:
         # `first` is every agent's report at the starting point; keep the best point as the incumbent.
         self.incumbent = first
-        self.step = float(self.options.get("step", 0.05))  # scaled length of a step ([coordinator.options])
+        self.step = self.options["step"]  # declared above: a float, 0.05 unless the fleet file sets it
 
     def propose(self, latest: Evaluation) -> Proposal:
         # `latest` is the evaluation of the previous proposal (the start on the first call).

@@ -38,35 +38,46 @@ damping, which does not vanish just because ``kappa`` grew), relative to ``max(1
 it stops, the method resets the metric to that of a plain first step from the centre and asks once more
 (a learned metric can overstate the curvature on kinked or flat pieces and so promise too little).
 
-Options: ``serious`` (m = 0.1), ``downshift`` (gamma relative to the initial metric scale, 1e-3),
-``max_cuts`` (per agent, 25), ``keep_cuts`` (6, at least 2 n_i + 2 for an agent with n_i parameters:
-beyond that an agent keeps only the cuts active in the last master and its newest ones), ``first_step``
-(0.1, scaled length of the first step), ``hessian_metric`` (True: use smooth agents' value Hessians as
-their metric).
+Options: :class:`BundleOptions` (``[coordinator.options]``; the table is in docs/methods.md).
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 import scipy.sparse as sp
 
-from negotiate.coordinate import Evaluation, Method, Proposal, register_method
+from negotiate.coordinate import Evaluation, Method, Proposal, option, register_method
 from negotiate.qp import solve_qp
+
+
+@dataclass(frozen=True)
+class BundleOptions:
+    """Options of the proximal bundle method."""
+
+    serious: float = option(0.1, "serious-step test m: accept a trial realising at least m of the predicted decrease")
+    downshift: float = option(1e-3, "downshift gamma, relative to the initial metric scale (nonconvex cuts)")
+    max_cuts: int = option(25, "most cuts kept per agent")
+    keep_cuts: int = option(6, "beyond this many (at least 2 n_i + 2), an agent keeps only its active and newest cuts")
+    first_step: float = option(0.1, "length of the first step, in scaled units")
+    hessian_metric: bool = option(True, "use smooth agents' value Hessians as their proximal metric")
 
 
 @register_method
 class ProximalBundle(Method):
     name = "bundle"
     wants_hessian = True
+    Options = BundleOptions
 
     def start(self, first: Evaluation) -> None:
         self.s = self.feasible.scale
-        self.m = float(self.options.get("serious", 0.1))
-        self.gamma_rel = float(self.options.get("downshift", 1e-3))
-        self.max_cuts = int(self.options.get("max_cuts", 25))
-        self.keep_cuts = int(self.options.get("keep_cuts", 6))
-        self.first_step = float(self.options.get("first_step", 0.1))
-        self.use_hessian = bool(self.options.get("hessian_metric", True))
+        self.m = self.options["serious"]
+        self.gamma_rel = self.options["downshift"]
+        self.max_cuts = self.options["max_cuts"]
+        self.keep_cuts = self.options["keep_cuts"]
+        self.first_step = self.options["first_step"]
+        self.use_hessian = self.options["hessian_metric"]
         self.lay = self.feasible.layout
         self.cuts: list[list[tuple[np.ndarray, float, np.ndarray]]] = [[] for _ in self.lay.names]
         self.center = first if first.ok else None

@@ -18,27 +18,38 @@ subgradient step, the decrease its local model promises for a step of that lengt
 normalised by the largest entry, parameters with much smaller gradients move little in it: the test can
 stop early when one agent's gradient dominates (the bundle and Newton methods do not share this).
 
-Options (``[coordinator.options]``): ``armijo`` (1e-4), ``first_step`` (0.05, length of the first step in
-scaled units), ``guard_fallback`` (True: take subgradient steps when agents are flagged).
+Options: :class:`GradientOptions` (``[coordinator.options]``; the table is in docs/methods.md).
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
-from negotiate.coordinate import AgentReport, Evaluation, Method, Proposal, register_method
+from negotiate.coordinate import AgentReport, Evaluation, Method, Proposal, option, register_method
 from negotiate.qp import solve_qp
+
+
+@dataclass(frozen=True)
+class GradientOptions:
+    """Options of the projected gradient and projected Newton methods."""
+
+    armijo: float = option(1e-4, "sufficient-decrease constant of the backtracking (Armijo) test")
+    first_step: float = option(0.05, "length of the first step, in scaled units")
+    guard_fallback: bool = option(True, "take subgradient steps when the guard flags agents")
 
 
 @register_method
 class ProjectedGradient(Method):
     name = "gradient"
+    Options = GradientOptions
 
     def start(self, first: Evaluation) -> None:
         self.s = self.feasible.scale
-        self.armijo = float(self.options.get("armijo", 1e-4))
-        self.first_step = float(self.options.get("first_step", 0.05))
-        self.fallback = bool(self.options.get("guard_fallback", True))
+        self.armijo = self.options["armijo"]
+        self.first_step = self.options["first_step"]
+        self.fallback = self.options["guard_fallback"]
         self.x: Evaluation | None = first if first.ok else None
         self.incumbent = self.x
         self.alpha: float | None = None

@@ -212,7 +212,7 @@ def _check_spec(spec: FleetSpec, description: str, build: bool) -> CheckResult:
         )
     graph = conflict_graph(spec, models)
     resources, capacity_problems, warnings = _resource_rows(spec, graph, models, complete=build and not problems)
-    problems += capacity_problems
+    problems += capacity_problems + _option_problems(spec)
     schedule, schedule_detail = None, "not checked (not every agent was built)" if build else "not checked"
     if build and not problems:
         schedule, schedule_detail, schedule_problem = _schedule(spec, [models[a.name] for a in spec.agents])
@@ -235,6 +235,21 @@ def _check_spec(spec: FleetSpec, description: str, build: bool) -> CheckResult:
         problems=tuple(problems),
         warnings=tuple(warnings),
     )
+
+
+def _option_problems(spec: FleetSpec) -> list[Problem]:
+    """``[coordinator.options]`` the fleet's method does not declare (a built-in method; a user method named
+    by "module:Class" is not imported by a check)."""
+    from negotiate.coordinate import method_names
+    from negotiate.run import check_method_options
+
+    if spec.coordinator.method not in method_names():
+        return []
+    try:
+        check_method_options(spec)
+    except FleetError as exc:
+        return list(exc.problems)
+    return []
 
 
 def _schedule(spec: FleetSpec, agents: list[Any]) -> tuple[bool, str, Problem | None]:

@@ -202,7 +202,7 @@ def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ign
     from negotiate.errors import FleetError
     from negotiate.executor import make_executor
     from negotiate.fleet import build_agents
-    from negotiate.run import resolve_method, run_fleet, write_outputs
+    from negotiate.run import check_method_options, resolve_method, run_fleet, write_outputs
 
     if args.method is not None:
         try:  # imported once, before a checkpoint that names it is read
@@ -221,6 +221,11 @@ def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ign
     except CheckpointError as exc:
         print(f"negotiate run: {exc}", file=sys.stderr)
         return 2
+    try:  # options the method does not know are refused before anything is built
+        check_method_options(spec, args.method)
+    except (FleetError, ValueError) as exc:
+        print(exc, file=sys.stderr)
+        return 1
     limit = args.time_limit
     bar = None
     executor = None

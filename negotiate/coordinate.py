@@ -22,14 +22,27 @@ status, plus the weighted total. A :class:`Proposal` carries the next point, the
 measure (a predicted decrease relative to ``max(1, |total|)``), whether it has converged, and a short
 note. ``method.incumbent`` is the best accepted evaluation; the engine reports it at the end. Everything
 the CLI does with a built-in method (progress, outputs, ``--verify``) works with a user method too.
+
+Method options
+--------------
+A method declares its options (``[coordinator.options]`` in a fleet file, ``CoordinatorSettings.options``
+from Python) as a frozen dataclass in its ``Options`` class attribute: one field per option with its type,
+default and a docstring-like ``metadata["doc"]``. The engine hands the method ``self.options``, a plain dict
+holding every declared option (the default where none was given). An unknown key or a value of the wrong
+type is refused: :func:`option_problems` lists them, a fleet file's are a ``FleetError`` (see
+:func:`negotiate.run.check_method_options`), and from Python they are a warning and the default is used.
+A method whose ``Options`` is ``None`` receives the options as given, unchecked. :func:`options_table`
+writes the Markdown table of a method's options that docs/methods.md shows.
 """
 
 from __future__ import annotations
 
+import math
 import time
+import warnings
 from abc import ABC, abstractmethod
-from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field, replace
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import MISSING, dataclass, field, fields, replace
 from typing import Any, ClassVar
 
 import numpy as np
@@ -51,7 +64,12 @@ __all__ = [
     "Method",
     "Proposal",
     "RoundRecord",
+    "method_options",
+    "option",
+    "option_problems",
+    "options_table",
     "coordinate",
+    "method_class",
     "method_names",
     "register_method",
 ]
@@ -144,11 +162,13 @@ class Method(ABC):
     name: ClassVar[str] = "method"
     wants_hessian: ClassVar[bool] = False
     """Set to True to receive each smooth agent's value Hessian in ``AgentReport.hessian``."""
+    Options: ClassVar[type | None] = None
+    """A dataclass declaring the method's options (see the module docstring); ``None``: unchecked."""
 
     def __init__(self, feasible: FeasibleSet, settings: CoordinatorSettings) -> None:
         self.feasible = feasible
         self.settings = settings
-        self.options = dict(settings.options)
+        self.options = method_options(type(self), settings.options)
         self.incumbent: Evaluation | None = None
 
     @abstractmethod
@@ -163,6 +183,85 @@ class Method(ABC):
         return measure <= self.settings.tolerance
 
 
+def option(default: Any, doc: str) -> Any:
+    """A field of a method's ``Options`` dataclass: its default and one line saying what it does."""
+    return field(default=default, metadata={"doc": doc})
+
+
+_TYPE_NAMES = {bool: "true or false", int: "an integer", float: "a finite number", str: "a string"}
+
+
+def _option_type(f: Any) -> type:
+    # ``from __future__ import annotations`` leaves the annotation as a string.
+    t = f.type if isinstance(f.type, type) else {"bool": bool, "int": int, "float": float, "str": str}.get(f.type)
+    if t is None:
+        raise TypeError(f"option {f.name!r}: type {f.type!r} is not one of bool, int, float, str")
+    return t
+
+
+def _fits(t: type, value: Any) -> bool:
+    if t is bool:
+        return isinstance(value, bool)
+    if t is int:
+        return isinstance(value, int) and not isinstance(value, bool)
+    if t is float:
+        return isinstance(value, int | float) and not isinstance(value, bool) and math.isfinite(value)
+    return isinstance(value, t)
+
+
+def option_problems(cls: type[Method], given: Mapping[str, Any]) -> list[tuple[str, str, Any]]:
+    """The keys of ``given`` that ``cls`` does not accept, as ``(key, expected, found value)``: unknown keys
+    and values of the wrong type (``true``/``false`` for a switch, an integer for a count, a finite number
+    for a real). Empty when ``cls.Options`` is ``None``."""
+    if cls.Options is None:
+        return []
+    declared = {f.name: f for f in fields(cls.Options)}
+    out: list[tuple[str, str, Any]] = []
+    for key, value in given.items():
+        f = declared.get(key)
+        if f is None:
+            names = ", ".join(declared) or "none"
+            out.append((key, f"one of the {cls.name} method's options ({names})", value))
+        elif not _fits(_option_type(f), value):
+            out.append((key, _TYPE_NAMES[_option_type(f)], value))
+    return out
+
+
+def method_options(cls: type[Method], given: Mapping[str, Any]) -> dict[str, Any]:
+    """Every option of ``cls`` (defaults filled in) as a plain dict; what :func:`option_problems` refuses
+    is dropped with a warning. A method without ``Options`` gets ``given`` unchanged."""
+    if cls.Options is None:
+        return dict(given)
+    bad = option_problems(cls, given)
+    for key, expected, value in bad:
+        warnings.warn(
+            f"coordination method {cls.name!r}: option {key!r} expected {expected}, got {value!r}; ignored",
+            UserWarning,
+            stacklevel=4,
+        )
+    refused = {key for key, _, _ in bad}
+    out = {}
+    for f in fields(cls.Options):
+        if f.name in given and f.name not in refused:
+            value = given[f.name]
+            out[f.name] = float(value) if _option_type(f) is float else value
+        else:
+            out[f.name] = f.default if f.default is not MISSING else f.default_factory()  # type: ignore[misc]
+    return out
+
+
+def options_table(cls: type[Method]) -> str:
+    """The Markdown table of a method's options (key, type, default, meaning), as docs/methods.md shows it."""
+    if cls.Options is None:
+        return f"The {cls.name} method declares no options."
+    rows = ["| key | type | default | meaning |", "|---|---|---|---|"]
+    for f in fields(cls.Options):
+        t = _option_type(f)
+        default = ("true" if f.default else "false") if t is bool else repr(f.default)
+        rows.append(f"| `{f.name}` | {t.__name__} | {default} | {f.metadata.get('doc', '')} |")
+    return "\n".join(rows)
+
+
 _METHODS: dict[str, type[Method]] = {}
 
 
@@ -172,6 +271,14 @@ def register_method(cls: type[Method]) -> type[Method]:
         raise TypeError(f"a coordination method must subclass negotiate.coordinate.Method, got {cls!r}")
     _METHODS[cls.name] = cls
     return cls
+
+
+def method_class(name: str) -> type[Method]:
+    """The method registered under ``name``; a ``ValueError`` naming the registered ones when there is none."""
+    _load_builtins()
+    if name not in _METHODS:
+        raise ValueError(f"unknown coordination method {name!r}; expected one of {sorted(_METHODS)}")
+    return _METHODS[name]
 
 
 def method_names() -> list[str]:
@@ -384,12 +491,9 @@ def coordinate(
     """
     t0 = time.perf_counter() - (resume.elapsed if resume is not None else 0.0)
     settings = settings or CoordinatorSettings()
-    _load_builtins()
-    if settings.method not in _METHODS:
-        raise ValueError(f"unknown coordination method {settings.method!r}; expected one of {sorted(_METHODS)}")
+    method_cls = method_class(settings.method)
     orders = orders if orders is not None else fcfs_orders(agents, resources)
     feasible = build_feasible_set(agents, resources, orders)
-    method_cls = _METHODS[settings.method]
     oracle = Oracle(agents, feasible, settings.guard, method_cls.wants_hessian, executor)
     history: list[RoundRecord] = []
     rounds, k0 = 0, 0

@@ -214,7 +214,8 @@ _COORDINATOR_KEYS = (
         _spec_default(CoordinatorSettings, "guard"),
         "nonsmooth guard on (one-sided gradients where weakly active constraints are reported)",
     ),
-    _Key("options", "table", "-", {}, "method-specific options, passed to the method as they are"),
+    _Key("options", "table", "-", {},
+         "the method's own options (docs/methods.md); a key it does not declare, or a mistyped value, is refused"),
 )
 _AGENT_KEYS = (
     _Key(
@@ -1187,7 +1188,9 @@ def schema_markdown() -> str:
         '`[resources.<name>]` with `kind = "capacity"`', "A resource shared by amount in time blocks.", _CAPACITY_KEYS
     )
     section(
-        "`[coordinator]`", "Optional; `[coordinator.options]` is passed to the method unchanged.", _COORDINATOR_KEYS
+        "`[coordinator]`",
+        "Optional; `[coordinator.options]` holds options the method declares (docs/methods.md).",
+        _COORDINATOR_KEYS,
     )
     section(
         "`[agents.<name>]`: every agent",

@@ -19,6 +19,7 @@ import importlib.util
 import io
 import json
 import os
+import sys
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import asdict, dataclass, field, replace
@@ -31,7 +32,16 @@ from negotiate._files import write_atomic
 from negotiate.agent import AgentModel
 from negotiate.centralized import CentralizedResult, solve_centralized
 from negotiate.checkpoint import FILENAME as CHECKPOINT_FILE
-from negotiate.coordinate import CoordinationResult, Method, RoundRecord, coordinate, register_method
+from negotiate.coordinate import (
+    CoordinationResult,
+    Method,
+    RoundRecord,
+    coordinate,
+    method_class,
+    option_problems,
+    register_method,
+)
+from negotiate.errors import FleetError, Problem, describe
 from negotiate.nlp import try_solve
 from negotiate.orders import OrderTrial, search_orders
 from negotiate.results import SCHEDULE_COLUMNS, RunFolderError, ScheduleRow, write_result_files
@@ -42,6 +52,7 @@ __all__ = [
     "OUTPUT_FILES",
     "RunResult",
     "ScheduleRow",
+    "check_method_options",
     "claim_run_folder",
     "clear_outputs",
     "resolve_method",
@@ -132,7 +143,13 @@ def resolve_method(name: str) -> str:
             if spec is None or spec.loader is None:
                 raise ImportError(f"no such file {module!r}")
             mod = importlib.util.module_from_spec(spec)
-            spec.loader.exec_module(mod)
+            # Registered before it runs, as the import system does (dataclasses and pickle look it up there).
+            sys.modules[spec.name] = mod
+            try:
+                spec.loader.exec_module(mod)
+            except BaseException:
+                sys.modules.pop(spec.name, None)
+                raise
         else:
             mod = importlib.import_module(module)
         cls = getattr(mod, attr)
@@ -142,6 +159,19 @@ def resolve_method(name: str) -> str:
         raise ValueError(f"{name!r} is not a subclass of negotiate.coordinate.Method")
     register_method(cls)
     return cls.name
+
+
+def check_method_options(spec: FleetSpec, method: str | None = None) -> None:
+    """Refuse ``[coordinator.options]`` that the method (``method`` or the fleet's own, a registered name)
+    does not declare, or whose values have the wrong type: a :class:`~negotiate.errors.FleetError` naming
+    the fleet file, the key, what was expected and what was found (every such key at once)."""
+    cls = method_class(method or spec.coordinator.method)
+    problems = [
+        Problem(spec.source, "coordinator.options", key, expected, describe(value))
+        for key, expected, value in option_problems(cls, spec.coordinator.options)
+    ]
+    if problems:
+        raise FleetError(problems)
 
 
 def _schedule(
@@ -219,6 +249,9 @@ def run_fleet(
 
     Raises
     ------
+    FleetError
+        When ``[coordinator.options]`` holds a key the method does not declare or a value of the wrong type
+        (:func:`check_method_options`), before anything is built or solved.
     DeadlockError, InfeasibleOrdersError
         When the first order (first-come-first-served) admits no schedule; later candidates of an order
         search that admit none are recorded as infeasible trials and skipped.
@@ -230,6 +263,7 @@ def run_fleet(
     settings = spec.coordinator
     if method is not None:
         settings = replace(settings, method=resolve_method(method))
+    check_method_options(spec, settings.method)
     book = None
     if checkpoint_dir is not None:
         from negotiate.checkpoint import RunBook

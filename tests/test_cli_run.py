@@ -152,6 +152,20 @@ class TestRun:
         assert "no schedule meets the orders bridge: early > late" in err and "Traceback" not in err
         assert "bridge: early leaves + gap <= late enters" in err
 
+    def test_unknown_method_options_exit_1_before_building(self, tmp_path, capsys):
+        """A misspelt option and a mistyped switch: exit 1 naming both, nothing built or written."""
+        path = tmp_path / "two.toml"
+        path.write_text(LONG_GAP_TRUCKS.replace("GAP", "6.0").replace(
+            'order = "swap"', 'order = "swap"\n\n[coordinator.options]\nfirst_stepp = 1\nhessian_metric = "no"'))
+        code = main(["run", str(path), "--out", str(tmp_path / "o"), "--quiet"])
+        text, err = capsys.readouterr()
+        assert code == 1 and "Traceback" not in err and "agents" not in text
+        assert f"{path}: [coordinator.options] key 'first_stepp': expected one of the bundle method's options" in err
+        assert f"{path}: [coordinator.options] key 'hessian_metric': expected true or false, found \"no\"" in err
+        assert not (tmp_path / "o" / "run.json").exists()
+        assert main(["check", str(path)]) == 1
+        assert "key 'first_stepp'" in capsys.readouterr().out
+
     def test_missing_file_exits_2(self, tmp_path, capsys):
         """A file that cannot be read exits 2."""
         assert main(["run", str(tmp_path / "none.toml"), "--out", str(tmp_path / "o"), "--quiet"]) == 2

@@ -368,3 +368,44 @@ class TestUserMethods:
                 [CapacityResource("grid", (1.0,))],
                 replace(settings("bundle"), method="nope"),
             )
+
+
+class TestMethodOptions:
+    """Methods declare their options; unknown keys and mistyped values never pass silently."""
+
+    def test_problems_name_unknown_and_mistyped_keys(self):
+        """An unknown key lists the declared ones; each type is checked as TOML gives it."""
+        from negotiate.coordinate import method_class, option_problems
+
+        bundle = method_class("bundle")
+        given = {"first_stepp": 1, "hessian_metric": "no", "serious": True, "downshift": float("nan"),
+                 "max_cuts": 25.0, "first_step": 1, "keep_cuts": 8}  # fmt: skip
+        problems = {key: expected for key, expected, _ in option_problems(bundle, given)}
+        assert problems == {
+            "first_stepp": "one of the bundle method's options "
+            "(serious, downshift, max_cuts, keep_cuts, first_step, hessian_metric)",
+            "hessian_metric": "true or false",
+            "serious": "a finite number",  # a switch is not a number
+            "downshift": "a finite number",
+            "max_cuts": "an integer",
+        }  # an integer is a fine number (first_step = 1), a count must be an integer (max_cuts = 25.0)
+
+    def test_python_settings_warn_and_keep_the_default(self):
+        """From Python an unknown or mistyped option warns (naming it) and the method runs on its default."""
+        agents = [quadratic_share_agent(f"a{i}", t, c) for i, (t, c) in enumerate([(4, 1), (3, 2), (5, 0.5)])]
+        st = settings("bundle", tolerance=1e-10, options={"first_stepp": 1.0, "hessian_metric": "no"})
+        with pytest.warns(UserWarning) as record:
+            res = coordinate(agents, [CapacityResource("grid", (9.0,))], st)
+        text = " ".join(str(w.message) for w in record)
+        assert "'first_stepp'" in text and "'hessian_metric' expected true or false, got 'no'" in text
+        np.testing.assert_allclose(res.P, TestClosedForm().expected(), atol=1e-6)  # same closed form as above
+
+    @pytest.mark.parametrize("name", ["bundle", "gradient"])
+    def test_docs_show_the_declared_options(self, name):
+        """docs/methods.md holds the table generated from the method's declaration."""
+        from pathlib import Path
+
+        from negotiate.coordinate import method_class, options_table
+
+        docs = (Path(__file__).parents[1] / "docs" / "methods.md").read_text()
+        assert options_table(method_class(name)) in docs
