@@ -38,6 +38,7 @@ NumPy scalar                ``{"$n": [dtype, value]}`` (bool, integer and float 
 NumPy array                 ``{"$a": [dtype, offset, shape, order]}``: a slice of the archive's flat array
                             of that dtype (bool, integer and float dtypes only), C or Fortran order
 :class:`~negotiate.status.Status`  ``{"$s": "converged"}``
+CoordinationStatus          ``{"$k": "max-rounds"}`` (:class:`~negotiate.status.CoordinationStatus`)
 record (:data:`RECORDS`)    ``{"$c": name, "f": {field: value}}``
 coordination method         ``{"$m": registered name, "feasible": ..., "settings": ..., "state": {attribute:
                             value}}``: the registered class is built from the feasible set and settings and
@@ -82,7 +83,7 @@ from negotiate.guard import GuardReport
 from negotiate.kkt import Certificate, ConstraintRef
 from negotiate.nlp import LocalResult
 from negotiate.spec import AgentSpec, CapacityResource, CoordinatorSettings, ExclusiveResource, FleetSpec
-from negotiate.status import Status
+from negotiate.status import CoordinationStatus, Status
 
 __all__ = [
     "FILENAME",
@@ -195,6 +196,8 @@ class _Encoder:
             return v
         if isinstance(v, Status):
             return {"$s": v.value}
+        if isinstance(v, CoordinationStatus):
+            return {"$k": v.value}
         if isinstance(v, np.generic) and v.dtype.kind in _DTYPE_KINDS:
             return {"$n": [v.dtype.str, v.item()]}
         if t is list:
@@ -276,6 +279,8 @@ class _Decoder:
             return self.objects[k]
         if "$s" in node:
             return Status(node["$s"])
+        if "$k" in node:
+            return CoordinationStatus(node["$k"])
         if "$n" in node:
             dt, value = _pair(node["$n"])
             dtype = _dtype(dt)

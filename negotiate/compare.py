@@ -27,6 +27,7 @@ from negotiate.coordinate import CoordinationResult, RoundRecord, coordinate, me
 from negotiate.coupling import build_feasible_set, fcfs_orders
 from negotiate.nlp import try_solve
 from negotiate.spec import FleetSpec
+from negotiate.status import CoordinationStatus
 
 __all__ = ["COMPARE_COLUMNS", "Comparison", "MethodRow", "compare_methods", "write_comparison"]
 
@@ -83,7 +84,7 @@ class Comparison:
                                    for i, (c, w) in enumerate(zip(b, widths, strict=True))))  # fmt: skip
         orders = "; ".join(f"{k}: {' > '.join(v)}" for k, v in self.orders.items()) or "none (no exclusive resource)"
         for r in self.rows:
-            if r.status == "error":
+            if r.status == CoordinationStatus.ERROR:
                 lines.append(f"{r.method}: {r.message}")
         lines.append(f"same orders for every method (first come, first served by free optimum): {orders}")
         return "\n".join(lines) + "\n"
@@ -135,7 +136,7 @@ def compare_methods(
     rows = []
     for m in names:
         if m in errors:
-            rows.append(MethodRow(m, "error", 0, 0, errors[m][0], float("nan"), None, errors[m][1]))
+            rows.append(MethodRow(m, CoordinationStatus.ERROR, 0, 0, errors[m][0], float("nan"), None, errors[m][1]))
             continue
         r = results[m]
         gap = None if ref is None or not r.evaluation.ok else (r.total - ref) / max(1e-300, abs(ref))

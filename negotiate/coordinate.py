@@ -54,7 +54,7 @@ from negotiate.guard import GuardReport
 from negotiate.kkt import Certificate
 from negotiate.nlp import LocalResult
 from negotiate.spec import CoordinatorSettings, Resource
-from negotiate.status import Status
+from negotiate.status import CoordinationStatus, Status
 
 __all__ = [
     "AgentReport",
@@ -321,8 +321,9 @@ class CoordinationResult:
         Weighted total cost there.
     evaluation : Evaluation
         All agents' reports there.
-    status : str
-        ``"converged"``, ``"max-rounds"`` or ``"failed"``.
+    status : CoordinationStatus
+        ``converged``, ``max-rounds`` or ``failed`` (a string enum; ``status.usable`` says whether the
+        schedule is one where every agent converged).
     message : str
         Why it stopped.
     rounds : int
@@ -340,7 +341,7 @@ class CoordinationResult:
     P: np.ndarray
     total: float
     evaluation: Evaluation
-    status: str
+    status: CoordinationStatus
     message: str
     rounds: int
     agent_solves: int
@@ -351,7 +352,7 @@ class CoordinationResult:
 
     @property
     def success(self) -> bool:
-        return self.status == "converged"
+        return self.status is CoordinationStatus.CONVERGED
 
     def params(self) -> dict[str, np.ndarray]:
         """Per-agent parameter vectors of the schedule."""
@@ -538,15 +539,15 @@ def coordinate(
 
     if resume is None:
         save(0)
-    status, message = "max-rounds", f"stopped after {settings.max_rounds} rounds"
+    status, message = CoordinationStatus.MAX_ROUNDS, f"stopped after {settings.max_rounds} rounds"
     for k in range(k0, settings.max_rounds + 1):
         prop = method.propose(latest)
         record(k, latest, prop)
         if prop.converged:
-            status, message = "converged", prop.note or "stopping test met"
+            status, message = CoordinationStatus.CONVERGED, prop.note or "stopping test met"
             break
         if prop.point is None:
-            status, message = "failed", prop.note or "the method produced no point"
+            status, message = CoordinationStatus.FAILED, prop.note or "the method produced no point"
             break
         if k == settings.max_rounds:
             break
@@ -555,7 +556,8 @@ def coordinate(
         save(k + 1)
     inc = method.incumbent if method.incumbent is not None else latest
     if not inc.ok:
-        status, message = "failed", f"no evaluation where all agents converged (failed: {', '.join(inc.failed)})"
+        status = CoordinationStatus.FAILED
+        message = f"no evaluation where all agents converged (failed: {', '.join(inc.failed)})"
     return CoordinationResult(
         P=inc.P,
         total=inc.total,

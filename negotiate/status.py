@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from enum import StrEnum
 
-__all__ = ["IPOPT_STATUS", "SOLUTION_PRESENT", "Status", "from_ipopt"]
+__all__ = ["IPOPT_STATUS", "SOLUTION_PRESENT", "CoordinationStatus", "Status", "from_ipopt"]
 
 
 class Status(StrEnum):
@@ -29,6 +29,28 @@ class Status(StrEnum):
 
     def __str__(self) -> str:
         return self.value
+
+
+class CoordinationStatus(StrEnum):
+    """Why a coordination stopped; :attr:`usable` says whether its schedule may be used (it is written either
+    way). ``negotiate run`` exits 0 for ``converged`` and 3 otherwise; ``run.json`` holds the value."""
+
+    CONVERGED = "converged"
+    """The method's stopping test was met: the schedule is its answer."""
+    MAX_ROUNDS = "max-rounds"
+    """The round limit came first: the best schedule found, every agent converged there, not certified."""
+    FAILED = "failed"
+    """No point where every agent converged (or the method produced none): no usable schedule."""
+    ERROR = "error"
+    """The method raised an exception (``negotiate compare`` reports it and goes on with the others)."""
+
+    def __str__(self) -> str:
+        return self.value
+
+    @property
+    def usable(self) -> bool:
+        """Whether the schedule is one where every agent's solve converged."""
+        return self in (CoordinationStatus.CONVERGED, CoordinationStatus.MAX_ROUNDS)
 
 
 SOLUTION_PRESENT = frozenset({Status.CONVERGED})

@@ -409,3 +409,25 @@ class TestMethodOptions:
 
         docs = (Path(__file__).parents[1] / "docs" / "methods.md").read_text()
         assert options_table(method_class(name)) in docs
+
+
+class TestCoordinationStatus:
+    """One status enum says why a coordination stopped and whether its schedule is usable."""
+
+    def test_round_limit_is_usable_not_converged(self):
+        """Stopped by max_rounds = 1 on the closed-form fleet: a usable schedule, not a converged one."""
+        from negotiate.status import CoordinationStatus
+
+        agents = [quadratic_share_agent(f"a{i}", t, c) for i, (t, c) in enumerate([(4, 1), (3, 2), (5, 0.5)])]
+        res = coordinate(agents, [CapacityResource("grid", (9.0,))], settings("gradient", max_rounds=1))
+        assert res.status is CoordinationStatus.MAX_ROUNDS and res.status == "max-rounds"
+        assert res.status.usable and not res.success
+        full = coordinate(agents, [CapacityResource("grid", (9.0,))], settings("bundle", tolerance=1e-10))
+        assert full.status is CoordinationStatus.CONVERGED and full.success and full.status.usable
+
+    def test_failed_and_error_are_not_usable(self):
+        """``failed`` (no point where every agent converged) and ``error`` mark schedules not to use."""
+        from negotiate.status import CoordinationStatus
+
+        assert not CoordinationStatus.FAILED.usable and not CoordinationStatus.ERROR.usable
+        assert {str(s) for s in CoordinationStatus} == {"converged", "max-rounds", "failed", "error"}
