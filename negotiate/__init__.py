@@ -11,15 +11,20 @@ Certificate, ConstraintRef, Tolerances
     The KKT certificate (LICQ, SOSC, active / weakly active sets, verdict) and its thresholds.
 Sensitivity
     dx*/dp, multiplier derivatives and the value Hessian, where the certificate allows them.
-Status
-    Outcome of a solve (``converged``, ``inaccurate``, ``infeasible``, ...).
+Status, CoordinationStatus
+    Outcome of a solve (``converged``, ``inaccurate``, ``infeasible``, ...), and why a coordination stopped
+    (``converged``, ``max-rounds``, ``failed``) with whether its schedule is usable.
 AgentModel, SlotParam, ReachableSet
     What a model builder hands to the coordinator.
 load_fleet, build_agents, FleetError
     Read a fleet file (every mistake reported as one FleetError) and build its agents.
-Method, register_method, CoordinatorSettings
-    The interface for a coordination method of your own, and the upper level's settings; the front over
-    all methods is :func:`negotiate.coordinate.coordinate`.
+coordinate, Method, register_method, option, Evaluation, AgentReport, Proposal, CoordinationResult
+    The front over every coordination method, and what a method of your own needs: the base class, its
+    registration, declared options, what it receives each round and what it returns; the engine's result.
+CoordinatorSettings, ExclusiveResource, CapacityResource
+    The upper level's settings and the shared resources (slots with a gap; capacity per time block).
+DeadlockError, InfeasibleOrdersError
+    Orders on exclusive resources that no schedule can meet (a cycle; an empty coupling polyhedron).
 run_fleet, write_outputs
     The main job as one call (orders, coordination, verification) and its files.
 
@@ -32,32 +37,53 @@ upper bound. See :mod:`negotiate.kkt`.
 """
 
 from negotiate.agent import AgentModel, ReachableSet, SlotParam
-from negotiate.coordinate import Method, register_method
+from negotiate.coordinate import (
+    AgentReport,
+    CoordinationResult,
+    Evaluation,
+    Method,
+    Proposal,
+    coordinate,
+    option,
+    register_method,
+)
+from negotiate.coupling import DeadlockError, InfeasibleOrdersError
 from negotiate.errors import FleetError
 from negotiate.fleet import build_agents, load_fleet
 from negotiate.kkt import Certificate, ConstraintRef, Tolerances
 from negotiate.nlp import LocalResult, ParametricNLP
 from negotiate.run import run_fleet, write_outputs
 from negotiate.sensitivity import Sensitivity
-from negotiate.spec import CoordinatorSettings
-from negotiate.status import Status
+from negotiate.spec import CapacityResource, CoordinatorSettings, ExclusiveResource
+from negotiate.status import CoordinationStatus, Status
 
 __all__ = [
     "AgentModel",
+    "AgentReport",
+    "CapacityResource",
     "Certificate",
     "ConstraintRef",
+    "CoordinationResult",
+    "CoordinationStatus",
     "CoordinatorSettings",
+    "DeadlockError",
+    "Evaluation",
+    "ExclusiveResource",
     "FleetError",
+    "InfeasibleOrdersError",
     "LocalResult",
     "Method",
     "ParametricNLP",
+    "Proposal",
     "ReachableSet",
     "Sensitivity",
     "SlotParam",
     "Status",
     "Tolerances",
     "build_agents",
+    "coordinate",
     "load_fleet",
+    "option",
     "register_method",
     "run_fleet",
     "write_outputs",
