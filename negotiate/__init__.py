@@ -18,9 +18,10 @@ AgentModel, SlotParam, ReachableSet
     What a model builder hands to the coordinator.
 load_fleet, build_agents, FleetError
     Read a fleet file (every mistake reported as one FleetError) and build its agents.
-coordinate, Method, register_method, option, Evaluation, AgentReport, Proposal, CoordinationResult
-    The front over every coordination method, and what a method of your own needs: the base class, its
-    registration, declared options, what it receives each round and what it returns; the engine's result.
+Method, register_method, option, Evaluation, AgentReport, Proposal, CoordinationResult
+    What a coordination method of your own needs: the base class, its registration, declared options, what
+    it receives each round and what it returns; the engine's result. The front over every method is
+    :func:`negotiate.coordinate.coordinate` (not re-exported here: the name is its module's).
 CoordinatorSettings, ExclusiveResource, CapacityResource
     The upper level's settings and the shared resources (slots with a gap; capacity per time block).
 DeadlockError, InfeasibleOrdersError
@@ -43,7 +44,6 @@ from negotiate.coordinate import (
     Evaluation,
     Method,
     Proposal,
-    coordinate,
     option,
     register_method,
 )
@@ -81,7 +81,6 @@ __all__ = [
     "Status",
     "Tolerances",
     "build_agents",
-    "coordinate",
     "load_fleet",
     "option",
     "register_method",

@@ -15,15 +15,19 @@ from negotiate import (
     Evaluation,
     Method,
     Proposal,
-    coordinate,
     option,
     register_method,
 )
+from negotiate.coordinate import coordinate
 
 
 def test_every_public_name_exists():
-    """``__all__`` names only what the package really exports."""
+    """``__all__`` names only what the package really exports, and no export hides a submodule."""
+    import importlib
+
     assert [n for n in negotiate.__all__ if not hasattr(negotiate, n)] == []
+    for module in ("coordinate", "coupling", "fleet", "run", "status", "nlp", "agent", "spec"):
+        assert getattr(negotiate, module) is importlib.import_module(f"negotiate.{module}"), module
 
 
 @dataclasses.dataclass(frozen=True)
