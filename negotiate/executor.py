@@ -351,13 +351,7 @@ def _time_options(time_limit: float | None, solver_options: Mapping[str, Any] | 
 
 
 def _failed(agent: AgentModel, p: np.ndarray, status: Status, message: str) -> AgentOutcome:
-    prob = agent.problem
-    nan_x, nan_g = np.full(prob.n_x, np.nan), np.full(prob.n_g, np.nan)
-    res = LocalResult(
-        np.asarray(p, dtype=float), np.nan, None, nan_x, nan_g, nan_x.copy(), nan_g.copy(), status, message,
-        0, 0.0, 0.0, None, prob,
-    )  # fmt: skip
-    return AgentOutcome(res, None, None, 1)
+    return AgentOutcome(LocalResult.failure(agent.problem, p, message, status), None, None, 1)
 
 
 class _Losses:
