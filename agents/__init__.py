@@ -1,4 +1,4 @@
-"""Built-in agent models: each family is a builder returning a :class:`negotiate.agent.AgentModel`.
+"""Built-in agent models: each family is a builder returning a :class:`negotiate.core.agent.AgentModel`.
 
 Families
 --------

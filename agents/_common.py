@@ -1,7 +1,7 @@
 """Shared pieces of the model builders: the NLP record, smooth helpers and reachable-set geometry.
 
 The builders first write each agent's problem as an :class:`NLPSpec` (CasADi expressions plus numeric
-bounds and names). The spec becomes the agent's :class:`~negotiate.nlp.ParametricNLP`; the builders also
+bounds and names). The spec becomes the agent's :class:`~negotiate.core.nlp.ParametricNLP`; the builders also
 solve auxiliary problems on it (fastest traversal, support points of the reachable set, free optimum) with a
 plain IPOPT call, which needs no sensitivity information.
 """
@@ -17,7 +17,7 @@ import numpy as np
 from scipy.optimize import linprog
 from scipy.spatial import ConvexHull, HalfspaceIntersection
 
-from negotiate.nlp import ParametricNLP
+from negotiate.core.nlp import ParametricNLP
 
 __all__ = ["NLPSpec", "PlainResult", "smooth_pos"]
 
@@ -73,7 +73,7 @@ class NLPSpec:
     _solvers: dict[str, Any] = field(default_factory=dict, repr=False)
 
     def to_problem(self, solver_options: dict[str, Any] | None = None) -> ParametricNLP:
-        """The agent's :class:`~negotiate.nlp.ParametricNLP` built from this spec."""
+        """The agent's :class:`~negotiate.core.nlp.ParametricNLP` built from this spec."""
         return ParametricNLP(
             {"x": self.x, "p": self.p, "f": self.f, "g": self.g},
             lbx=self.lbx, ubx=self.ubx, lbg=self.lbg, ubg=self.ubg, x0=self.x0,

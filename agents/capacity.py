@@ -42,7 +42,7 @@ import numpy as np
 
 from agents._common import NLPSpec
 from agents.params import CapacityParams
-from negotiate.agent import AgentModel, ReachableSet, SlotParam
+from negotiate.core.agent import AgentModel, ReachableSet, SlotParam
 
 __all__ = ["CapacityModel", "build_capacity"]
 
@@ -138,11 +138,11 @@ def build_capacity(name: str, prm: CapacityParams | None = None, weight: float =
     weight : float
         Weight of the agent's cost in the fleet total (dimensionless, > 0).
     solver_options : dict, optional
-        Passed to :class:`~negotiate.nlp.ParametricNLP`.
+        Passed to :class:`~negotiate.core.nlp.ParametricNLP`.
 
     Returns
     -------
-    negotiate.agent.AgentModel
+    negotiate.core.agent.AgentModel
         Parameters ``<resource>.share[k]`` in W, reachable box ``[0, charger_power]``, the free optimum of
         the module docstring and ``draw`` (the planned power ``P_k`` per block, W).
     """

@@ -1,6 +1,6 @@
 """Checks for agent models, built-in or user-written: finite-difference gradients and reachable points.
 
-These helpers let the author of a model confirm the two promises an :class:`~negotiate.agent.AgentModel`
+These helpers let the author of a model confirm the two promises an :class:`~negotiate.core.agent.AgentModel`
 makes to the coordinator: the value gradient reported by a solve matches the value's own finite
 differences, and points of the reachable set really solve.
 """
@@ -36,7 +36,7 @@ def central_difference(problem: Any, p: np.ndarray, step: float | np.ndarray) ->
 
 
 def reachable_vertices(reachable: Any) -> np.ndarray:
-    """Vertices of a :class:`~negotiate.agent.ReachableSet` (its box intersected with ``A p <= b``)."""
+    """Vertices of a :class:`~negotiate.core.agent.ReachableSet` (its box intersected with ``A p <= b``)."""
     n = reachable.lower.size
     A = np.vstack([reachable.A, np.eye(n), -np.eye(n)])
     b = np.r_[reachable.b, reachable.upper, -reachable.lower]

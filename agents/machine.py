@@ -49,7 +49,7 @@ import numpy as np
 
 from agents._common import NLPSpec, joint_optimum, smooth_pos
 from agents.params import MachineParams
-from negotiate.agent import AgentModel, ReachableSet, SlotParam
+from negotiate.core.agent import AgentModel, ReachableSet, SlotParam
 
 __all__ = ["MachineModel", "build_machine"]
 
@@ -189,11 +189,11 @@ def build_machine(name: str, prm: MachineParams | None = None, weight: float = 1
     weight : float
         Weight of the agent's cost in the fleet total (dimensionless, > 0).
     solver_options : dict, optional
-        Passed to :class:`~negotiate.nlp.ParametricNLP`.
+        Passed to :class:`~negotiate.core.nlp.ParametricNLP`.
 
     Returns
     -------
-    negotiate.agent.AgentModel
+    negotiate.core.agent.AgentModel
         Parameters ``(<station>.enter, <station>.leave)`` per station in s, the closed-form reachable set
         and the free optimum of the module docstring.
     """

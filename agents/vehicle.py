@@ -73,7 +73,7 @@ from agents._common import (
     solve_aux,
 )
 from agents.params import STANDARD_GRAVITY, VehicleParams
-from negotiate.agent import AgentModel, ReachableSet, SlotParam
+from negotiate.core.agent import AgentModel, ReachableSet, SlotParam
 
 __all__ = ["VehicleModel", "build_vehicle", "vehicle_grid"]
 
@@ -302,11 +302,11 @@ def build_vehicle(name: str, prm: VehicleParams | None = None, weight: float = 1
     weight : float
         Weight of the agent's cost in the fleet total (dimensionless, > 0).
     solver_options : dict, optional
-        Passed to :class:`~negotiate.nlp.ParametricNLP`.
+        Passed to :class:`~negotiate.core.nlp.ParametricNLP`.
 
     Returns
     -------
-    negotiate.agent.AgentModel
+    negotiate.core.agent.AgentModel
         Parameters ``(<zone>.enter, <zone>.leave)`` per zone in s, the verified reachable polytope and the
         free optimum described in the module docstring.
     """

@@ -30,12 +30,13 @@ from pathlib import Path
 import numpy as np
 import scipy.optimize
 
-from negotiate.agent import AgentModel
-from negotiate.centralized import solve_centralized
-from negotiate.coordinate import Evaluation, Method, Proposal, coordinate, register_method
-from negotiate.coupling import build_feasible_set, fcfs_orders
-from negotiate.fleet import build_agents, load_fleet
-from negotiate.spec import CoordinatorSettings
+from negotiate.coordination.centralized import solve_centralized
+from negotiate.coordination.engine import coordinate
+from negotiate.coordination.methods import Evaluation, Method, Proposal, register_method
+from negotiate.core.agent import AgentModel
+from negotiate.fleet.parse import build_agents, load_fleet
+from negotiate.fleet.spec import CoordinatorSettings
+from negotiate.resources.coupling import build_feasible_set, fcfs_orders
 
 GAP = 1e-4
 

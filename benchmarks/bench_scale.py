@@ -42,11 +42,11 @@ def _peak_mib() -> float:
 
 def one(fleet: str, config: str, cap: float) -> dict:
     """Measure one configuration in this process; return its figures."""
-    from negotiate.centralized import solve_centralized
-    from negotiate.coordinate import coordinate
-    from negotiate.coupling import build_feasible_set, fcfs_orders
-    from negotiate.executor import DaskExecutor, ProcessExecutor
-    from negotiate.fleet import build_agents, load_fleet
+    from negotiate.coordination.centralized import solve_centralized
+    from negotiate.coordination.engine import coordinate
+    from negotiate.execution.executor import DaskExecutor, ProcessExecutor
+    from negotiate.fleet.parse import build_agents, load_fleet
+    from negotiate.resources.coupling import build_feasible_set, fcfs_orders
 
     spec = load_fleet(fleet)
     t0 = time.perf_counter()
@@ -69,7 +69,8 @@ def one(fleet: str, config: str, cap: float) -> dict:
     executor.prepare(agents)  # the workers build their agents (in parallel) before the clock starts
     start = time.perf_counter() - t0
     # Time spent in the coordination method itself (its master QP and projections), apart from the rounds.
-    from negotiate.coordinate import _METHODS, _load_builtins
+    from negotiate.coordination.engine import _load_builtins
+    from negotiate.coordination.methods import _METHODS
 
     _load_builtins()
     cls = _METHODS[spec.coordinator.method]
@@ -127,7 +128,7 @@ def main() -> None:
         print(json.dumps(one(args.one[0], args.one[1], args.cap)))
         return
 
-    from negotiate.generate import generate_fleet
+    from negotiate.tools.generate import generate_fleet
 
     results: dict[int, dict[str, dict]] = {}
     with tempfile.TemporaryDirectory() as tmp:

@@ -21,7 +21,7 @@ load_fleet, build_agents, FleetError
 Method, register_method, option, Evaluation, AgentReport, Proposal, CoordinationResult
     What a coordination method of your own needs: the base class, its registration, declared options, what
     it receives each round and what it returns; the engine's result. The front over every method is
-    :func:`negotiate.coordinate.coordinate` (not re-exported here: the name is its module's).
+    :func:`negotiate.coordination.engine.coordinate` (not re-exported here: the name is its module's).
 CoordinatorSettings, ExclusiveResource, CapacityResource
     The upper level's settings and the shared resources (slots with a gap; capacity per time block).
 DeadlockError, InfeasibleOrdersError
@@ -29,33 +29,65 @@ DeadlockError, InfeasibleOrdersError
 run_fleet, write_outputs
     The main job as one call (orders, coordination, verification) and its files.
 
-Executors (in process, worker processes, Dask) live in :mod:`negotiate.executor`; results, report, sweep
-and comparison in :mod:`negotiate.results`, :mod:`negotiate.report`, :mod:`negotiate.sweep`,
-:mod:`negotiate.compare`.
+Executors (in process, worker processes, Dask) live in :mod:`negotiate.execution.executor`; results, report, sweep
+and comparison in :mod:`negotiate.output.results`, :mod:`negotiate.output.report`, :mod:`negotiate.tools.sweep`,
+:mod:`negotiate.tools.compare`.
 
 Sign convention: ``L = f + lam_g^T g + lam_x^T x`` (CasADi's); a positive multiplier marks an active
-upper bound. See :mod:`negotiate.kkt`.
+upper bound. See :mod:`negotiate.core.kkt`.
 """
 
-from negotiate.agent import AgentModel, ReachableSet, SlotParam
-from negotiate.coordinate import (
-    AgentReport,
-    CoordinationResult,
-    Evaluation,
-    Method,
-    Proposal,
-    option,
-    register_method,
-)
-from negotiate.coupling import DeadlockError, InfeasibleOrdersError
-from negotiate.errors import FleetError
-from negotiate.fleet import build_agents, load_fleet
-from negotiate.kkt import Certificate, ConstraintRef, Tolerances
-from negotiate.nlp import LocalResult, ParametricNLP
-from negotiate.run import run_fleet, write_outputs
-from negotiate.sensitivity import Sensitivity
-from negotiate.spec import CapacityResource, CoordinatorSettings, ExclusiveResource
-from negotiate.status import CoordinationStatus, Status
+from __future__ import annotations
+
+from importlib import import_module
+from typing import Any
+
+# Every public name is loaded on first use (PEP 562), so that importing one low module of the package
+# (``negotiate.core.ranges``, say) does not import the whole package, and the index imports no layer
+# ahead of time.
+_WHERE = {
+    "AgentModel": "negotiate.core.agent",
+    "AgentReport": "negotiate.coordination.methods",
+    "CapacityResource": "negotiate.fleet.spec",
+    "Certificate": "negotiate.core.kkt",
+    "ConstraintRef": "negotiate.core.kkt",
+    "CoordinationResult": "negotiate.coordination.engine",
+    "CoordinationStatus": "negotiate.core.status",
+    "CoordinatorSettings": "negotiate.fleet.spec",
+    "DeadlockError": "negotiate.resources.coupling",
+    "Evaluation": "negotiate.coordination.methods",
+    "ExclusiveResource": "negotiate.fleet.spec",
+    "FleetError": "negotiate.errors",
+    "InfeasibleOrdersError": "negotiate.resources.coupling",
+    "LocalResult": "negotiate.core.nlp",
+    "Method": "negotiate.coordination.methods",
+    "ParametricNLP": "negotiate.core.nlp",
+    "Proposal": "negotiate.coordination.methods",
+    "ReachableSet": "negotiate.core.agent",
+    "Sensitivity": "negotiate.core.sensitivity",
+    "SlotParam": "negotiate.core.agent",
+    "Status": "negotiate.core.status",
+    "Tolerances": "negotiate.core.kkt",
+    "build_agents": "negotiate.fleet.parse",
+    "load_fleet": "negotiate.run",
+    "option": "negotiate.coordination.methods",
+    "register_method": "negotiate.coordination.methods",
+    "run_fleet": "negotiate.run",
+    "write_outputs": "negotiate.run",
+}
+
+
+def __getattr__(name: str) -> Any:
+    if name in _WHERE:
+        value = getattr(import_module(_WHERE[name]), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'negotiate' has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_WHERE))
+
 
 __all__ = [
     "AgentModel",

@@ -122,7 +122,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _check(args: argparse.Namespace) -> int:
-    from negotiate.check import check_fleet
+    from negotiate.tools.check import check_fleet
 
     try:
         result = check_fleet(args.fleet, build=not args.no_build)
@@ -152,9 +152,8 @@ def _run(args: argparse.Namespace) -> int:
 
     started = time.perf_counter()  # the run's wall time counts from here: reading, building, solving
     from negotiate.errors import FleetError
-    from negotiate.fleet import load_fleet
-    from negotiate.results import RunFolderError
-    from negotiate.run import claim_run_folder
+    from negotiate.output.results import RunFolderError
+    from negotiate.run import claim_run_folder, load_fleet
 
     if args.fleet is None and args.resume is None:
         print("negotiate run: give a fleet file, or --resume DIR", file=sys.stderr)
@@ -197,11 +196,11 @@ def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ign
     import signal
     import time
 
-    from negotiate.checkpoint import FILENAME, CheckpointError, RunBook
-    from negotiate.coupling import DeadlockError
     from negotiate.errors import FleetError
-    from negotiate.executor import make_executor
-    from negotiate.fleet import build_agents
+    from negotiate.execution.executor import make_executor
+    from negotiate.fleet.parse import build_agents
+    from negotiate.output.checkpoint import FILENAME, CheckpointError, RunBook
+    from negotiate.resources.coupling import DeadlockError
     from negotiate.run import check_method_options, resolve_method, run_fleet, write_outputs
 
     if args.method is not None:
@@ -215,7 +214,7 @@ def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ign
             spec = RunBook.saved_spec(args.resume)
         elif args.resume is not None:
             # Refuse a checkpoint of another fleet or method before building anything.
-            from negotiate.checkpoint import fleet_digest, read_checkpoint
+            from negotiate.output.checkpoint import fleet_digest, read_checkpoint
 
             read_checkpoint(args.resume, fleet_digest(spec, args.method or spec.coordinator.method))
     except CheckpointError as exc:
@@ -355,7 +354,7 @@ def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ign
 def _load(command: str, path: str):  # type: ignore[no-untyped-def]
     """The parsed fleet, or the exit status after printing why it cannot be read."""
     from negotiate.errors import FleetError
-    from negotiate.fleet import load_fleet
+    from negotiate.run import load_fleet
 
     try:
         return load_fleet(path)
@@ -368,8 +367,8 @@ def _load(command: str, path: str):  # type: ignore[no-untyped-def]
 
 
 def _report(args: argparse.Namespace) -> int:
-    from negotiate.report import write_report
-    from negotiate.results import RunFolderError
+    from negotiate.output.report import write_report
+    from negotiate.output.results import RunFolderError
 
     try:
         path = write_report(args.dir)
@@ -382,7 +381,7 @@ def _report(args: argparse.Namespace) -> int:
 
 def _sweep(args: argparse.Namespace) -> int:
     from negotiate.errors import FleetError
-    from negotiate.sweep import sweep_fleet, write_sweep
+    from negotiate.tools.sweep import sweep_fleet, write_sweep
 
     spec = _load("sweep", args.fleet)
     if isinstance(spec, int):
@@ -417,9 +416,9 @@ def _sweep(args: argparse.Namespace) -> int:
 
 
 def _compare(args: argparse.Namespace) -> int:
-    from negotiate.compare import compare_methods, write_comparison
-    from negotiate.coupling import DeadlockError
     from negotiate.errors import FleetError
+    from negotiate.resources.coupling import DeadlockError
+    from negotiate.tools.compare import compare_methods, write_comparison
 
     spec = _load("compare", args.fleet)
     if isinstance(spec, int):
@@ -437,7 +436,7 @@ def _compare(args: argparse.Namespace) -> int:
 
 
 def _generate(args: argparse.Namespace) -> int:
-    from negotiate.generate import generate_fleet
+    from negotiate.tools.generate import generate_fleet
 
     try:
         text = generate_fleet(args.kind, args.agents, args.seed)

@@ -22,30 +22,24 @@ import os
 import sys
 import time
 from collections.abc import Callable, Iterator
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from negotiate._files import write_atomic
-from negotiate.agent import AgentModel
-from negotiate.centralized import CentralizedResult, solve_centralized
-from negotiate.checkpoint import FILENAME as CHECKPOINT_FILE
-from negotiate.coordinate import (
-    CoordinationResult,
-    Method,
-    RoundRecord,
-    coordinate,
-    method_class,
-    option_problems,
-    register_method,
-)
+from negotiate.coordination.centralized import solve_centralized
+from negotiate.coordination.engine import CoordinationResult, RoundRecord, coordinate
+from negotiate.coordination.methods import Method, method_class, method_names, option_problems, register_method
+from negotiate.coordination.orders import search_orders
+from negotiate.core.agent import AgentModel
+from negotiate.core.files import write_atomic
+from negotiate.core.nlp import try_solve
 from negotiate.errors import FleetError, Problem, describe
-from negotiate.nlp import try_solve
-from negotiate.orders import OrderTrial, search_orders
-from negotiate.results import SCHEDULE_COLUMNS, RunFolderError, ScheduleRow, write_result_files
-from negotiate.spec import CapacityResource, FleetSpec
+from negotiate.fleet import parse
+from negotiate.fleet.spec import CapacityResource, FleetSpec
+from negotiate.output.checkpoint import FILENAME as CHECKPOINT_FILE
+from negotiate.output.results import SCHEDULE_COLUMNS, RunFolderError, RunResult, ScheduleRow, write_result_files
 
 __all__ = [
     "LOCK_FILE",
@@ -55,6 +49,7 @@ __all__ = [
     "check_method_options",
     "claim_run_folder",
     "clear_outputs",
+    "load_fleet",
     "resolve_method",
     "run_fleet",
     "write_outputs",
@@ -67,67 +62,10 @@ LOCK_FILE = ".negotiate-run.lock"
 """Held by the run that uses the folder (see :func:`claim_run_folder`); it holds that process's id."""
 
 
-@dataclass(frozen=True)
-class RunResult:
-    """Everything a run found (see :func:`run_fleet`)."""
-
-    spec: FleetSpec
-    coordination: CoordinationResult
-    schedule: tuple[ScheduleRow, ...]
-    free_values: np.ndarray
-    order_trials: tuple[OrderTrial, ...]
-    centralized: CentralizedResult | None
-    wall_time: float
-    agents: tuple[AgentModel, ...] = field(repr=False, default=())
-    phase_times: dict[str, float] = field(default_factory=dict)
-    """Seconds spent in each phase: ``build`` (the agents), ``free_optima``, ``order_search`` (every
-    coordination of every order tried) and, with ``verify``, ``verify``; they add up to ``wall_time``."""
-
-    @property
-    def total(self) -> float:
-        return self.coordination.total
-
-    @property
-    def free_total(self) -> float:
-        """Weighted total of the agents' values at their free optima (a lower bound without coupling)."""
-        w = np.array([a.weight for a in self.agents])
-        return float(w @ self.free_values)
-
-    @property
-    def gap(self) -> float | None:
-        """Relative gap to the centralized optimum, ``(total - centralized) / |centralized|``."""
-        if self.centralized is None or not self.centralized.success:
-            return None
-        return (self.total - self.centralized.total) / max(1e-300, abs(self.centralized.total))
-
-    def summary(self) -> dict[str, Any]:
-        """The content of ``run.json``."""
-        c = self.coordination
-        out: dict[str, Any] = {
-            "fleet": self.spec.name,
-            "description": self.spec.description,
-            "source": self.spec.source,
-            "settings": {**asdict(self.spec.coordinator), "method": c.method},
-            "status": c.status,
-            "message": c.message,
-            "orders": c.orders,
-            "rounds": c.rounds,
-            "agent_solves": c.agent_solves,
-            "order_trials": len(self.order_trials),
-            "order_trials_infeasible": sum(1 for t in self.order_trials if t.infeasible),
-            "order_search": [t.to_dict() for t in self.order_trials],
-            "total_cost": c.total,
-            "free_total_cost": self.free_total,
-            "wall_time_s": self.wall_time,
-            "phase_times_s": dict(self.phase_times),
-            "flagged_last_round": list(c.evaluation.flagged),
-        }
-        if self.centralized is not None:
-            out["centralized_cost"] = self.centralized.total
-            out["centralized_status"] = str(self.centralized.status)
-            out["centralized_wall_time_s"] = self.centralized.wall_time
-            out["relative_gap"] = self.gap
-        return out
+def load_fleet(path: str | Path) -> FleetSpec:
+    """Read and check a fleet file (:func:`negotiate.fleet.parse.load_fleet`) whose ``[coordinator] method``
+    may name any registered coordination method, built-in or user (see :func:`resolve_method`)."""
+    return parse.load_fleet(path, methods=method_names())
 
 
 def resolve_method(name: str) -> str:
@@ -156,7 +94,7 @@ def resolve_method(name: str) -> str:
     except (ImportError, AttributeError, OSError) as exc:
         raise ValueError(f"cannot import coordination method {name!r}: {exc}") from exc
     if not (isinstance(cls, type) and issubclass(cls, Method)):
-        raise ValueError(f"{name!r} is not a subclass of negotiate.coordinate.Method")
+        raise ValueError(f"{name!r} is not a subclass of negotiate.coordination.engine.Method")
     register_method(cls)
     return cls.name
 
@@ -231,17 +169,17 @@ def run_fleet(
     verify : bool
         Also solve the centralized NLP for the final orders and report the gap.
     executor : Executor, optional
-        Passed to :func:`negotiate.coordinate.coordinate` (an :mod:`negotiate.executor` executor also
+        Passed to :func:`negotiate.coordination.engine.coordinate` (an :mod:`negotiate.execution.executor` executor also
         solves the agents at their free optima).
     progress : callable, optional
-        Called with each :class:`~negotiate.coordinate.RoundRecord`; its ``trial`` field says which order
+        Called with each :class:`~negotiate.coordination.engine.RoundRecord`; its ``trial`` field says which order
         trial (0, 1, ...) the round belongs to, its ``round`` counts within that trial.
     checkpoint_dir : path, optional
-        Run folder to keep ``checkpoint.bin`` in, written after every round (:mod:`negotiate.checkpoint`).
+        Run folder to keep ``checkpoint.bin`` in, written after every round (:mod:`negotiate.output.checkpoint`).
     resume : bool
         Continue from the checkpoint in ``checkpoint_dir`` (finished order trials are not redone, the trial
         in progress continues from its last complete round). Raises
-        :class:`~negotiate.checkpoint.CheckpointError` when there is none, or it is of another fleet or
+        :class:`~negotiate.output.checkpoint.CheckpointError` when there is none, or it is of another fleet or
         method, or damaged.
     build_time : float
         Seconds the caller spent building ``agents`` (s), counted in the run's wall time and its ``build``
@@ -266,11 +204,11 @@ def run_fleet(
     check_method_options(spec, settings.method)
     book = None
     if checkpoint_dir is not None:
-        from negotiate.checkpoint import RunBook
+        from negotiate.output.checkpoint import RunBook
 
         book = RunBook(checkpoint_dir, spec, settings.method, resume=resume)  # checked before building
     if agents is None:
-        from negotiate.fleet import build_agents
+        from negotiate.fleet.parse import build_agents
 
         agents = build_agents(spec)
         phases["build"] = time.perf_counter() - t0
@@ -531,12 +469,12 @@ def claim_run_folder(folder: str | Path, *, resume: bool = False) -> Iterator[Pa
 
 
 def write_outputs(run: RunResult, out_dir: str | Path) -> list[Path]:
-    """Write ``schedule.csv``, ``run.json``, the files of :mod:`negotiate.results` (history, prices, agents,
+    """Write ``schedule.csv``, ``run.json``, the files of :mod:`negotiate.output.results` (history, prices, agents,
     resources, trajectories) and ``report.html`` into ``out_dir`` (created if needed); return the paths.
 
     The files an earlier run wrote there are removed first (:func:`clear_outputs`; ``checkpoint.bin`` is
     kept), so no trajectory of another fleet stays behind. Each file is written whole or not at all
-    (:func:`negotiate._files.write_atomic`). Raises :class:`OSError` when the folder cannot be written.
+    (:func:`negotiate.core.files.write_atomic`). Raises :class:`OSError` when the folder cannot be written.
     """
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
@@ -554,7 +492,7 @@ def write_outputs(run: RunResult, out_dir: str | Path) -> list[Path]:
         ])  # fmt: skip
     sched = write_atomic(out / "schedule.csv", buf.getvalue())
     summary = write_atomic(out / "run.json", json.dumps(_clean(run.summary()), indent=2) + "\n")
-    from negotiate.report import write_report
+    from negotiate.output.report import write_report
 
     files = write_result_files(run, out)
     return [sched, summary, *files, write_report(out)]

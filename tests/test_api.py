@@ -18,16 +18,30 @@ from negotiate import (
     option,
     register_method,
 )
-from negotiate.coordinate import coordinate
+from negotiate.coordination.engine import coordinate
 
 
 def test_every_public_name_exists():
-    """``__all__`` names only what the package really exports, and no export hides a submodule."""
-    import importlib
+    """``__all__`` names only what the package really exports, and no export hides a subpackage."""
+    import pkgutil
 
     assert [n for n in negotiate.__all__ if not hasattr(negotiate, n)] == []
-    for module in ("coordinate", "coupling", "fleet", "run", "status", "nlp", "agent", "spec"):
-        assert getattr(negotiate, module) is importlib.import_module(f"negotiate.{module}"), module
+    subpackages = {m.name for m in pkgutil.iter_modules(negotiate.__path__)}
+    assert subpackages >= {"core", "resources", "fleet", "execution", "coordination", "output", "tools", "run"}
+    assert set(negotiate.__all__) & subpackages == set()
+
+
+def test_the_index_loads_nothing_ahead_of_time():
+    """Importing ``negotiate`` (or one low module) loads no layer: names are loaded on first use."""
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, negotiate.core.ranges; "
+        "print(sorted(m for m in sys.modules if m.startswith(('negotiate.', 'agents', 'casadi'))))"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "['negotiate.core', 'negotiate.core.ranges']"
 
 
 @dataclasses.dataclass(frozen=True)

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from negotiate import ParametricNLP
-from negotiate.kkt import Bounds, Point, Tolerances, certify
+from negotiate.core.kkt import Bounds, Point, Tolerances, certify
 
 
 def solve(nlp, p, **kw):

@@ -1,4 +1,4 @@
-"""Tests of ``negotiate check`` (negotiate.check and the CLI subcommand) on the shipped examples and on bad files.
+"""Tests of ``negotiate check`` (negotiate.tools.check and the CLI subcommand) on the shipped examples and on bad files.
 
 Each example is built once per module (building agents is the slow part). The examples are invented demo
 data; what is asserted about them is what they are meant to show: every agent builds, each resource is
@@ -16,9 +16,9 @@ import networkx as nx
 import pytest
 
 from negotiate import cli
-from negotiate.check import CheckResult, check_data, check_fleet, conflict_graph
 from negotiate.errors import FleetError
-from negotiate.fleet import parse_fleet
+from negotiate.fleet.parse import parse_fleet
+from negotiate.tools.check import CheckResult, check_data, check_fleet, conflict_graph
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
 NAMES = ["quarry_bridge", "machining_cell", "charging_depot"]

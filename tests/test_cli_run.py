@@ -196,7 +196,7 @@ class TestRun:
 @pytest.mark.parametrize("name", ["quarry_bridge", "machining_cell", "charging_depot"])
 def test_every_example_verifies_within_a_tenth_of_a_percent(name, tmp_path):
     """Each shipped example, run with its own settings and --verify, is within 0.1 % of the centralized cost."""
-    from negotiate.fleet import load_fleet
+    from negotiate.fleet.parse import load_fleet
     from negotiate.run import run_fleet
 
     run = run_fleet(load_fleet(EXAMPLES / f"{name}.toml"), verify=True)

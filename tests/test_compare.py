@@ -1,4 +1,4 @@
-"""Tests of the method comparison (negotiate.compare, ``negotiate compare``) on the mixed test fleet.
+"""Tests of the method comparison (negotiate.tools.compare, ``negotiate compare``) on the mixed test fleet.
 
 Reference: the centralized IPOPT solve of the monolithic NLP with the same orders (``solve_centralized``);
 the gap of each method is checked against a recomputation from it, and the methods that converged must be
@@ -16,9 +16,9 @@ import pytest
 from test_report import mixed_run
 
 from negotiate import cli
-from negotiate.compare import COMPARE_COLUMNS, Comparison, compare_methods, write_comparison
-from negotiate.coordinate import Evaluation, Method, Proposal, register_method
-from negotiate.coupling import fcfs_orders
+from negotiate.coordination.methods import Evaluation, Method, Proposal, register_method
+from negotiate.resources.coupling import fcfs_orders
+from negotiate.tools.compare import COMPARE_COLUMNS, Comparison, compare_methods, write_comparison
 
 
 class _Broken(Method):

@@ -84,7 +84,7 @@ def test_vehicle_model_continuation_matches_a_cold_solve():
     """The library's truck (invented data): a shifted slot continues and agrees with a cold IPOPT solve."""
     from pathlib import Path
 
-    from negotiate.fleet import build_agents, load_fleet
+    from negotiate.fleet.parse import build_agents, load_fleet
 
     spec = load_fleet(Path(__file__).resolve().parent.parent / "examples" / "quarry_bridge.toml")
     agent = build_agents(spec)[0]
@@ -106,9 +106,9 @@ def test_first_round_starts_from_the_build_time_solve():
     from dataclasses import replace
     from pathlib import Path
 
-    from negotiate.coordinate import Oracle
-    from negotiate.coupling import build_feasible_set, fcfs_orders
-    from negotiate.fleet import build_agents, load_fleet
+    from negotiate.coordination.engine import Oracle
+    from negotiate.fleet.parse import build_agents, load_fleet
+    from negotiate.resources.coupling import build_feasible_set, fcfs_orders
 
     spec = load_fleet(Path(__file__).resolve().parent.parent / "examples" / "machining_cell.toml")
     agents = build_agents(spec)

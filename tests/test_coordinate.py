@@ -11,11 +11,12 @@ import pytest
 from fleets import quadratic_share_agent, slot_agent
 
 from negotiate import AgentModel, ParametricNLP, ReachableSet, SlotParam
-from negotiate.centralized import solve_centralized
-from negotiate.coordinate import Evaluation, Method, Proposal, coordinate, register_method
-from negotiate.coupling import DeadlockError, InfeasibleOrdersError, build_feasible_set, check_orders
-from negotiate.orders import search_orders
-from negotiate.spec import CapacityResource, CoordinatorSettings, ExclusiveResource
+from negotiate.coordination.centralized import solve_centralized
+from negotiate.coordination.engine import coordinate
+from negotiate.coordination.methods import Evaluation, Method, Proposal, register_method
+from negotiate.coordination.orders import search_orders
+from negotiate.fleet.spec import CapacityResource, CoordinatorSettings, ExclusiveResource
+from negotiate.resources.coupling import DeadlockError, InfeasibleOrdersError, build_feasible_set, check_orders
 
 METHODS = ["bundle", "gradient", "newton"]
 
@@ -102,7 +103,7 @@ class TestAgainstCentralized:
         """With every certificate smooth, value Hessians save rounds over the gradient method (charging depot)."""
         from pathlib import Path
 
-        from negotiate.fleet import build_agents, load_fleet
+        from negotiate.fleet.parse import build_agents, load_fleet
 
         spec = load_fleet(Path(__file__).parents[1] / "examples" / "charging_depot.toml")
         agents = build_agents(spec)
@@ -171,7 +172,7 @@ class TestNonsmoothGuard:
         p = 1 lies between). At p = 1.5 the point is smooth: holding x <= 1 returns the same solution and
         releasing it another one (V = 0.75 * 1.5 - 1.5), so neither probe gives a second gradient (checked
         here by doing them) and the guard flags without spending solves."""
-        from negotiate.guard import guard
+        from negotiate.core.guard import guard
 
         prob = kink_agent().problem
         before, after = prob.solve([0.5]), prob.solve([1.5], warm=prob.solve([0.5]))
@@ -375,7 +376,7 @@ class TestMethodOptions:
 
     def test_problems_name_unknown_and_mistyped_keys(self):
         """An unknown key lists the declared ones; each type is checked as TOML gives it."""
-        from negotiate.coordinate import method_class, option_problems
+        from negotiate.coordination.methods import method_class, option_problems
 
         bundle = method_class("bundle")
         given = {"first_stepp": 1, "hessian_metric": "no", "serious": True, "downshift": float("nan"),
@@ -405,7 +406,7 @@ class TestMethodOptions:
         """docs/methods.md holds the table generated from the method's declaration."""
         from pathlib import Path
 
-        from negotiate.coordinate import method_class, options_table
+        from negotiate.coordination.methods import method_class, options_table
 
         docs = (Path(__file__).parents[1] / "docs" / "methods.md").read_text()
         assert options_table(method_class(name)) in docs
@@ -416,7 +417,7 @@ class TestCoordinationStatus:
 
     def test_round_limit_is_usable_not_converged(self):
         """Stopped by max_rounds = 1 on the closed-form fleet: a usable schedule, not a converged one."""
-        from negotiate.status import CoordinationStatus
+        from negotiate.core.status import CoordinationStatus
 
         agents = [quadratic_share_agent(f"a{i}", t, c) for i, (t, c) in enumerate([(4, 1), (3, 2), (5, 0.5)])]
         res = coordinate(agents, [CapacityResource("grid", (9.0,))], settings("gradient", max_rounds=1))
@@ -427,7 +428,7 @@ class TestCoordinationStatus:
 
     def test_failed_and_error_are_not_usable(self):
         """``failed`` (no point where every agent converged) and ``error`` mark schedules not to use."""
-        from negotiate.status import CoordinationStatus
+        from negotiate.core.status import CoordinationStatus
 
         assert not CoordinationStatus.FAILED.usable and not CoordinationStatus.ERROR.usable
         assert {str(s) for s in CoordinationStatus} == {"converged", "max-rounds", "failed", "error"}

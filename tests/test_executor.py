@@ -19,8 +19,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from negotiate.coordinate import coordinate
-from negotiate.executor import (
+from negotiate.coordination.engine import coordinate
+from negotiate.execution.executor import (
     AgentOutcome,
     DaskExecutor,
     Executor,
@@ -29,9 +29,9 @@ from negotiate.executor import (
     cached_agents,
     make_executor,
 )
-from negotiate.fleet import build_agents, load_fleet
+from negotiate.fleet.parse import build_agents, load_fleet
+from negotiate.fleet.spec import CoordinatorSettings
 from negotiate.run import run_fleet
-from negotiate.spec import CoordinatorSettings
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
 SKIP_DASK = "Dask is not installed: the optional 'cluster' extra (pip install -e '.[test,cluster]') runs these tests"

@@ -25,13 +25,13 @@ import numpy as np
 import pytest
 from refproblems import by_name
 
-from negotiate.executor import DaskExecutor, InProcessExecutor, ProcessExecutor
-from negotiate.fleet import build_agents, load_fleet
-from negotiate.generate import generate_fleet
-from negotiate.nlp import ParametricNLP
+from negotiate.core.nlp import ParametricNLP
+from negotiate.core.status import Status
+from negotiate.execution.executor import DaskExecutor, InProcessExecutor, ProcessExecutor
+from negotiate.fleet.parse import build_agents, load_fleet
+from negotiate.fleet.spec import AgentSpec
 from negotiate.run import run_fleet
-from negotiate.spec import AgentSpec
-from negotiate.status import Status
+from negotiate.tools.generate import generate_fleet
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
 ROOT = EXAMPLES.parent

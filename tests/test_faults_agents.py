@@ -22,8 +22,8 @@ import casadi as ca
 
 from agents import build_machine
 from negotiate import AgentModel, ReachableSet, SlotParam
-from negotiate.fleet import load_fleet
-from negotiate.nlp import ParametricNLP
+from negotiate.core.nlp import ParametricNLP
+from negotiate.fleet.parse import load_fleet
 
 CELL = Path(__file__).resolve().parent.parent / "examples" / "machining_cell.toml"
 

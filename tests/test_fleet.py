@@ -16,8 +16,8 @@ import pytest
 
 from agents.params import CapacityParams, MachineParams, VehicleParams
 from negotiate.errors import FleetError, Problem, describe, table_path
-from negotiate.fleet import BEGIN_MARK, END_MARK, build_agents, load_fleet, parse_fleet, schema_markdown
-from negotiate.spec import CapacityResource, ExclusiveResource, FleetSpec
+from negotiate.fleet.parse import BEGIN_MARK, END_MARK, build_agents, load_fleet, parse_fleet, schema_markdown
+from negotiate.fleet.spec import CapacityResource, ExclusiveResource, FleetSpec
 
 ROOT = Path(__file__).resolve().parent.parent
 EXAMPLES = ROOT / "examples"
@@ -155,15 +155,14 @@ class TestParseFleet:
         assert parse_fleet(data).agents[2].params.tariff == (1.1, 1.1, 1.1)
 
     def test_registered_user_method(self, monkeypatch):
-        """A coordination method registered with the coordinator (when it is loaded) is accepted."""
-        import negotiate.coordinate as coordinate
-
-        monkeypatch.setattr(coordinate, "method_names", lambda: ["bundle", "gradient", "mine", "newton"])
+        """A coordination method the caller names (the run layer names every registered one) is accepted."""
         data = small_fleet()
         data["coordinator"]["method"] = "mine"
-        assert parse_fleet(data).coordinator.method == "mine"
+        assert parse_fleet(data, methods=["bundle", "gradient", "mine", "newton"]).coordinator.method == "mine"
         data["coordinator"]["method"] = "yours"
-        assert problems_of(data) == [
+        with pytest.raises(FleetError) as err:
+            parse_fleet(data, "fleet.toml", methods=["bundle", "gradient", "mine", "newton"])
+        assert str(err.value).splitlines() == [
             'fleet.toml: [coordinator] key \'method\': expected one of "bundle", "gradient", "newton", "mine", '
             'found "yours"'
         ]

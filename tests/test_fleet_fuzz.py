@@ -13,8 +13,8 @@ from hypothesis import strategies as st
 from test_fleet import small_fleet
 
 from negotiate.errors import FleetError
-from negotiate.fleet import parse_fleet
-from negotiate.spec import FleetSpec
+from negotiate.fleet.parse import parse_fleet
+from negotiate.fleet.spec import FleetSpec
 
 BAD_VALUES = [
     -1,

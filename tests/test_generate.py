@@ -10,11 +10,11 @@ import numpy as np
 import pytest
 
 from agents import build_vehicle
-from negotiate.agent import AgentModel, ReachableSet
-from negotiate.check import _schedule, check_data
 from negotiate.cli import main
-from negotiate.fleet import parse_fleet
-from negotiate.generate import KINDS, generate_fleet
+from negotiate.core.agent import AgentModel, ReachableSet
+from negotiate.fleet.parse import parse_fleet
+from negotiate.tools.check import _schedule, check_data
+from negotiate.tools.generate import KINDS, generate_fleet
 
 
 def _spec(kind: str, n: int, seed: int = 0):

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from negotiate import LocalResult, ParametricNLP, Status
-from negotiate.nlp import try_solve
+from negotiate.core.nlp import try_solve
 
 
 def shifted_quadratic(sym=ca.SX):

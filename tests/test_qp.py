@@ -1,4 +1,4 @@
-"""The upper level's QP solver (negotiate.qp) against independent checks.
+"""The upper level's QP solver (negotiate.core.qp) against independent checks.
 
 * KKT conditions of a convex QP (Nocedal & Wright, *Numerical Optimization*, 2nd ed., Thm 16.4 and eq.
   16.37): a point that is feasible, stationary with multipliers of the right sign and complementary is the
@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from negotiate.qp import solve_qp
+from negotiate.core.qp import solve_qp
 
 
 def random_qp(seed: int, n: int = 6, m: int = 8):

@@ -1,4 +1,5 @@
-"""Tests of the run's files (negotiate.results) and the HTML report (negotiate.report, ``negotiate report``).
+"""Tests of the run's files (negotiate.output.results) and the HTML report (negotiate.output.report,
+``negotiate report``).
 
 One small invented fleet with every kind of agent and resource (two trucks on a bridge, two machines on a
 furnace, two tractors on a grid connection) is run once per test session (:func:`mixed_run`, shared with the
@@ -24,9 +25,9 @@ import numpy as np
 import pytest
 
 from negotiate import cli
-from negotiate.fleet import load_fleet
-from negotiate.report import CAUTION, _cost, _pct, _sig
-from negotiate.results import RunFiles, load_run
+from negotiate.fleet.parse import load_fleet
+from negotiate.output.report import CAUTION, _cost, _pct, _sig
+from negotiate.output.results import RunFiles, load_run
 from negotiate.run import RunResult, run_fleet, write_outputs
 
 # INVENTED test fleet (every number made up, physically plausible); SI units.
@@ -324,7 +325,7 @@ class TestLargeFleet:
         """36 bridge users: two slot charts (30 + 6); trajectories only for the agents whose cost rose most."""
         import dataclasses
 
-        from negotiate import report
+        from negotiate.output import report
 
         monkeypatch.setattr(report, "MAX_TRAJECTORIES", 3)  # keeps the test fast; the rule is the same
         truck = next(a for a in files.agents if a.agent == "truck-a")
@@ -386,7 +387,7 @@ class TestPlannedDraw:
         """In the share chart each user's bar is its draw (solid) and the rest of its share (hatched)."""
         from types import SimpleNamespace as Row
 
-        from negotiate import plots
+        from negotiate.output import plots
 
         blocks = [Row(block=k, start_s=900.0 * k, end_s=900.0 * (k + 1), limit=2e5) for k in range(2)]
         shares = [
@@ -569,7 +570,7 @@ class TestReportWritesInsideTheFolder:
         O_EXCL refuses the link, and the next name is used."""
         import os
 
-        from negotiate import _files
+        from negotiate.core import files as _files
 
         copy = tmp_path / "run"
         shutil.copytree(folder, copy)

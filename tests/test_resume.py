@@ -21,9 +21,9 @@ import numpy as np
 import pytest
 from fleets import TWO_TRUCKS
 
-from negotiate.checkpoint import FILENAME, FORMAT_VERSION, CheckpointError, fleet_digest, read_checkpoint
 from negotiate.cli import main
-from negotiate.fleet import build_agents, load_fleet
+from negotiate.fleet.parse import build_agents, load_fleet
+from negotiate.output.checkpoint import FILENAME, FORMAT_VERSION, CheckpointError, fleet_digest, read_checkpoint
 from negotiate.run import run_fleet
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
@@ -220,7 +220,7 @@ def _forge(folder: Path, spec, payload: bytes, version: int, **extra) -> Path:
     """A checkpoint file with a valid header (the digest of the fleet, the payload's length and checksum)."""
     import hashlib
 
-    from negotiate.checkpoint import MAGIC
+    from negotiate.output.checkpoint import MAGIC
 
     header = {"version": version, "fleet": spec.name, "digest": fleet_digest(spec, spec.coordinator.method),
               "payload_bytes": len(payload), "payload_sha256": hashlib.sha256(payload).hexdigest(), "trial": 0,
@@ -236,7 +236,7 @@ def _same(a, b, where="state"):
     order), floats equal (nan to nan), records field by field (the CasADi problem aside)."""
     import dataclasses
 
-    from negotiate.coordinate import Method
+    from negotiate.coordination.methods import Method
 
     assert type(a) is type(b), f"{where}: {type(a)} != {type(b)}"
     if isinstance(a, np.ndarray):
@@ -320,7 +320,7 @@ class TestCheckpointIsData:
 
     def test_only_known_records_are_built(self, cell, tmp_path):
         """A checkpoint whose state names a type outside the closed list (with a valid checksum) is refused."""
-        from negotiate.checkpoint import MAGIC
+        from negotiate.output.checkpoint import MAGIC
 
         spec, agents, _ = cell
         with pytest.raises(Interrupt):
@@ -344,9 +344,9 @@ class TestCheckpointIsData:
         trial's full result."""
         import tomllib
 
-        from negotiate.checkpoint import RunState, TrialRecord, _decode, _encode
-        from negotiate.coordinate import coordinate
-        from negotiate.fleet import parse_fleet
+        from negotiate.coordination.engine import coordinate
+        from negotiate.fleet.parse import parse_fleet
+        from negotiate.output.checkpoint import RunState, TrialRecord, _decode, _encode
 
         if fleet == "cell":
             spec, agents, _ = cell

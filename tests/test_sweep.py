@@ -1,4 +1,4 @@
-"""Tests of the value-function sweep (negotiate.sweep, ``negotiate sweep``).
+"""Tests of the value-function sweep (negotiate.tools.sweep, ``negotiate sweep``).
 
 Reference for the kinks: an LP with a parametric cost, solved point by point with SciPy's ``linprog``
 (HiGHS). Its value V(p) = min_x c(p)^T x over a fixed polygon is continuous and piecewise linear in p; its
@@ -24,7 +24,7 @@ from scipy.optimize import linprog
 from test_report import mixed_run
 
 from negotiate import ParametricNLP, cli
-from negotiate.sweep import SweepResult, sweep_agent, sweep_problem, write_sweep
+from negotiate.tools.sweep import SweepResult, sweep_agent, sweep_problem, write_sweep
 
 A_UB = [[1.0, 1.0], [1.0, 3.0]]
 B_UB = [4.0, 9.0]

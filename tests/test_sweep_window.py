@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from fleets import slot_agent
 
-from negotiate.sweep import line_window
+from negotiate.tools.sweep import line_window
 
 
 def test_window_along_entry_by_hand():
@@ -63,8 +63,8 @@ class TestInWindow:
         so that no point is within rounding of an end."""
         import csv
 
-        from negotiate import plots
-        from negotiate.sweep import sweep_agent, write_sweep
+        from negotiate.output import plots
+        from negotiate.tools.sweep import sweep_agent, write_sweep
 
         a = slot_agent("a", 5.0, 10.0, 1.0, ["r1", "r2"])
         sw = sweep_agent(a, "r1.enter", -20.0, 30.0, 26)
@@ -85,7 +85,7 @@ class TestInWindow:
         """A sweep of a bare ParametricNLP has no reachable set: every point counts as inside, the cells are empty."""
         import csv
 
-        from negotiate.sweep import sweep_problem, write_sweep
+        from negotiate.tools.sweep import sweep_problem, write_sweep
 
         a = slot_agent("a", 5.0, 10.0, 1.0, ["r1"])
         sw = sweep_problem(a.problem, a.free_optimum, 0, [0.0, 50.0])

@@ -16,10 +16,10 @@ import numpy as np
 import pytest
 
 from negotiate.cli import main
-from negotiate.coordinate import coordinate
-from negotiate.executor import evaluate_agent
-from negotiate.fleet import build_agents, parse_fleet
-from negotiate.status import Status
+from negotiate.coordination.engine import coordinate
+from negotiate.core.status import Status
+from negotiate.execution.executor import evaluate_agent
+from negotiate.fleet.parse import build_agents, parse_fleet
 
 # The tractor charges from a connection of its own, so that the heater's share is 0 W exactly.
 FLEET = """\

@@ -48,8 +48,8 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
-from negotiate.coordinate import Evaluation, Method, Proposal, option, register_method
-from negotiate.qp import solve_qp
+from negotiate.coordination.methods.base import Evaluation, Method, Proposal, option, register_method
+from negotiate.core.qp import solve_qp
 
 
 @dataclass(frozen=True)

@@ -27,8 +27,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from negotiate.coordinate import AgentReport, Evaluation, Method, Proposal, option, register_method
-from negotiate.qp import solve_qp
+from negotiate.coordination.methods.base import AgentReport, Evaluation, Method, Proposal, option, register_method
+from negotiate.core.qp import solve_qp
 
 
 @dataclass(frozen=True)

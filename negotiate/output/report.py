@@ -1,6 +1,6 @@
 """The run report: one self-contained HTML file built from a run folder's files, never from a solve.
 
-:func:`write_report` reads a folder written by ``negotiate run`` (through :func:`negotiate.results.load_run`)
+:func:`write_report` reads a folder written by ``negotiate run`` (through :func:`negotiate.output.results.load_run`)
 and writes ``report.html`` next to the files: the run summary, a slot chart per exclusive resource and a
 share chart per capacity resource, the table of agents (free-optimum cost, coordinated cost, certificate),
 the price tables (value gradients with units), the convergence history and each agent's trajectories with
@@ -18,9 +18,9 @@ from pathlib import Path
 
 import numpy as np
 
-from negotiate import plots
-from negotiate._files import write_atomic
-from negotiate.results import PriceRow, RunFiles, RunFolderError, load_run
+from negotiate.core.files import write_atomic
+from negotiate.output import plots
+from negotiate.output.results import PriceRow, RunFiles, RunFolderError, load_run
 
 __all__ = ["CAUTION", "MAX_TRAJECTORIES", "render_report", "write_report"]
 

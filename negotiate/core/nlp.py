@@ -8,8 +8,8 @@ written with CasADi symbols. Construction builds and compiles, once, the IPOPT s
 warm-started instance) and the functions that evaluate the Lagrangian's gradient, Jacobian and Hessian.
 Each :meth:`ParametricNLP.solve` then returns a :class:`LocalResult`: the value, the primal point, all
 multipliers, the value gradient ``dV/dp = partial_p L`` at the KKT point (one solve, no finite
-differences) and a :class:`~negotiate.kkt.Certificate` saying whether that gradient can be trusted. See
-:mod:`negotiate.kkt` for the sign convention (``L = f + lam_g^T g + lam_x^T x``, CasADi's).
+differences) and a :class:`~negotiate.core.kkt.Certificate` saying whether that gradient can be trusted. See
+:mod:`negotiate.core.kkt` for the sign convention (``L = f + lam_g^T g + lam_x^T x``, CasADi's).
 """
 
 from __future__ import annotations
@@ -23,7 +23,7 @@ import casadi as ca
 import numpy as np
 from threadpoolctl import ThreadpoolController
 
-from negotiate.kkt import (
+from negotiate.core.kkt import (
     Bounds,
     Certificate,
     ConstraintRef,
@@ -34,8 +34,8 @@ from negotiate.kkt import (
     near_active_count,
     polish,
 )
-from negotiate.sensitivity import Sensitivity, solve_sensitivity
-from negotiate.status import SOLUTION_PRESENT, Status, from_ipopt
+from negotiate.core.sensitivity import Sensitivity, solve_sensitivity
+from negotiate.core.status import SOLUTION_PRESENT, Status, from_ipopt
 
 __all__ = ["LocalResult", "ParametricNLP", "screen_result", "try_solve"]
 
@@ -260,7 +260,7 @@ class ParametricNLP:
     solver_options : mapping, optional
         Extra options for ``casadi.nlpsol(..., "ipopt", options)``, e.g. ``{"ipopt.tol": 1e-10}``.
     tolerances : Tolerances, optional
-        Thresholds used to read the KKT point (see :class:`negotiate.kkt.Tolerances`).
+        Thresholds used to read the KKT point (see :class:`negotiate.core.kkt.Tolerances`).
     continuation : bool
         With a smooth warm start (and no constraint held or released), first try Newton's method on the
         warm point's active set at the new parameters; the answer is kept only if it certifies smooth with
@@ -680,7 +680,7 @@ class ParametricNLP:
         )  # fmt: skip
 
     def sensitivity(self, result: LocalResult) -> Sensitivity:
-        """Sensitivities of ``result`` (see :mod:`negotiate.sensitivity`), or why they are not available."""
+        """Sensitivities of ``result`` (see :mod:`negotiate.core.sensitivity`), or why they are not available."""
         cert = result.certificate
         if not result.success or cert is None:
             return Sensitivity(False, f"the solve did not converge (status {result.status})")

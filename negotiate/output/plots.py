@@ -1,9 +1,10 @@
 """Charts of a run, a sweep and a method comparison, drawn with matplotlib into PNG bytes.
 
-Every function takes plain rows (as read back by :mod:`negotiate.results`, or made by :mod:`negotiate.sweep`
-and :mod:`negotiate.compare`) and returns a :class:`matplotlib.figure.Figure`; :func:`png` turns one into
-PNG bytes. The look is deliberately plain: white background, light grid, one colour-blind-safe palette
-(Okabe and Ito's eight colours), SI units on every axis (SI prefixes where numbers are large).
+Every function takes plain rows (as read back by :mod:`negotiate.output.results`, or made by
+:mod:`negotiate.tools.sweep` and :mod:`negotiate.tools.compare`) and returns a
+:class:`matplotlib.figure.Figure`; :func:`png` turns one into PNG bytes. The look is deliberately plain:
+white background, light grid, one colour-blind-safe palette (Okabe and Ito's eight colours), SI units on
+every axis (SI prefixes where numbers are large).
 """
 
 from __future__ import annotations
@@ -343,10 +344,10 @@ def trajectory_chart(agent: str, series: Mapping[str, np.ndarray], slots: Sequen
 def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
     """V, dV/dp and the multipliers of the constraints active somewhere along a sweep.
 
-    ``sweep`` is a :class:`negotiate.sweep.SweepResult`. Shaded bands mark the intervals between two points
+    ``sweep`` is a :class:`negotiate.tools.sweep.SweepResult`. Shaded bands mark the intervals between two points
     whose active sets differ (V may have a kink there); open circles mark points where a constraint is
     weakly active or the certificate says ``nonsmooth``; grey hatched bands the values outside the agent's
-    reachable window (:attr:`~negotiate.sweep.SweepResult.in_window`). The ``max_multipliers`` constraints
+    reachable window (:attr:`~negotiate.tools.sweep.SweepResult.in_window`). The ``max_multipliers`` constraints
     with the largest multipliers are drawn (all are in the CSV).
     """
     fig, axes = _figure(8.0, 7.2, nrows=3, sharex=True)
@@ -422,7 +423,7 @@ def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
 def compare_chart(rows: Sequence[Any], histories: Mapping[str, Sequence[Any]], reference: float | None) -> Figure:
     """Methods side by side: progress against agent solves, and wall time per method.
 
-    ``rows`` are :class:`negotiate.compare.MethodRow`; ``histories`` maps a method name to its rounds;
+    ``rows`` are :class:`negotiate.tools.compare.MethodRow`; ``histories`` maps a method name to its rounds;
     ``reference`` is the centralized optimum, if any. With a reference the left panel shows the relative
     gap of each method's best total to it on a log scale (gaps at or below 1e-12, or negative, drawn at
     1e-12); without one, the best total itself.

@@ -10,7 +10,10 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
-from agents.params import DURATION, MAX_BLOCKS, TIME, Range
+from negotiate.core.ranges import Range
+from negotiate.resources import Resource
+from negotiate.resources.capacity import BLOCK_LIMIT, CapacityResource
+from negotiate.resources.exclusive import GAP, ExclusiveResource
 
 __all__ = [
     "BLOCK_LIMIT",
@@ -36,10 +39,6 @@ ORDER_RULES = ("fcfs", "swap", "exhaustive")
 that followed by improving neighbour swaps, or exhaustive search (small resources only)."""
 
 
-GAP = Range(0.0, DURATION.hi)
-"""Allowed gap (headway, changeover) of an exclusive resource, s."""
-BLOCK_LIMIT = Range(0.0, 1e12)
-"""Allowed limit of a capacity block, in the resource's unit (W for power: up to 1 TW)."""
 MAX_ROUNDS = Range(1, 10_000)
 """Allowed ``max_rounds`` of the coordinator."""
 TOLERANCE = Range(0.0, 0.1, lo_open=True, hi_open=True)
@@ -53,69 +52,6 @@ def _check(owner: str, name: str, value: Any, ok: bool, expected: str) -> None:
         raise ValueError(f"{owner}: '{name}' must be {expected}, got {value!r}")
 
 
-@dataclass(frozen=True)
-class ExclusiveResource:
-    """A resource used by one agent at a time (a single-lane bridge, a furnace, a crossing).
-
-    Attributes
-    ----------
-    name : str
-        Resource name, unique in the fleet.
-    gap : float
-        Smallest time between one user's exit and the next user's entry, s (headway or changeover).
-    """
-
-    name: str
-    gap: float = 0.0
-
-    def __post_init__(self) -> None:
-        _check(f"resource {self.name!r}", "gap", self.gap, self.gap in GAP, str(GAP))
-
-
-@dataclass(frozen=True)
-class CapacityResource:
-    """A resource shared by amount in time blocks (a grid connection's power).
-
-    Attributes
-    ----------
-    name : str
-        Resource name, unique in the fleet.
-    limits : tuple of float
-        Limit of the summed shares in each block, in ``unit`` (W for power); its length is the number of
-        blocks.
-    start : float
-        Start of the first block, s.
-    block_length : float
-        Length of each block, s.
-    unit : str
-        Unit of the shares and limits.
-    """
-
-    name: str
-    limits: tuple[float, ...]
-    start: float = 0.0
-    block_length: float = 900.0
-    unit: str = "W"
-
-    def __post_init__(self) -> None:
-        object.__setattr__(self, "limits", tuple(float(v) for v in self.limits))
-        owner = f"resource {self.name!r}"
-        if not 1 <= len(self.limits) <= MAX_BLOCKS:
-            raise ValueError(
-                f"{owner}: 'limits' must be a list of 1 to {MAX_BLOCKS} entries, got {len(self.limits)} entries"
-            )
-        bad = [v for v in self.limits if v not in BLOCK_LIMIT]
-        _check(owner, "limits", bad[0] if bad else None, not bad, f"made of numbers {BLOCK_LIMIT}")
-        _check(owner, "start", self.start, self.start in TIME, str(TIME))
-        _check(owner, "block_length", self.block_length, self.block_length in DURATION, str(DURATION))
-
-    @property
-    def blocks(self) -> int:
-        """Number of time blocks."""
-        return len(self.limits)
-
-
-Resource = ExclusiveResource | CapacityResource
 
 
 @dataclass(frozen=True)

@@ -1,6 +1,6 @@
 """Scan one agent's value function along one parameter: V, dV/dp and the multipliers, point by point.
 
-:func:`sweep_problem` solves a :class:`~negotiate.nlp.ParametricNLP` at ``base`` with one entry replaced by
+:func:`sweep_problem` solves a :class:`~negotiate.core.nlp.ParametricNLP` at ``base`` with one entry replaced by
 each value of a path, warm-starting every solve from the previous converged one, and records the value,
 the value gradient, every multiplier of a constraint that is active somewhere on the path, the certificate
 and the active set. Where the active set changes from one point to the next, V may have a kink (its slope
@@ -20,9 +20,9 @@ from pathlib import Path
 
 import numpy as np
 
-from negotiate.agent import AgentModel
-from negotiate.nlp import LocalResult, ParametricNLP, try_solve
-from negotiate.spec import FleetSpec
+from negotiate.core.agent import AgentModel
+from negotiate.core.nlp import LocalResult, ParametricNLP, try_solve
+from negotiate.fleet.spec import FleetSpec
 
 __all__ = ["SweepResult", "sweep_agent", "sweep_fleet", "sweep_problem", "write_sweep"]
 
@@ -247,7 +247,7 @@ def sweep_fleet(spec: FleetSpec, agent: str, param: str, start: float, stop: flo
     FleetError
         If the agent cannot be built.
     """
-    from negotiate.fleet import build_agents
+    from negotiate.fleet.parse import build_agents
 
     names = [a.name for a in spec.agents]
     if agent not in names:
@@ -293,7 +293,7 @@ def write_sweep(sweep: SweepResult, out_dir: str | Path, *, plot: bool = True) -
                         ";".join(sweep.active[k]), *(num(sweep.multipliers[n][k]) for n in lam)])  # fmt: skip
     paths = [path]
     if plot:
-        from negotiate import plots
+        from negotiate.output import plots
 
         png = out / f"{stem}.png"
         png.write_bytes(plots.png(plots.sweep_chart(sweep)))

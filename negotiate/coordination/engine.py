@@ -1,7 +1,7 @@
 """The upper level: one front, ``coordinate(...)``, over pluggable coordination methods.
 
 Problem: minimise the weighted sum of the agents' optimal values ``sum_i w_i V_i(p_i)`` over the stacked
-shared parameters ``P`` in the coupling polyhedron (:mod:`negotiate.coupling`). The coordinator only ever
+shared parameters ``P`` in the coupling polyhedron (:mod:`negotiate.resources.coupling`). The coordinator only ever
 sees what the agents report: value, value gradient and certificate.
 
 The method interface
@@ -37,257 +37,28 @@ writes the Markdown table of a method's options that docs/methods.md shows.
 
 from __future__ import annotations
 
-import math
 import time
-import warnings
-from abc import ABC, abstractmethod
-from collections.abc import Callable, Mapping, Sequence
-from dataclasses import MISSING, dataclass, field, fields, replace
-from typing import Any, ClassVar
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, replace
+from typing import Any
 
 import numpy as np
 
-from negotiate.agent import AgentModel
-from negotiate.coupling import FeasibleSet, build_feasible_set, fcfs_orders
-from negotiate.executor import AgentOutcome, Executor, InProcessExecutor, evaluate_agent
-from negotiate.guard import GuardReport
-from negotiate.kkt import Certificate
-from negotiate.nlp import LocalResult
-from negotiate.spec import CoordinatorSettings, Resource
-from negotiate.status import CoordinationStatus, Status
+from negotiate.coordination.methods import AgentReport, Evaluation, Method, Proposal, method_class
+from negotiate.core.agent import AgentModel
+from negotiate.core.nlp import LocalResult
+from negotiate.core.status import CoordinationStatus
+from negotiate.execution.executor import AgentOutcome, Executor, InProcessExecutor, evaluate_agent
+from negotiate.fleet.spec import CoordinatorSettings, Resource
+from negotiate.resources.coupling import FeasibleSet, build_feasible_set, fcfs_orders
 
 __all__ = [
-    "AgentReport",
     "CoordinationResult",
     "EngineState",
-    "Evaluation",
-    "Method",
-    "Proposal",
+    "Oracle",
     "RoundRecord",
-    "method_options",
-    "option",
-    "option_problems",
-    "options_table",
     "coordinate",
-    "method_class",
-    "method_names",
-    "register_method",
 ]
-
-
-@dataclass(frozen=True)
-class AgentReport:
-    """What one agent said at its parameters ``p`` (value in the agent's cost unit, gradient per unit p)."""
-
-    name: str
-    p: np.ndarray
-    value: float
-    gradient: np.ndarray | None
-    status: Status
-    certificate: Certificate | None
-    guard: GuardReport | None
-    result: LocalResult = field(repr=False)
-    hessian: np.ndarray | None = None
-
-    @property
-    def ok(self) -> bool:
-        return self.gradient is not None
-
-    @property
-    def flagged(self) -> bool:
-        return self.guard is not None
-
-    @property
-    def gradients(self) -> list[np.ndarray]:
-        """The plain gradient followed by the guard's one-sided gradients (empty when the solve failed)."""
-        if self.gradient is None:
-            return []
-        extra = list(self.guard.gradients) if self.guard else []
-        return [self.gradient, *extra]
-
-
-@dataclass(frozen=True)
-class Evaluation:
-    """All agents' reports at one stacked point ``P``."""
-
-    P: np.ndarray
-    reports: tuple[AgentReport, ...]
-    weights: np.ndarray
-    feasible: FeasibleSet = field(repr=False)
-    solves: int = 0
-
-    @property
-    def ok(self) -> bool:
-        """Whether every agent converged (only then are ``total`` and ``gradient`` meaningful)."""
-        return all(r.ok for r in self.reports)
-
-    @property
-    def values(self) -> np.ndarray:
-        return np.array([r.value for r in self.reports])
-
-    @property
-    def total(self) -> float:
-        """Weighted total cost (``inf`` when an agent failed)."""
-        return float(self.weights @ self.values) if self.ok else float("inf")
-
-    @property
-    def gradient(self) -> np.ndarray:
-        """Stacked weighted value gradient (only when ``ok``)."""
-        if not self.ok:
-            raise ValueError("the gradient of a failed evaluation must not be used")
-        return self.feasible.layout.stack([w * r.gradient for w, r in zip(self.weights, self.reports, strict=True)])
-
-    @property
-    def flagged(self) -> list[str]:
-        return [r.name for r in self.reports if r.flagged]
-
-    @property
-    def failed(self) -> list[str]:
-        return [r.name for r in self.reports if not r.ok]
-
-
-@dataclass(frozen=True)
-class Proposal:
-    """A method's answer to one evaluation."""
-
-    point: np.ndarray | None
-    measure: float
-    converged: bool = False
-    note: str = ""
-
-
-class Method(ABC):
-    """Base class of coordination methods (see the module docstring for the protocol)."""
-
-    name: ClassVar[str] = "method"
-    wants_hessian: ClassVar[bool] = False
-    """Set to True to receive each smooth agent's value Hessian in ``AgentReport.hessian``."""
-    Options: ClassVar[type | None] = None
-    """A dataclass declaring the method's options (see the module docstring); ``None``: unchecked."""
-
-    def __init__(self, feasible: FeasibleSet, settings: CoordinatorSettings) -> None:
-        self.feasible = feasible
-        self.settings = settings
-        self.options = method_options(type(self), settings.options)
-        self.incumbent: Evaluation | None = None
-
-    @abstractmethod
-    def start(self, first: Evaluation) -> None:
-        """Receive the evaluation at the starting point."""
-
-    @abstractmethod
-    def propose(self, latest: Evaluation) -> Proposal:
-        """Receive the evaluation of the previous proposal; return the next one."""
-
-    def tolerance_reached(self, measure: float) -> bool:
-        return measure <= self.settings.tolerance
-
-
-def option(default: Any, doc: str) -> Any:
-    """A field of a method's ``Options`` dataclass: its default and one line saying what it does."""
-    return field(default=default, metadata={"doc": doc})
-
-
-_TYPE_NAMES = {bool: "true or false", int: "an integer", float: "a finite number", str: "a string"}
-
-
-def _option_type(f: Any) -> type:
-    # ``from __future__ import annotations`` leaves the annotation as a string.
-    t = f.type if isinstance(f.type, type) else {"bool": bool, "int": int, "float": float, "str": str}.get(f.type)
-    if t is None:
-        raise TypeError(f"option {f.name!r}: type {f.type!r} is not one of bool, int, float, str")
-    return t
-
-
-def _fits(t: type, value: Any) -> bool:
-    if t is bool:
-        return isinstance(value, bool)
-    if t is int:
-        return isinstance(value, int) and not isinstance(value, bool)
-    if t is float:
-        return isinstance(value, int | float) and not isinstance(value, bool) and math.isfinite(value)
-    return isinstance(value, t)
-
-
-def option_problems(cls: type[Method], given: Mapping[str, Any]) -> list[tuple[str, str, Any]]:
-    """The keys of ``given`` that ``cls`` does not accept, as ``(key, expected, found value)``: unknown keys
-    and values of the wrong type (``true``/``false`` for a switch, an integer for a count, a finite number
-    for a real). Empty when ``cls.Options`` is ``None``."""
-    if cls.Options is None:
-        return []
-    declared = {f.name: f for f in fields(cls.Options)}
-    out: list[tuple[str, str, Any]] = []
-    for key, value in given.items():
-        f = declared.get(key)
-        if f is None:
-            names = ", ".join(declared) or "none"
-            out.append((key, f"one of the {cls.name} method's options ({names})", value))
-        elif not _fits(_option_type(f), value):
-            out.append((key, _TYPE_NAMES[_option_type(f)], value))
-    return out
-
-
-def method_options(cls: type[Method], given: Mapping[str, Any]) -> dict[str, Any]:
-    """Every option of ``cls`` (defaults filled in) as a plain dict; what :func:`option_problems` refuses
-    is dropped with a warning. A method without ``Options`` gets ``given`` unchanged."""
-    if cls.Options is None:
-        return dict(given)
-    bad = option_problems(cls, given)
-    for key, expected, value in bad:
-        warnings.warn(
-            f"coordination method {cls.name!r}: option {key!r} expected {expected}, got {value!r}; ignored",
-            UserWarning,
-            stacklevel=4,
-        )
-    refused = {key for key, _, _ in bad}
-    out = {}
-    for f in fields(cls.Options):
-        if f.name in given and f.name not in refused:
-            value = given[f.name]
-            out[f.name] = float(value) if _option_type(f) is float else value
-        else:
-            out[f.name] = f.default if f.default is not MISSING else f.default_factory()  # type: ignore[misc]
-    return out
-
-
-def options_table(cls: type[Method]) -> str:
-    """The Markdown table of a method's options (key, type, default, meaning), as docs/methods.md shows it."""
-    if cls.Options is None:
-        return f"The {cls.name} method declares no options."
-    rows = ["| key | type | default | meaning |", "|---|---|---|---|"]
-    for f in fields(cls.Options):
-        t = _option_type(f)
-        default = ("true" if f.default else "false") if t is bool else repr(f.default)
-        rows.append(f"| `{f.name}` | {t.__name__} | {default} | {f.metadata.get('doc', '')} |")
-    return "\n".join(rows)
-
-
-_METHODS: dict[str, type[Method]] = {}
-
-
-def register_method(cls: type[Method]) -> type[Method]:
-    """Register a :class:`Method` subclass under ``cls.name`` (usable as a decorator)."""
-    if not (isinstance(cls, type) and issubclass(cls, Method)):
-        raise TypeError(f"a coordination method must subclass negotiate.coordinate.Method, got {cls!r}")
-    _METHODS[cls.name] = cls
-    return cls
-
-
-def method_class(name: str) -> type[Method]:
-    """The method registered under ``name``; a ``ValueError`` naming the registered ones when there is none."""
-    _load_builtins()
-    if name not in _METHODS:
-        raise ValueError(f"unknown coordination method {name!r}; expected one of {sorted(_METHODS)}")
-    return _METHODS[name]
-
-
-def method_names() -> list[str]:
-    _load_builtins()
-    return sorted(_METHODS)
-
-
-def _load_builtins() -> None:
-    from negotiate import _bundle, _gradient, _newton  # noqa: F401  (registration side effect)
 
 
 @dataclass(frozen=True)
@@ -363,7 +134,7 @@ class CoordinationResult:
 class Oracle:
     """Evaluates all agents at a stacked point: warm-started solves, then the nonsmooth guard.
 
-    With an :class:`~negotiate.executor.Executor` the guard's probes and the value Hessians are computed by
+    With an :class:`~negotiate.execution.executor.Executor` the guard's probes and the value Hessians are computed by
     the executor, where the agents' solvers live (possibly other processes); with a plain callable
     ``executor(agents, params, warm) -> results`` they are computed here from ``agent.problem``.
     """
@@ -472,13 +243,13 @@ def coordinate(
     start : array, optional
         Stacked starting parameters (projected onto the feasible set); the free optima when omitted.
     executor : Executor or callable, optional
-        An :class:`~negotiate.executor.Executor` (in-process, worker processes, Dask), or any callable
+        An :class:`~negotiate.execution.executor.Executor` (in-process, worker processes, Dask), or any callable
         ``executor(agents, params, warm) -> results``; in process when omitted.
     progress : callable, optional
         Called with each :class:`RoundRecord` as it is made.
     checkpoint : callable, optional
         Called with an :class:`EngineState` after the start and after every round (e.g. to save it:
-        :mod:`negotiate.checkpoint`).
+        :mod:`negotiate.output.checkpoint`).
     resume : EngineState, optional
         Continue from this state (same agents, settings and orders) instead of starting afresh; the run
         then ends exactly as the uninterrupted run would have.

@@ -5,19 +5,19 @@ executors share one small interface, :class:`Executor`:
 
 ``evaluate(agents, params, warm, *, use_guard, want_hessian) -> list[AgentOutcome]``
     Solve agent ``i`` at ``params[i]``, warm-started from ``warm[i]`` (its previous converged
-    :class:`~negotiate.nlp.LocalResult`, or ``None``), and return, in the order of ``agents``, the result
-    plus -- when asked -- the nonsmooth guard's one-sided gradients (:func:`negotiate.guard.guard`) and the
+    :class:`~negotiate.core.nlp.LocalResult`, or ``None``), and return, in the order of ``agents``, the result
+    plus -- when asked -- the nonsmooth guard's one-sided gradients (:func:`negotiate.core.guard.guard`) and the
     value Hessian of a smooth agent. Both are computed where the agent's solver lives, by the same function
     (:func:`evaluate_agent`) whatever the executor, so the schedule does not depend on the executor.
 ``executor(agents, params, warm) -> list[LocalResult]``
-    The plain call (results only) that :func:`negotiate.coordinate.coordinate` also accepts from any
+    The plain call (results only) that :func:`negotiate.coordination.engine.coordinate` also accepts from any
     user-written callable.
 
 :class:`InProcessExecutor` (the default) solves ``agent.problem`` in the calling process.
 :class:`ProcessExecutor` runs ``workers`` local worker processes (``concurrent.futures`` with the
 ``spawn`` start method); :class:`DaskExecutor` submits to a Dask distributed cluster (the optional
 ``cluster`` extra: ``pip install 'negotiate[cluster]'``). Both remote executors ship *fleet records*, not
-solvers: each request carries the agent's :class:`~negotiate.spec.AgentSpec` (with the fleet's resources
+solvers: each request carries the agent's :class:`~negotiate.fleet.spec.AgentSpec` (with the fleet's resources
 and the solver options, pickled once) and the warm-start data; a worker builds the agent's NLP the first
 time it sees that record and keeps it in a per-process cache keyed by a digest of the record, so each agent
 is built once per worker, never per round. Agent ``i`` is always sent to the same worker first (its
@@ -68,13 +68,13 @@ from typing import TYPE_CHECKING, Any, ClassVar
 
 import numpy as np
 
-from negotiate.guard import MAX_PROBED_ROWS, GuardReport, guard
-from negotiate.nlp import LocalResult, ParametricNLP, screen_result, try_solve
-from negotiate.spec import AgentSpec, FleetSpec
-from negotiate.status import Status
+from negotiate.core.guard import MAX_PROBED_ROWS, GuardReport, guard
+from negotiate.core.nlp import LocalResult, ParametricNLP, screen_result, try_solve
+from negotiate.core.status import Status
+from negotiate.fleet.spec import AgentSpec, FleetSpec
 
 if TYPE_CHECKING:
-    from negotiate.agent import AgentModel
+    from negotiate.core.agent import AgentModel
 
 __all__ = [
     "REPLY_GRACE",
@@ -144,7 +144,7 @@ def evaluate_agent(
     Any agent answers here, built-in or user-written: an exception raised by its code (the solve, the guard's
     probes, the Hessian) makes the answer a ``failed`` result whose message names the exception's type and
     text, and a result claiming a solution whose value or gradient is not finite is ``failed`` too
-    (:func:`negotiate.nlp.try_solve`). A value Hessian that is not finite is not passed on.
+    (:func:`negotiate.core.nlp.try_solve`). A value Hessian that is not finite is not passed on.
     """
     res = try_solve(problem, p, warm) if result is None else screen_result(problem, p, result)
     try:
@@ -247,7 +247,7 @@ _CACHE_LOCK = threading.Lock()
 
 def _build_from_record(blob: bytes) -> ParametricNLP:
     """Build one agent from its pickled (resources, AgentSpec, solver options) record, as build_agents does."""
-    from negotiate.fleet import build_report
+    from negotiate.fleet.parse import build_report
 
     resources, agent, solver_options = pickle.loads(blob)
     built, problems = build_report(FleetSpec(f"worker:{agent.name}", resources, (agent,)), solver_options)

@@ -3,7 +3,7 @@
 ``run_fleet(spec, checkpoint_dir=DIR)`` (and ``negotiate run --out DIR``) keeps the file ``DIR/checkpoint.bin``
 up to date: after the start and after every coordination round it holds the fleet, the method's name, the
 order trials finished so far (their orders, totals and schedules; the full result of the best one) and, for
-the trial in progress, the engine's :class:`~negotiate.coordinate.EngineState` -- the current point, the
+the trial in progress, the engine's :class:`~negotiate.coordination.engine.EngineState` -- the current point, the
 method's state (its bundles, metric, step sizes), the round count, the history and every agent's warm-start
 data (``x``, ``lam_g``, ``lam_x`` and the certificate of its last converged solve). The file is written to a
 new temporary file in the same folder, flushed to the disk and renamed over the old one
@@ -37,8 +37,8 @@ dict                        ``{"$d": [[key, value], ...]}`` (keys may be any val
 NumPy scalar                ``{"$n": [dtype, value]}`` (bool, integer and float dtypes only)
 NumPy array                 ``{"$a": [dtype, offset, shape, order]}``: a slice of the archive's flat array
                             of that dtype (bool, integer and float dtypes only), C or Fortran order
-:class:`~negotiate.status.Status`  ``{"$s": "converged"}``
-CoordinationStatus          ``{"$k": "max-rounds"}`` (:class:`~negotiate.status.CoordinationStatus`)
+:class:`~negotiate.core.status.Status`  ``{"$s": "converged"}``
+CoordinationStatus          ``{"$k": "max-rounds"}`` (:class:`~negotiate.core.status.CoordinationStatus`)
 record (:data:`RECORDS`)    ``{"$c": name, "f": {field: value}}``
 coordination method         ``{"$m": registered name, "feasible": ..., "settings": ..., "state": {attribute:
                             value}}``: the registered class is built from the feasible set and settings and
@@ -68,22 +68,16 @@ from typing import Any
 import numpy as np
 
 from agents.params import CapacityParams, MachineParams, StationParams, VehicleParams, ZoneParams
-from negotiate._files import write_atomic
-from negotiate.agent import AgentModel
-from negotiate.coordinate import (
-    AgentReport,
-    CoordinationResult,
-    EngineState,
-    Evaluation,
-    Method,
-    RoundRecord,
-)
-from negotiate.coupling import FeasibleSet, Layout
-from negotiate.guard import GuardReport
-from negotiate.kkt import Certificate, ConstraintRef
-from negotiate.nlp import LocalResult
-from negotiate.spec import AgentSpec, CapacityResource, CoordinatorSettings, ExclusiveResource, FleetSpec
-from negotiate.status import CoordinationStatus, Status
+from negotiate.coordination.engine import CoordinationResult, EngineState, RoundRecord
+from negotiate.coordination.methods import AgentReport, Evaluation, Method
+from negotiate.core.agent import AgentModel
+from negotiate.core.files import write_atomic
+from negotiate.core.guard import GuardReport
+from negotiate.core.kkt import Certificate, ConstraintRef
+from negotiate.core.nlp import LocalResult
+from negotiate.core.status import CoordinationStatus, Status
+from negotiate.fleet.spec import AgentSpec, CapacityResource, CoordinatorSettings, ExclusiveResource, FleetSpec
+from negotiate.resources.coupling import FeasibleSet, Layout
 
 __all__ = [
     "FILENAME",
@@ -321,9 +315,8 @@ class _Decoder:
         return flat[offset : offset + size].reshape(shape, order=order).copy(order="K")
 
     def _method(self, node: dict[str, Any]) -> Method:
-        from negotiate.coordinate import _METHODS, _load_builtins
+        from negotiate.coordination.methods import _METHODS
 
-        _load_builtins()
         name = node["$m"]
         cls = _METHODS.get(name) if type(name) is str else None
         if cls is None:
@@ -600,7 +593,7 @@ class RunBook:
 
     def _keep(self, rec: TrialRecord) -> None:
         # Only the best trial's full result can be the run's answer (the order search keeps a trial only
-        # when it lowers the total by this margin, see negotiate.orders); the others keep their numbers.
+        # when it lowers the total by this margin, see negotiate.coordination.orders); the others keep their numbers.
         first = not self.state.trials
         if first or rec.total < self._best - 1e-9 * max(1.0, abs(self._best)):
             for old in self.state.trials:

@@ -21,13 +21,14 @@ from pathlib import Path
 
 import numpy as np
 
-from negotiate.agent import AgentModel
-from negotiate.centralized import CentralizedResult, solve_centralized
-from negotiate.coordinate import CoordinationResult, RoundRecord, coordinate, method_names
-from negotiate.coupling import build_feasible_set, fcfs_orders
-from negotiate.nlp import try_solve
-from negotiate.spec import FleetSpec
-from negotiate.status import CoordinationStatus
+from negotiate.coordination.centralized import CentralizedResult, solve_centralized
+from negotiate.coordination.engine import CoordinationResult, RoundRecord, coordinate
+from negotiate.coordination.methods import method_names
+from negotiate.core.agent import AgentModel
+from negotiate.core.nlp import try_solve
+from negotiate.core.status import CoordinationStatus
+from negotiate.fleet.spec import FleetSpec
+from negotiate.resources.coupling import build_feasible_set, fcfs_orders
 
 __all__ = ["COMPARE_COLUMNS", "Comparison", "MethodRow", "compare_methods", "write_comparison"]
 
@@ -108,7 +109,7 @@ def compare_methods(
         For an unknown method name.
     """
     if agents is None:
-        from negotiate.fleet import build_agents
+        from negotiate.fleet.parse import build_agents
 
         agents = build_agents(spec)
     agents = list(agents)
@@ -160,7 +161,7 @@ def write_comparison(cmp: Comparison, out_dir: str | Path, *, plot: bool = True)
                         "" if r.relative_gap is None else repr(float(r.relative_gap)), r.message])  # fmt: skip
     paths = [path]
     if plot:
-        from negotiate import plots
+        from negotiate.output import plots
 
         ref = cmp.centralized.total if cmp.centralized is not None and cmp.centralized.success else None
         png = out / "compare.png"

@@ -5,7 +5,7 @@
 agent's value gradient, the price of moving it), ``agents.csv`` (one row per agent: free-optimum and
 coordinated cost, certificate), ``resources.csv`` (gaps, blocks and limits) and one
 ``trajectories/<agent>.csv`` per agent. :func:`load_run` reads a run folder back into a :class:`RunFiles`,
-which is all that :mod:`negotiate.report` needs: a report can be rebuilt without solving anything.
+which is all that :mod:`negotiate.output.report` needs: a report can be rebuilt without solving anything.
 
 Floats are written with Python's shortest round-trip representation, so reading a file gives back the very
 numbers of the run; an empty field is "not applicable" (read as ``nan``). Columns and units are listed in
@@ -20,18 +20,19 @@ import json
 import math
 import re
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import numpy as np
 
-from negotiate._files import write_atomic
-from negotiate.coordinate import RoundRecord
-from negotiate.spec import CapacityResource, ExclusiveResource
-
-if TYPE_CHECKING:
-    from negotiate.run import RunResult
+from negotiate.coordination.centralized import CentralizedResult
+from negotiate.coordination.engine import CoordinationResult, RoundRecord
+from negotiate.coordination.orders import OrderTrial
+from negotiate.core.agent import AgentModel
+from negotiate.core.files import write_atomic
+from negotiate.fleet.spec import FleetSpec
+from negotiate.resources import CapacityResource, ExclusiveResource
 
 __all__ = [
     "AGENTS_COLUMNS",
@@ -44,6 +45,7 @@ __all__ = [
     "ResourceRow",
     "RunFiles",
     "RunFolderError",
+    "RunResult",
     "ScheduleRow",
     "load_run",
     "trajectory_filename",
@@ -96,7 +98,7 @@ def trajectory_filename(agent: str) -> str:
 
 
 def _write_csv(path: Path, header: Sequence[str], rows: Iterable[Sequence[str]]) -> Path:
-    """Write a CSV file whole or not at all (:func:`negotiate._files.write_atomic`)."""
+    """Write a CSV file whole or not at all (:func:`negotiate.core.files.write_atomic`)."""
     path.parent.mkdir(parents=True, exist_ok=True)
     buf = io.StringIO(newline="")
     w = csv.writer(buf)
@@ -222,6 +224,69 @@ class ScheduleRow:
     d_share: float
     verdict: str
     draw: float = math.nan
+
+
+@dataclass(frozen=True)
+class RunResult:
+    """Everything a run found (see :func:`run_fleet`)."""
+
+    spec: FleetSpec
+    coordination: CoordinationResult
+    schedule: tuple[ScheduleRow, ...]
+    free_values: np.ndarray
+    order_trials: tuple[OrderTrial, ...]
+    centralized: CentralizedResult | None
+    wall_time: float
+    agents: tuple[AgentModel, ...] = field(repr=False, default=())
+    phase_times: dict[str, float] = field(default_factory=dict)
+    """Seconds spent in each phase: ``build`` (the agents), ``free_optima``, ``order_search`` (every
+    coordination of every order tried) and, with ``verify``, ``verify``; they add up to ``wall_time``."""
+
+    @property
+    def total(self) -> float:
+        return self.coordination.total
+
+    @property
+    def free_total(self) -> float:
+        """Weighted total of the agents' values at their free optima (a lower bound without coupling)."""
+        w = np.array([a.weight for a in self.agents])
+        return float(w @ self.free_values)
+
+    @property
+    def gap(self) -> float | None:
+        """Relative gap to the centralized optimum, ``(total - centralized) / |centralized|``."""
+        if self.centralized is None or not self.centralized.success:
+            return None
+        return (self.total - self.centralized.total) / max(1e-300, abs(self.centralized.total))
+
+    def summary(self) -> dict[str, Any]:
+        """The content of ``run.json``."""
+        c = self.coordination
+        out: dict[str, Any] = {
+            "fleet": self.spec.name,
+            "description": self.spec.description,
+            "source": self.spec.source,
+            "settings": {**asdict(self.spec.coordinator), "method": c.method},
+            "status": c.status,
+            "message": c.message,
+            "orders": c.orders,
+            "rounds": c.rounds,
+            "agent_solves": c.agent_solves,
+            "order_trials": len(self.order_trials),
+            "order_trials_infeasible": sum(1 for t in self.order_trials if t.infeasible),
+            "order_search": [t.to_dict() for t in self.order_trials],
+            "total_cost": c.total,
+            "free_total_cost": self.free_total,
+            "wall_time_s": self.wall_time,
+            "phase_times_s": dict(self.phase_times),
+            "flagged_last_round": list(c.evaluation.flagged),
+        }
+        if self.centralized is not None:
+            out["centralized_cost"] = self.centralized.total
+            out["centralized_status"] = str(self.centralized.status)
+            out["centralized_wall_time_s"] = self.centralized.wall_time
+            out["relative_gap"] = self.gap
+        return out
 
 
 @dataclass(frozen=True)

@@ -22,8 +22,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from negotiate.kkt import ConstraintRef
-from negotiate.nlp import LocalResult, ParametricNLP, try_solve
+from negotiate.core.kkt import ConstraintRef
+from negotiate.core.nlp import LocalResult, ParametricNLP, try_solve
 
 __all__ = ["GuardReport", "guard"]
 

@@ -1,16 +1,16 @@
 """Orders on exclusive resources: first-come-first-served, neighbour swaps, exhaustive search.
 
 An exclusive resource needs an order of its users before its coupling rules are linear. The start is
-first-come-first-served by the agents' free-optimum entry times (:func:`negotiate.coupling.fcfs_orders`).
+first-come-first-served by the agents' free-optimum entry times (:func:`negotiate.resources.coupling.fcfs_orders`).
 ``swap`` then tries exchanging neighbours in each order, re-coordinates (warm-started from the best
 schedule so far) and keeps a swap when it lowers the total; it repeats until a pass over all neighbours
 brings no improvement. ``exhaustive`` tries every order of each resource with at most
 :data:`EXHAUSTIVE_LIMIT` users (one resource at a time, the others held at their best order). A candidate
 whose orders form a cycle with the agents' routes (a deadlock) or whose coupling polyhedron is empty
-(:func:`negotiate.coupling.check_orders`: a linear program, no agent solve) is recorded as an infeasible
+(:func:`negotiate.resources.coupling.check_orders`: a linear program, no agent solve) is recorded as an infeasible
 trial with the reason and skipped, never handed to the solver. When the first order itself is infeasible
-the search raises (:class:`~negotiate.coupling.DeadlockError` or
-:class:`~negotiate.coupling.InfeasibleOrdersError`), since there is nothing to start from.
+the search raises (:class:`~negotiate.resources.coupling.DeadlockError` or
+:class:`~negotiate.resources.coupling.InfeasibleOrdersError`), since there is nothing to start from.
 """
 
 from __future__ import annotations
@@ -21,9 +21,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from negotiate.agent import AgentModel
-from negotiate.coupling import DeadlockError, InfeasibleOrdersError, check_orders, fcfs_orders
-from negotiate.spec import ExclusiveResource, Resource
+from negotiate.core.agent import AgentModel
+from negotiate.fleet.spec import ExclusiveResource, Resource
+from negotiate.resources.coupling import DeadlockError, InfeasibleOrdersError, check_orders, fcfs_orders
 
 __all__ = ["EXHAUSTIVE_LIMIT", "OrderTrial", "search_orders"]
 

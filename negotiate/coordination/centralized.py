@@ -22,9 +22,9 @@ from dataclasses import dataclass
 import casadi as ca
 import numpy as np
 
-from negotiate.agent import AgentModel
-from negotiate.coupling import FeasibleSet
-from negotiate.status import Status, from_ipopt
+from negotiate.core.agent import AgentModel
+from negotiate.core.status import Status, from_ipopt
+from negotiate.resources.coupling import FeasibleSet
 
 __all__ = ["CentralizedResult", "solve_centralized"]
 

@@ -24,9 +24,10 @@ from typing import Any
 import networkx as nx
 import numpy as np
 
+from negotiate.coordination.methods import method_names
 from negotiate.errors import FleetError, Problem
-from negotiate.fleet import BuiltAgent, _load, _parse, build_report
-from negotiate.spec import CapacityResource, ExclusiveResource, FleetSpec
+from negotiate.fleet.parse import BuiltAgent, _load, _parse, build_report
+from negotiate.fleet.spec import CapacityResource, ExclusiveResource, FleetSpec
 
 __all__ = [
     "LIMIT_WARN_RATIO",
@@ -105,7 +106,7 @@ class CheckResult:
     groups : tuple of tuple of str
         Connected components of the graph (agents and resources), in file order.
     schedule : bool or None
-        Whether the coupling polyhedron (:mod:`negotiate.coupling`) with first-come-first-served orders on
+        Whether the coupling polyhedron (:mod:`negotiate.resources.coupling`) with first-come-first-served orders on
         the exclusive resources -- the coordinator's default start -- holds a point, i.e. whether some
         choice of slots and shares meets every agent's reachable set and every resource's rules at once
         (None when not checked: some agent was not built); ``schedule_detail`` says it in words.
@@ -176,7 +177,7 @@ def check_fleet(path: str | Path, build: bool = True) -> CheckResult:
     it is a problem in the result. Custom models named by import path are imported and run when building.
     """
     try:
-        spec, description = _load(path)
+        spec, description = _load(path, method_names())
     except FleetError as exc:
         return CheckResult(source=str(path), spec=None, problems=exc.problems)
     return _check_spec(spec, description, build)
@@ -185,7 +186,7 @@ def check_fleet(path: str | Path, build: bool = True) -> CheckResult:
 def check_data(data: Mapping[str, Any], source: str = "<memory>", build: bool = True) -> CheckResult:
     """Like :func:`check_fleet` for an already-decoded fleet dictionary."""
     try:
-        spec, description = _parse(data, source)
+        spec, description = _parse(data, source, method_names())
     except FleetError as exc:
         return CheckResult(source=source, spec=None, problems=exc.problems)
     return _check_spec(spec, description, build)
@@ -240,7 +241,6 @@ def _check_spec(spec: FleetSpec, description: str, build: bool) -> CheckResult:
 def _option_problems(spec: FleetSpec) -> list[Problem]:
     """``[coordinator.options]`` the fleet's method does not declare (a built-in method; a user method named
     by "module:Class" is not imported by a check)."""
-    from negotiate.coordinate import method_names
     from negotiate.run import check_method_options
 
     if spec.coordinator.method not in method_names():
@@ -254,7 +254,7 @@ def _option_problems(spec: FleetSpec) -> list[Problem]:
 
 def _schedule(spec: FleetSpec, agents: list[Any]) -> tuple[bool, str, Problem | None]:
     """Whether the coupling polyhedron with first-come-first-served orders is non-empty (one LP)."""
-    from negotiate.coupling import check_orders, fcfs_orders
+    from negotiate.resources.coupling import check_orders, fcfs_orders
 
     what = "a fleet whose agents' reachable sets admit a schedule with first-come-first-served orders"
     try:

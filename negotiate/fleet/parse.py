@@ -1,8 +1,8 @@
 """The fleet file: a TOML description of shared resources, agents and coordinator settings.
 
 :func:`load_fleet` reads a file, :func:`parse_fleet` checks an already-decoded dictionary, and both return
-a typed :class:`~negotiate.spec.FleetSpec` (plain numbers in SI units, no CasADi). :func:`build_agents`
-turns the spec into the agents' :class:`~negotiate.agent.AgentModel` s with the model library. Every user
+a typed :class:`~negotiate.fleet.spec.FleetSpec` (plain numbers in SI units, no CasADi). :func:`build_agents`
+turns the spec into the agents' :class:`~negotiate.core.agent.AgentModel` s with the model library. Every user
 mistake -- an unknown key, a value of the wrong type or out of range, a reference to a resource that is not
 declared or of the wrong kind, a capacity user off its resource's block grid, an agent that cannot be built
 -- is reported as one :class:`~negotiate.errors.FleetError` listing all the mistakes found, each with the
@@ -34,7 +34,7 @@ import sys
 import time
 import tomllib
 import typing
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import MISSING, dataclass, fields
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -51,7 +51,7 @@ from agents.params import (
     ZoneParams,
 )
 from negotiate.errors import FleetError, Problem, describe, table_path
-from negotiate.spec import (
+from negotiate.fleet.spec import (
     BLOCK_LIMIT,
     GAP,
     MAX_ROUNDS,
@@ -68,7 +68,7 @@ from negotiate.spec import (
 )
 
 if TYPE_CHECKING:
-    from negotiate.agent import AgentModel
+    from negotiate.core.agent import AgentModel
 
 __all__ = [
     "FAMILIES",
@@ -179,7 +179,7 @@ _COORDINATOR_KEYS = (
         "choice",
         "-",
         _spec_default(CoordinatorSettings, "method"),
-        "coordination method (or a user method registered with negotiate.coordinate.register_method before "
+        "coordination method (or a user method registered with negotiate.coordination.engine.register_method before "
         "the file is parsed)",
         choices=METHODS,
     ),
@@ -683,13 +683,16 @@ def _capacity_grid(col: _Collector, agent_path: str, values: dict[str, _Value], 
 _TOP_KEYS = ["fleet", "resources", "coordinator", "defaults", "agents"]
 
 
-def load_fleet(path: str | Path) -> FleetSpec:
+def load_fleet(path: str | Path, methods: Sequence[str] = METHODS) -> FleetSpec:
     """Read and check a fleet file.
 
     Parameters
     ----------
     path : str or pathlib.Path
         The TOML file; it is named in every message as it was given here.
+    methods : sequence of str
+        The coordination methods ``[coordinator] method`` may name (the built-ins by default;
+        :func:`negotiate.run.load_fleet` passes every registered one).
 
     Returns
     -------
@@ -703,10 +706,10 @@ def load_fleet(path: str | Path) -> FleetSpec:
     FleetError
         The file is not valid TOML, or it has mistakes (all of them are listed).
     """
-    return _load(path)[0]
+    return _load(path, methods)[0]
 
 
-def _load(path: str | Path) -> tuple[FleetSpec, str]:
+def _load(path: str | Path, methods: Sequence[str] = METHODS) -> tuple[FleetSpec, str]:
     """The spec and the fleet's description from a file (see :func:`load_fleet`)."""
     source = str(path)
     with open(path, "rb") as fh:
@@ -723,7 +726,7 @@ def _load(path: str | Path) -> tuple[FleetSpec, str]:
         raise FleetError(
             [Problem(source, "", None, _DEPTH_RULE, "nesting too deep for the TOML reader to follow")]
         ) from None
-    return _parse(data, source)
+    return _parse(data, source, methods)
 
 
 MAX_DEPTH = 16
@@ -745,16 +748,16 @@ def _too_deep(data: Mapping[str, Any]) -> tuple[str | int, ...] | None:
     return None
 
 
-def parse_fleet(data: Mapping[str, Any], source: str = "<memory>") -> FleetSpec:
+def parse_fleet(data: Mapping[str, Any], source: str = "<memory>", methods: Sequence[str] = METHODS) -> FleetSpec:
     """Check a decoded fleet dictionary (as :func:`tomllib.load` returns it) and build the typed spec.
 
-    ``source`` names the origin in messages. Raises :class:`FleetError` listing every mistake found; never
-    another exception for any content of ``data``.
+    ``source`` names the origin in messages; ``methods`` as in :func:`load_fleet`. Raises :class:`FleetError`
+    listing every mistake found; never another exception for any content of ``data``.
     """
-    return _parse(data, source)[0]
+    return _parse(data, source, methods)[0]
 
 
-def _parse(data: Any, source: str) -> tuple[FleetSpec, str]:
+def _parse(data: Any, source: str, methods: Sequence[str] = METHODS) -> tuple[FleetSpec, str]:
     """The spec and the fleet's description; raises FleetError."""
     col = _Collector(source)
     if not isinstance(data, Mapping):
@@ -775,7 +778,7 @@ def _parse(data: Any, source: str) -> tuple[FleetSpec, str]:
     description = fleet.get("description", "")
 
     resources = _parse_resources(col, _table(col, data, "resources", ""))
-    coordinator = _parse_coordinator(col, _table(col, data, "coordinator", ""))
+    coordinator = _parse_coordinator(col, _table(col, data, "coordinator", ""), methods)
     agents_t = _table(col, data, "agents", "")
     models_used = set()
     if agents_t:
@@ -854,17 +857,11 @@ def _parse_resources(col: _Collector, table: dict[str, Any] | None) -> dict[str,
     return out
 
 
-def _method_names() -> tuple[str, ...]:
-    """Built-in methods, plus user methods registered if the coordinator is loaded (parsing never loads it)."""
-    names = list(METHODS)
-    coordinate = sys.modules.get("negotiate.coordinate")
-    if coordinate is not None and hasattr(coordinate, "method_names"):
-        names += [n for n in coordinate.method_names() if n not in names]
-    return tuple(names)
-
-
-def _parse_coordinator(col: _Collector, table: dict[str, Any] | None) -> CoordinatorSettings | None:
-    method_key = dataclasses.replace(_COORDINATOR_KEYS[0], choices=_method_names())
+def _parse_coordinator(
+    col: _Collector, table: dict[str, Any] | None, methods: Sequence[str]
+) -> CoordinatorSettings | None:
+    names = (*METHODS, *(m for m in methods if m not in METHODS))
+    method_key = dataclasses.replace(_COORDINATOR_KEYS[0], choices=names)
     conv = _check_table(col, "coordinator", table or {}, (method_key, *_COORDINATOR_KEYS[1:]))
     try:
         return CoordinatorSettings(**conv)
@@ -1004,8 +1001,8 @@ def build_report(
     kind, a capacity share outside the resource's blocks. Custom models are imported and run here.
     """
     from agents import MODELS  # the model library needs CasADi; parsing does not
-    from negotiate.agent import AgentModel
-    from negotiate.nlp import try_solve
+    from negotiate.core.agent import AgentModel
+    from negotiate.core.nlp import try_solve
 
     resources = {r.name: r for r in spec.resources}
     built: list[BuiltAgent] = []

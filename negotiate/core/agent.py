@@ -1,6 +1,6 @@
 """What a model builder hands to the coordinator.
 
-An agent is its own parametric NLP (a :class:`~negotiate.nlp.ParametricNLP`) plus the few facts the
+An agent is its own parametric NLP (a :class:`~negotiate.core.nlp.ParametricNLP`) plus the few facts the
 coordinator needs to talk to it without looking inside: what each shared parameter means (which resource,
 entry or exit time or capacity share, its unit), a polyhedral set of parameter values the agent can surely
 meet (its reachable set, so that no infeasible slot is ever proposed), the parameter values it would pick if
@@ -17,7 +17,7 @@ from typing import Literal
 
 import numpy as np
 
-from negotiate.nlp import LocalResult, ParametricNLP
+from negotiate.core.nlp import LocalResult, ParametricNLP
 
 ParamKind = Literal["enter", "leave", "share"]
 

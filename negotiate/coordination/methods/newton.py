@@ -1,7 +1,7 @@
 """Projected Newton (SQP-like) steps using the agents' value Hessians, where every certificate is smooth.
 
 Where every agent certifies ``smooth``, its value Hessian ``d2V_i/dp_i2`` follows from the KKT sensitivity
-system (:mod:`negotiate.sensitivity`). The upper step solves the QP ::
+system (:mod:`negotiate.core.sensitivity`). The upper step solves the QP ::
 
     min_P  g . (P - P_k) + 1/2 (P - P_k)^T B (P - P_k)    s.t. P in the coupling polyhedron
 
@@ -10,7 +10,7 @@ raising its eigenvalues to at least ``1e-6`` of its largest one and of the metri
 step (V_i need not be convex, and is linear in places), in scaled coordinates. The step is then
 backtracked (Armijo on the true total) along the segment to the QP's solution, which stays feasible.
 Where some agent is not smooth, or is flagged by the nonsmooth guard, that round falls back to the
-projected-gradient step of :mod:`negotiate._gradient`. Stopping measure: the
+projected-gradient step of :mod:`negotiate.coordination.methods.gradient`. Stopping measure: the
 QP's predicted decrease ``-(g.d + d.B.d / 2)`` relative to ``max(1, |total|)``; it stops only when the
 gradient method's step-independent measure is below the tolerance too (a Hessian that overstates the
 curvature near a kink would promise too little).
@@ -20,9 +20,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from negotiate._gradient import ProjectedGradient
-from negotiate.coordinate import Evaluation, Proposal, register_method
-from negotiate.qp import solve_qp
+from negotiate.coordination.methods.base import Evaluation, Proposal, register_method
+from negotiate.coordination.methods.gradient import ProjectedGradient
+from negotiate.core.qp import solve_qp
 
 
 @register_method

@@ -20,7 +20,7 @@ exclusive resource to the next; a cycle means no schedule exists and raises :cla
 naming the agents and resources on it. Orders without a cycle can still admit no schedule (a gap too long
 for the agents' reachable windows, say): :func:`check_orders` then decides emptiness with a linear program
 (HiGHS through :func:`scipy.optimize.linprog`) and raises :class:`InfeasibleOrdersError` naming the rows
-that conflict. Projection onto the polyhedron is a small sparse convex QP (:mod:`negotiate.qp`).
+that conflict. Projection onto the polyhedron is a small sparse convex QP (:mod:`negotiate.core.qp`).
 """
 
 from __future__ import annotations
@@ -32,9 +32,9 @@ import networkx as nx
 import numpy as np
 from scipy.optimize import linprog
 
-from negotiate.agent import AgentModel
-from negotiate.qp import solve_qp
-from negotiate.spec import CapacityResource, ExclusiveResource, Resource
+from negotiate.core.agent import AgentModel
+from negotiate.core.qp import solve_qp
+from negotiate.resources import CapacityResource, ExclusiveResource, Resource
 
 __all__ = [
     "DeadlockError",
