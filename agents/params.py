@@ -19,7 +19,6 @@ minutes on a 2-core machine. Invalid numbers (a negative mass, a zone outside th
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field, fields
 from typing import Any
 
@@ -38,6 +37,7 @@ from negotiate.core.ranges import (  # noqa: F401  (part of this module's vocabu
     Range,
     _short,
 )
+from negotiate.errors import FieldError, check_field
 
 __all__ = [
     "STANDARD_GRAVITY",
@@ -79,9 +79,7 @@ def _f(default: Any, unit: str, doc: str, rng: Range | None = None, count: Range
     return field(default=default, metadata=meta)
 
 
-def _check(owner: str, name: str, value: float, ok: bool, expected: str) -> None:
-    if not ok or (isinstance(value, float) and math.isnan(value)):
-        raise ValueError(f"{owner}: '{name}' must be {expected}, got {value!r}")
+_check = check_field
 
 
 def _check_ranges(owner: str, obj: Any) -> None:
@@ -91,10 +89,8 @@ def _check_ranges(owner: str, obj: Any) -> None:
         value = getattr(obj, f.name)
         count = f.metadata.get("count")
         if count is not None and len(value) not in count:
-            raise ValueError(
-                f"{owner}: '{f.name}' must be a list of {_short(count.lo)} to {_short(count.hi)} entries, "
-                f"got {len(value)} entries"
-            )
+            raise FieldError(owner, f.name, f"a list of {_short(count.lo)} to {_short(count.hi)} entries",
+                             f"{len(value)} entries")  # fmt: skip
         rng = f.metadata.get("range")
         if rng is None or (value is None and f.default is None):
             continue

@@ -19,7 +19,7 @@ from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
-__all__ = ["FleetError", "Problem", "describe", "table_path"]
+__all__ = ["FieldError", "FleetError", "Problem", "check_field", "describe", "table_path"]
 
 _BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")
 _PRINTABLE = re.compile(r"^[^\x00-\x1f\x7f\x85\u2028\u2029'\\]*$")
@@ -102,6 +102,28 @@ class FleetError(ValueError):
     def __reduce__(self) -> tuple[Any, ...]:
         # Picklable (worker processes may raise it), although __init__ does not take the message.
         return (type(self), (self.problems,))
+
+
+class FieldError(ValueError):
+    """A record refused one of its fields: who owns it, the key, what was expected and what was found.
+
+    Raised by the plain records (model parameters, resources) when they are made; the fleet parser turns it
+    into a :class:`Problem` from its attributes. ``str(error)`` reads ``"<owner>: '<key>' must be
+    <expected>, got <found>"``.
+    """
+
+    def __init__(self, owner: str, key: str, expected: str, found: str) -> None:
+        self.owner, self.key, self.expected, self.found = owner, key, expected, found
+        super().__init__(f"{owner}: '{key}' must be {expected}, got {found}")
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        return (type(self), (self.owner, self.key, self.expected, self.found))
+
+
+def check_field(owner: str, key: str, value: Any, ok: bool, expected: str) -> None:
+    """Raise :class:`FieldError` (``found`` is ``repr(value)``) unless ``ok``; NaN is never ok."""
+    if not ok or (isinstance(value, float) and math.isnan(value)):
+        raise FieldError(owner, key, expected, repr(value))
 
 
 def table_path(*parts: str | int) -> str:

@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 from typing import Any, Literal
 
 from negotiate.core.ranges import Range
+from negotiate.errors import FieldError, check_field
 from negotiate.resources import Resource
 from negotiate.resources.capacity import BLOCK_LIMIT, CapacityResource
 from negotiate.resources.exclusive import GAP, ExclusiveResource
@@ -47,11 +48,7 @@ WEIGHT = Range(0.0, 1e6, lo_open=True)
 """Allowed weight of an agent's cost in the fleet total (dimensionless)."""
 
 
-def _check(owner: str, name: str, value: Any, ok: bool, expected: str) -> None:
-    if not ok:
-        raise ValueError(f"{owner}: '{name}' must be {expected}, got {value!r}")
-
-
+_check = check_field
 
 
 @dataclass(frozen=True)
@@ -86,7 +83,7 @@ class CoordinatorSettings:
         _check("coordinator", "max_rounds", self.max_rounds, rounds_ok, f"an integer {MAX_ROUNDS}")
         _check("coordinator", "tolerance", self.tolerance, self.tolerance in TOLERANCE, str(TOLERANCE))
         if self.order not in ORDER_RULES:
-            raise ValueError(f"coordinator: 'order' must be one of {list(ORDER_RULES)}, got {self.order!r}")
+            raise FieldError("coordinator", "order", f"one of {list(ORDER_RULES)}", repr(self.order))
 
 
 @dataclass(frozen=True)

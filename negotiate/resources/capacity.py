@@ -3,9 +3,9 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
 
 from negotiate.core.ranges import DURATION, MAX_BLOCKS, TIME, Range
+from negotiate.errors import FieldError, check_field
 
 __all__ = ["BLOCK_LIMIT", "CapacityResource"]
 
@@ -13,9 +13,7 @@ __all__ = ["BLOCK_LIMIT", "CapacityResource"]
 BLOCK_LIMIT = Range(0.0, 1e12)
 """Allowed limit of a capacity block, in the resource's unit (W for power: up to 1 TW)."""
 
-def _check(owner: str, name: str, value: Any, ok: bool, expected: str) -> None:
-    if not ok:
-        raise ValueError(f"{owner}: '{name}' must be {expected}, got {value!r}")
+_check = check_field
 
 
 @dataclass(frozen=True)
@@ -47,9 +45,7 @@ class CapacityResource:
         object.__setattr__(self, "limits", tuple(float(v) for v in self.limits))
         owner = f"resource {self.name!r}"
         if not 1 <= len(self.limits) <= MAX_BLOCKS:
-            raise ValueError(
-                f"{owner}: 'limits' must be a list of 1 to {MAX_BLOCKS} entries, got {len(self.limits)} entries"
-            )
+            raise FieldError(owner, "limits", f"a list of 1 to {MAX_BLOCKS} entries", f"{len(self.limits)} entries")
         bad = [v for v in self.limits if v not in BLOCK_LIMIT]
         _check(owner, "limits", bad[0] if bad else None, not bad, f"made of numbers {BLOCK_LIMIT}")
         _check(owner, "start", self.start, self.start in TIME, str(TIME))

@@ -3,9 +3,9 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
 
 from negotiate.core.ranges import DURATION, Range
+from negotiate.errors import check_field
 
 __all__ = ["GAP", "ExclusiveResource"]
 
@@ -13,9 +13,7 @@ __all__ = ["GAP", "ExclusiveResource"]
 GAP = Range(0.0, DURATION.hi)
 """Allowed gap (headway, changeover) of an exclusive resource, s."""
 
-def _check(owner: str, name: str, value: Any, ok: bool, expected: str) -> None:
-    if not ok:
-        raise ValueError(f"{owner}: '{name}' must be {expected}, got {value!r}")
+_check = check_field
 
 
 @dataclass(frozen=True)
