@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from negotiate.coordination.methods import Evaluation, Method, Proposal, option, register_method
+from negotiate import Evaluation, Method, Proposal, option, register_method
 
 
 @dataclass(frozen=True)
