@@ -40,9 +40,6 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from agents.params import (
-    DURATION,
-    MAX_BLOCKS,
-    TIME,
     CapacityParams,
     MachineParams,
     Range,
@@ -50,10 +47,8 @@ from agents.params import (
     VehicleParams,
     ZoneParams,
 )
-from negotiate.errors import FleetError, Problem, describe, table_path
+from negotiate.errors import FieldError, FleetError, Problem, describe, table_path
 from negotiate.fleet.spec import (
-    BLOCK_LIMIT,
-    GAP,
     MAX_ROUNDS,
     METHODS,
     ORDER_RULES,
@@ -66,6 +61,7 @@ from negotiate.fleet.spec import (
     FleetSpec,
     Resource,
 )
+from negotiate.resources import KINDS
 
 if TYPE_CHECKING:
     from negotiate.core.agent import AgentModel
@@ -139,40 +135,20 @@ _FLEET_KEYS = (
     _Key("name", "string", "-", "the file name without extension", "name of the fleet (for reports)"),
     _Key("description", "string", "-", "", "free text describing the scenario"),
 )
-_KIND_KEY = _Key("kind", "choice", "-", REQUIRED, "kind of resource", choices=("exclusive", "capacity"))
-_EXCLUSIVE_KEYS = (
-    _KIND_KEY,
-    _Key(
-        "gap",
-        "number",
-        "s",
-        _spec_default(ExclusiveResource, "gap"),
-        "smallest time between one user's exit and the next user's entry (headway or changeover)",
-        allowed=GAP.interval,
-    ),
-)
-_CAPACITY_KEYS = (
-    _KIND_KEY,
-    _Key(
-        "limits",
-        "numbers",
-        "W",
-        REQUIRED,
-        "limit of the summed shares in each time block; its length is the number of blocks",
-        allowed=f"each {BLOCK_LIMIT.interval}; 1 to {MAX_BLOCKS} entries",
-    ),
-    _Key("start", "number", "s", _spec_default(CapacityResource, "start"), "start of the first block",
-         allowed=TIME.interval),
-    _Key("block_length", "number", "s", _spec_default(CapacityResource, "block_length"), "length of each block",
-         allowed=DURATION.interval),
-    _Key(
-        "unit",
-        "string",
-        "-",
-        _spec_default(CapacityResource, "unit"),
-        "unit of the limits and shares (the built-in capacity model shares power, W)",
-    ),
-)
+
+
+def _kind_key() -> _Key:
+    """The ``kind`` key of a ``[resources.<name>]`` table: one of the kinds registered by now."""
+    return _Key("kind", "choice", "-", REQUIRED, "kind of resource", choices=tuple(KINDS))
+
+
+def _kind_keys(name: str) -> tuple[_Key, ...]:
+    """The keys of a ``[resources.<name>]`` table of the registered kind ``name``, as the kind declares them."""
+    cls = KINDS[name]
+    return (_kind_key(), *(_Key(k.name, k.type, k.unit, REQUIRED if k.required else _spec_default(cls, k.name), k.doc,
+                             allowed=k.allowed) for k in cls.keys))  # fmt: skip
+
+
 _COORDINATOR_KEYS = (
     _Key(
         "method",
@@ -830,31 +806,40 @@ def _parse_resources(col: _Collector, table: dict[str, Any] | None) -> dict[str,
             out[name] = _Broken(name, None)
             continue
         kind = t.get("kind")
-        if kind not in ("exclusive", "capacity"):
-            col.add(path, "kind", _expected_of(_KIND_KEY), describe(kind) if "kind" in t else "nothing")
+        if not isinstance(kind, str) or kind not in KINDS:
+            col.add(path, "kind", _expected_of(_kind_key()), describe(kind) if "kind" in t else "nothing")
             out[name] = _Broken(name, None)
             continue
         out[name] = _Broken(name, kind)
-        keys = _EXCLUSIVE_KEYS if kind == "exclusive" else _CAPACITY_KEYS
+        keys = _kind_keys(kind)
         conv = _check_table(col, path, t, keys)
         if any(k.name in t and k.name not in conv for k in keys) or any(
             k.default is REQUIRED and k.name not in t for k in keys
         ):
             continue
         conv.pop("kind")
-        cls = ExclusiveResource if kind == "exclusive" else CapacityResource
-        units = {k.name: k.unit for k in keys}
         try:
-            out[name] = cls(name=name, **conv)
+            out[name] = KINDS[kind](name=name, **conv)
+        except FieldError as exc:
+            exp = _user_expected(exc.expected, next(k.unit for k in keys if k.name == exc.key))
+            # A list is named by the record's own words (its bad entry or its length), not in full.
+            key = exc.key
+            col.add(path, key, exp, describe(t[key]) if key in t and not isinstance(t[key], list) else exc.found)
         except (ValueError, TypeError) as exc:
-            parsed = _record_problem(str(exc), units)
-            if parsed is None:
-                col.add(path, None, f"a valid {kind} resource", str(exc))
-            else:
-                _owner, key, exp, got = parsed
-                # A list is named by the record's own words (its bad entry or its length), not in full.
-                col.add(path, key, exp, describe(t[key]) if key in t and not isinstance(t[key], list) else got)
+            col.add(path, None, f"a valid {kind} resource", str(exc))
     return out
+
+
+def _user_expected(exp: str, unit: str) -> str:
+    """A record's ``expected`` words phrased for a fleet file's user (``"a number >= 0 (s)"``)."""
+    exp = exp.strip()
+    if exp.startswith(("<", ">", "within", "later", "earlier")):
+        exp = "a number " + exp
+    elif exp.startswith("made of"):
+        exp = "a list " + exp
+    if unit and unit != "-" and not exp.endswith((f" {unit}", " entries")):
+        exp += f" ({unit})"
+    return exp
 
 
 def _parse_coordinator(
@@ -1178,12 +1163,8 @@ def schema_markdown() -> str:
         out.extend([f"### {title}", "", intro, "", *_key_table(keys), ""])
 
     section("`[fleet]`", "Optional.", _FLEET_KEYS)
-    section(
-        '`[resources.<name>]` with `kind = "exclusive"`', "A resource used by one agent at a time.", _EXCLUSIVE_KEYS
-    )
-    section(
-        '`[resources.<name>]` with `kind = "capacity"`', "A resource shared by amount in time blocks.", _CAPACITY_KEYS
-    )
+    for kind, cls in KINDS.items():
+        section(f'`[resources.<name>]` with `kind = "{kind}"`', cls.about, _kind_keys(kind))
     section(
         "`[coordinator]`",
         "Optional; `[coordinator.options]` holds options the method declares (docs/methods.md).",
