@@ -102,7 +102,8 @@ class CheckResult:
     agents, resources : tuple
         :class:`AgentRow` and :class:`ResourceRow` per agent and resource, in file order.
     graph : networkx.Graph
-        The conflict graph (node attribute ``kind``: ``"agent"``, ``"exclusive"`` or ``"capacity"``).
+        The conflict graph (node attribute ``kind``: ``"agent"`` or the resource's kind, ``"exclusive"``,
+        ``"capacity"`` ...).
     groups : tuple of tuple of str
         Connected components of the graph (agents and resources), in file order.
     schedule : bool or None
@@ -366,7 +367,7 @@ def _resource_rows(
                 )
             else:
                 detail = "free-optimum shares fit within every block's limit"
-            rows.append(ResourceRow(r.name, "capacity", users, bool(over.size), detail))
+            rows.append(ResourceRow(r.name, r.kind, users, bool(over.size), detail))
             low = _low_limits(spec, r, demand)
             if low is not None:
                 warnings.append(low)
