@@ -22,8 +22,11 @@ Method, register_method, option, Evaluation, AgentReport, Proposal, Coordination
     What a coordination method of your own needs: the base class, its registration, declared options, what
     it receives each round and what it returns; the engine's result. The front over every method is
     :func:`negotiate.coordination.engine.coordinate` (not re-exported here: the name is its module's).
-CoordinatorSettings, ExclusiveResource, CapacityResource
-    The upper level's settings and the shared resources (slots with a gap; capacity per time block).
+CoordinatorSettings, ExclusiveResource, CapacityResource, DwellResource
+    The upper level's settings and the shared resources (slots with a gap; capacity per time block; slots
+    with a gap and a minimum stay).
+ResourceKind, register_kind
+    What a resource kind of your own needs: the base of its record and its registration (docs/extend.md).
 DeadlockError, InfeasibleOrdersError
     Orders on exclusive resources that no schedule can meet (a cycle; an empty coupling polyhedron).
 run_fleet, write_outputs
@@ -55,6 +58,7 @@ _WHERE = {
     "CoordinationStatus": "negotiate.core.status",
     "CoordinatorSettings": "negotiate.fleet.spec",
     "DeadlockError": "negotiate.resources.coupling",
+    "DwellResource": "negotiate.resources",
     "Evaluation": "negotiate.coordination.methods",
     "ExclusiveResource": "negotiate.fleet.spec",
     "FleetError": "negotiate.errors",
@@ -64,6 +68,7 @@ _WHERE = {
     "ParametricNLP": "negotiate.core.nlp",
     "Proposal": "negotiate.coordination.methods",
     "ReachableSet": "negotiate.core.agent",
+    "ResourceKind": "negotiate.resources",
     "Sensitivity": "negotiate.core.sensitivity",
     "SlotParam": "negotiate.core.agent",
     "Status": "negotiate.core.status",
@@ -71,6 +76,7 @@ _WHERE = {
     "build_agents": "negotiate.fleet.parse",
     "load_fleet": "negotiate.run",
     "option": "negotiate.coordination.methods",
+    "register_kind": "negotiate.resources",
     "register_method": "negotiate.coordination.methods",
     "run_fleet": "negotiate.run",
     "write_outputs": "negotiate.run",
@@ -99,6 +105,7 @@ __all__ = [
     "CoordinationStatus",
     "CoordinatorSettings",
     "DeadlockError",
+    "DwellResource",
     "Evaluation",
     "ExclusiveResource",
     "FleetError",
@@ -108,6 +115,7 @@ __all__ = [
     "ParametricNLP",
     "Proposal",
     "ReachableSet",
+    "ResourceKind",
     "Sensitivity",
     "SlotParam",
     "Status",
@@ -115,6 +123,7 @@ __all__ = [
     "build_agents",
     "load_fleet",
     "option",
+    "register_kind",
     "register_method",
     "run_fleet",
     "write_outputs",

@@ -321,7 +321,7 @@ def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ign
     c = result.coordination
     rows = []
     for r in result.schedule:
-        if r.share == r.share:
+        if r.chart == "shares":
             draw = "" if r.draw != r.draw else f"{r.draw:.0f}"
             rows.append([r.agent, r.resource, f"{r.enter:.1f}", f"{r.leave:.1f}", f"{r.share:.0f}", draw, "", "",
                          _fmt(r.d_share, 3), _fmt(r.value - r.free_value, 4), r.verdict])  # fmt: skip

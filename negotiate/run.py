@@ -37,7 +37,7 @@ from negotiate.core.files import write_atomic
 from negotiate.core.nlp import try_solve
 from negotiate.errors import FleetError, Problem, describe
 from negotiate.fleet import parse
-from negotiate.fleet.spec import CapacityResource, FleetSpec
+from negotiate.fleet.spec import FleetSpec
 from negotiate.output.checkpoint import FILENAME as CHECKPOINT_FILE
 from negotiate.output.results import SCHEDULE_COLUMNS, RunFolderError, RunResult, ScheduleRow, write_result_files
 
@@ -123,24 +123,13 @@ def _schedule(
         if a.draw is not None and rep.ok:
             planned = np.asarray(a.draw(rep.result), dtype=float).ravel()
             draw = planned if planned.shape == draw.shape else draw
-        done: set[str] = set()
-        for k, q in enumerate(a.params):
-            if q.kind == "share":
-                r = spec.resource(q.resource)
-                assert isinstance(r, CapacityResource) and q.block is not None
-                t0 = r.start + q.block * r.block_length
-                rows.append(
-                    ScheduleRow(a.name, q.resource, t0, t0 + r.block_length, float(rep.p[k]), rep.value, fv,
-                                np.nan, np.nan, float(grad[k]), verdict, float(draw[k]))
-                )  # fmt: skip
-            elif q.resource not in done:
-                done.add(q.resource)
-                ke = next(j for j, s in enumerate(a.params) if s.resource == q.resource and s.kind == "enter")
-                kl = next(j for j, s in enumerate(a.params) if s.resource == q.resource and s.kind == "leave")
-                rows.append(
-                    ScheduleRow(a.name, q.resource, float(rep.p[ke]), float(rep.p[kl]), np.nan, rep.value, fv,
-                                float(grad[ke]), float(grad[kl]), np.nan, verdict)
-                )  # fmt: skip
+        own = []  # each resource's rows, listed in the order of the agent's parameters
+        for name in dict.fromkeys(q.resource for q in a.params):
+            r = spec.resource(name)
+            own += [(s.first, name, r.kind, s) for s in r.schedule_rows(a, rep.p, grad, draw)]
+        for _first, name, kind, s in sorted(own, key=lambda row: row[0]):
+            rows.append(ScheduleRow(a.name, name, s.enter, s.leave, s.share, rep.value, fv, s.d_enter, s.d_leave,
+                                    s.d_share, verdict, s.draw, kind))  # fmt: skip
     return rows
 
 

@@ -490,7 +490,7 @@ DAMAGE = {
             for k, line in enumerate((d / "agents.csv").read_text().splitlines()))),
         "agents.csv line 3", "expected 11 fields, found 4"),
     "resources.csv unknown kind": (lambda d: _edit_csv(d / "resources.csv", 2, "kind", "shared"),
-                                   "resources.csv line 2, column 'kind'", "'exclusive' or 'capacity'"),
+                                   "resources.csv line 2, column 'kind'", "'exclusive', 'capacity' or 'dwell'"),
     "resources.csv limit infinite": (lambda d: _edit_csv(d / "resources.csv", 4, "limit", "inf"),
                                      "resources.csv line 4, column 'limit'", "expected a finite number"),
     "schedule.csv binary garbage": (lambda d: (d / "schedule.csv").write_bytes(b"\x00\xff\xfe" * 100),

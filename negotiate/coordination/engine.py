@@ -235,7 +235,8 @@ def coordinate(
     Parameters
     ----------
     agents : sequence of AgentModel
-    resources : sequence of ExclusiveResource / CapacityResource
+    resources : sequence of Resource
+        Records of registered kinds (:mod:`negotiate.resources`).
     settings : CoordinatorSettings, optional
         Method, rounds, tolerance, guard and method options (defaults when omitted).
     orders : dict, optional

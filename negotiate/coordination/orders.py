@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from negotiate.core.agent import AgentModel
-from negotiate.fleet.spec import ExclusiveResource, Resource
+from negotiate.fleet.spec import Resource
 from negotiate.resources.coupling import DeadlockError, InfeasibleOrdersError, check_orders, fcfs_orders
 
 __all__ = ["EXHAUSTIVE_LIMIT", "OrderTrial", "search_orders"]
@@ -70,7 +70,7 @@ def search_orders(
     trials = [OrderTrial({k: list(v) for k, v in orders.items()}, best_total, True)]
     if rule == "fcfs":
         return best, orders, trials
-    exclusive = [r.name for r in resources if isinstance(r, ExclusiveResource)]
+    exclusive = [r.name for r in resources if r.needs_order]  # resources whose users take turns
 
     def attempt(candidate: dict[str, list[str]]) -> bool:
         nonlocal best_total, best_P, best, orders

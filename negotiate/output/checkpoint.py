@@ -76,7 +76,8 @@ from negotiate.core.guard import GuardReport
 from negotiate.core.kkt import Certificate, ConstraintRef
 from negotiate.core.nlp import LocalResult
 from negotiate.core.status import CoordinationStatus, Status
-from negotiate.fleet.spec import AgentSpec, CapacityResource, CoordinatorSettings, ExclusiveResource, FleetSpec
+from negotiate.fleet.spec import AgentSpec, CoordinatorSettings, FleetSpec
+from negotiate.resources import KINDS
 from negotiate.resources.coupling import FeasibleSet, Layout
 
 __all__ = [
@@ -142,13 +143,19 @@ class RunState:
 RECORDS: dict[str, type] = {
     cls.__name__: cls
     for cls in (
-        RunState, TrialRecord, FleetSpec, ExclusiveResource, CapacityResource, CoordinatorSettings, AgentSpec,
+        RunState, TrialRecord, FleetSpec, *KINDS.values(), CoordinatorSettings, AgentSpec,
         VehicleParams, ZoneParams, MachineParams, StationParams, CapacityParams, Layout, FeasibleSet,
         EngineState, CoordinationResult, RoundRecord, Evaluation, AgentReport, LocalResult, Certificate,
         ConstraintRef, GuardReport,
     )
 }  # fmt: skip
-"""The record types a checkpoint may hold, by name: nothing else is ever built when one is read."""
+"""The record types a checkpoint may hold, by name: nothing else is ever built when one is read (besides the
+records of resource kinds registered later, :func:`_record_type`)."""
+
+
+def _record_type(name: str) -> type | None:
+    """The record type called ``name``: one of :data:`RECORDS` or of a registered resource kind."""
+    return RECORDS.get(name) or next((k for k in KINDS.values() if k.__name__ == name), None)
 
 _SKIPPED_FIELDS = frozenset({"_problem"})
 """Fields not saved: a result's CasADi problem is re-attached from the agents built on resume."""
@@ -202,7 +209,7 @@ class _Encoder:
             return {"$d": [[self.encode(k, where), self.encode(x, f"{where}[{k!r}]")] for k, x in v.items()]}
         if t is np.ndarray:
             return self._array(v, where)
-        if dataclasses.is_dataclass(v) and RECORDS.get(t.__name__) is t:
+        if dataclasses.is_dataclass(v) and _record_type(t.__name__) is t:
             ref, k = self._shared(v)
             if ref is not None:
                 return ref
@@ -284,7 +291,7 @@ class _Decoder:
         if "$a" in node:
             return self._keep(node, self._array(node["$a"]))
         if "$c" in node:
-            cls = RECORDS.get(node["$c"]) if type(node["$c"]) is str else None
+            cls = _record_type(node["$c"]) if type(node["$c"]) is str else None
             if cls is None:
                 raise ValueError(f"unknown record type {node['$c']!r} (expected one of {', '.join(RECORDS)})")
             fields = node["f"]

@@ -288,7 +288,7 @@ def trajectory_chart(agent: str, series: Mapping[str, np.ndarray], slots: Sequen
     """An agent's trajectories over time with its slots shaded (and its capacity shares as steps).
 
     ``series`` maps unit-suffixed column names to arrays (``time_s`` first); ``slots`` are the agent's
-    schedule rows (``resource``, ``enter``, ``leave``, ``share``).
+    schedule rows (``resource``, ``enter``, ``leave``, ``share`` and ``chart``: ``"slots"`` or ``"shares"``).
     """
     t = np.asarray(series["time_s"], dtype=float)
     cols = [c for c in series if c != "time_s"]
@@ -300,8 +300,8 @@ def trajectory_chart(agent: str, series: Mapping[str, np.ndarray], slots: Sequen
     if chosen is None:
         chosen = [(c, _unit_of(c)[0]) for c in cols[:2]]
     fig, axes = _figure(9.0, 2.7, ncols=len(chosen))
-    exclusive = [s for s in slots if not np.isfinite(s.share)]
-    shares = [s for s in slots if np.isfinite(s.share)]
+    exclusive = [s for s in slots if s.chart == "slots"]
+    shares = [s for s in slots if s.chart == "shares"]
     resources = list(dict.fromkeys(s.resource for s in exclusive))
     for j, (col, title) in enumerate(chosen):
         ax = axes[0, j]

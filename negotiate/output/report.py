@@ -2,10 +2,11 @@
 
 :func:`write_report` reads a folder written by ``negotiate run`` (through :func:`negotiate.output.results.load_run`)
 and writes ``report.html`` next to the files: the run summary, a slot chart per exclusive resource and a
-share chart per capacity resource, the table of agents (free-optimum cost, coordinated cost, certificate),
-the price tables (value gradients with units), the convergence history and each agent's trajectories with
-its slots marked. Images are PNG embedded as base64 data URIs and the style sheet is inline, so the file
-opens anywhere without fetching anything.
+share chart per capacity resource (each resource gets the chart its kind declares, headed by its kind's
+words), the table of agents (free-optimum cost, coordinated cost, certificate), the price tables (value
+gradients with units), the convergence history and each agent's trajectories with its slots marked. Images
+are PNG embedded as base64 data URIs and the style sheet is inline, so the file opens anywhere
+without fetching anything.
 """
 
 from __future__ import annotations
@@ -21,6 +22,7 @@ import numpy as np
 from negotiate.core.files import write_atomic
 from negotiate.output import plots
 from negotiate.output.results import PriceRow, RunFiles, RunFolderError, load_run
+from negotiate.resources import KINDS
 
 __all__ = ["CAUTION", "MAX_TRAJECTORIES", "render_report", "write_report"]
 
@@ -208,12 +210,12 @@ def _schedule(f: RunFiles) -> str:
             pair = free.setdefault(p.resource, {}).setdefault(p.agent, [math.nan, math.nan])
             pair[0 if p.kind == "enter" else 1] = p.free_optimum
     for r in f.exclusive():
-        slots = [s for s in f.schedule if s.resource == r.resource and not math.isfinite(s.share)]
+        slots = [s for s in f.schedule if s.resource == r.resource and s.chart == "slots"]
         if not slots:
             continue
         fr = {a: (v[0], v[1]) for a, v in free.get(r.resource, {}).items() if all(map(math.isfinite, v))}
         gap = r.gap_s if math.isfinite(r.gap_s) else 0.0
-        out.append(f"<h3>{_e(r.resource)} (exclusive, gap {r.gap_s:g} s, {len(slots)} users)</h3>")
+        out.append(f"<h3>{_e(r.resource)} ({_e(KINDS[r.kind].report_title([r]))}, {len(slots)} users)</h3>")
         slots.sort(key=lambda s: s.enter)
         # a long queue in one chart would shrink every slot and gap to a dot: a chart per group of users
         groups = [slots[i : i + SLOT_ROWS] for i in range(0, len(slots), SLOT_ROWS)]
@@ -226,10 +228,10 @@ def _schedule(f: RunFiles) -> str:
                        "every slot is in the price table and in prices.csv.</p>")  # fmt: skip
     for name in f.capacity_names():
         blocks = [b for b in f.resources if b.resource == name]
-        shares = [s for s in f.schedule if s.resource == name and math.isfinite(s.share)]
+        shares = [s for s in f.schedule if s.resource == name and s.chart == "shares"]
         unit = blocks[0].unit
         fig = plots.capacity_chart(name, unit, blocks, shares)
-        out.append(f"<h3>{_e(name)} (capacity, {len(blocks)} blocks)</h3>")
+        out.append(f"<h3>{_e(name)} ({_e(KINDS[blocks[0].kind].report_title(blocks))})</h3>")
         out.append(_img(plots.png(fig), f"shares of {name}"))
         if any(math.isfinite(s.draw) for s in shares):
             out.append(_draw_note())
@@ -340,9 +342,9 @@ def _convergence(f: RunFiles) -> str:
 
 def _trajectories(f: RunFiles) -> str:
     marks = []
-    if any(not math.isfinite(s.share) for s in f.schedule):
+    if any(s.chart == "slots" for s in f.schedule):
         marks.append("shaded bands are its slots")
-    if any(math.isfinite(s.share) for s in f.schedule):
+    if any(s.chart == "shares" for s in f.schedule):
         marks.append("a wide light red line its allocated capacity share")
     text = "Each agent's planned trajectory at the coordinated parameters; " + ", ".join(marks) + "."
     out = ['<h2 id="trajectories">Trajectories</h2>', f'<p class="note">{text}</p>']

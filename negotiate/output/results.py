@@ -32,7 +32,7 @@ from negotiate.coordination.orders import OrderTrial
 from negotiate.core.agent import AgentModel
 from negotiate.core.files import write_atomic
 from negotiate.fleet.spec import FleetSpec
-from negotiate.resources import CapacityResource, ExclusiveResource
+from negotiate.resources import KINDS, Resource
 
 __all__ = [
     "AGENTS_COLUMNS",
@@ -152,17 +152,24 @@ def write_agents(path: str | Path, run: RunResult) -> Path:
     return _write_csv(Path(path), AGENTS_COLUMNS, rows)
 
 
-def write_resources(path: str | Path, resources: Sequence[ExclusiveResource | CapacityResource]) -> Path:
-    """``resources.csv``: one row per exclusive resource (its gap) and per block of a capacity resource."""
+def write_resources(path: str | Path, resources: Sequence[Resource]) -> Path:
+    """``resources.csv``: each resource's rows as its kind declares them (an exclusive resource: one row with
+    its gap; a capacity resource: one row per block)."""
     rows = []
     for r in resources:
-        if isinstance(r, CapacityResource):
-            for k, lim in enumerate(r.limits):
-                t0 = r.start + k * r.block_length
-                rows.append([r.name, "capacity", "", str(k), _num(t0), _num(t0 + r.block_length), _num(lim), r.unit])
-        else:
-            rows.append([r.name, "exclusive", _num(r.gap), "", "", "", "", "s"])
+        for cells in r.table_rows():
+            rows.append([r.name, r.kind, *(_cell(c, cells.get(c)) for c in RESOURCES_COLUMNS[2:])])
     return _write_csv(Path(path), RESOURCES_COLUMNS, rows)
+
+
+def _cell(column: str, v: Any) -> str:
+    """A cell of ``resources.csv``: empty for nothing, a block index and text as they are, numbers by
+    :func:`_num`."""
+    if v is None:
+        return ""
+    if column == "block" or isinstance(v, str):
+        return str(v)
+    return _num(v)
 
 
 def write_trajectories(out_dir: str | Path, run: RunResult) -> list[Path]:
@@ -224,6 +231,16 @@ class ScheduleRow:
     d_share: float
     verdict: str
     draw: float = math.nan
+    kind: str = ""
+    """Kind of the resource (``"exclusive"``, ``"capacity"``, ... :data:`negotiate.resources.KINDS`); read
+    back from ``resources.csv``, empty for a resource that is not listed there."""
+
+    @property
+    def chart(self) -> str:
+        """How the report draws the row: ``"slots"`` (an entry and an exit), ``"shares"`` (an amount per
+        block) or ``""`` (a kind that is not registered)."""
+        k = KINDS.get(self.kind)
+        return k.chart if k is not None else ""
 
 
 @dataclass(frozen=True)
@@ -326,7 +343,8 @@ class AgentRow:
 
 @dataclass(frozen=True)
 class ResourceRow:
-    """One row of ``resources.csv``: an exclusive resource (``gap_s``) or one block of a capacity one."""
+    """One row of ``resources.csv``: an exclusive resource (``gap_s``), one block of a capacity one, or
+    what another kind declares (:meth:`negotiate.resources.base.ResourceKind.table_rows`)."""
 
     resource: str
     kind: str
@@ -351,11 +369,17 @@ class RunFiles:
     resources: tuple[ResourceRow, ...]
     trajectories: Mapping[str, Mapping[str, np.ndarray]] = field(default_factory=dict)
 
+    def charted(self, chart: str) -> list[ResourceRow]:
+        """Rows of the resources whose kind is drawn as ``chart`` (``"slots"`` or ``"shares"``)."""
+        return [r for r in self.resources if KINDS[r.kind].chart == chart]
+
     def exclusive(self) -> list[ResourceRow]:
-        return [r for r in self.resources if r.kind == "exclusive"]
+        """Rows of the resources drawn as slots (exclusive ones and the like; one row each)."""
+        return self.charted("slots")
 
     def capacity_names(self) -> list[str]:
-        return list(dict.fromkeys(r.resource for r in self.resources if r.kind == "capacity"))
+        """Names of the resources drawn as shares per block (capacity ones and the like)."""
+        return list(dict.fromkeys(r.resource for r in self.charted("shares")))
 
 
 class RunFolderError(ValueError):
@@ -588,10 +612,13 @@ def load_run(folder: str | Path) -> RunFiles:
             f"(write it with: negotiate run FLEET --out {d})"
         )
     summary = f.summary()
+    resources = tuple(_resource(r) for r in f.rows("resources.csv", RESOURCES_COLUMNS))
+    kind_of = {r.resource: r.kind for r in resources}
     schedule = tuple(
         ScheduleRow(r.text("agent"), r.text("resource"), r.num("enter", True), r.num("leave", True), r.num("share"),
                     r.num("value"), r.num("free_value"), r.num("d_enter"), r.num("d_leave"), r.num("d_share"),
-                    r.text("verdict"), r.num("draw") if "draw" in r.cells else float("nan"))
+                    r.text("verdict"), r.num("draw") if "draw" in r.cells else float("nan"),
+                    kind_of.get(r.text("resource"), ""))
         for r in f.rows("schedule.csv", _SCHEDULE_NEEDED)
     )  # fmt: skip
     history = tuple(
@@ -611,7 +638,6 @@ def load_run(folder: str | Path) -> RunFiles:
                  r.text("reason"), r.text("trajectory_file"))
         for r in f.rows("agents.csv", AGENTS_COLUMNS)
     )  # fmt: skip
-    resources = tuple(_resource(r) for r in f.rows("resources.csv", RESOURCES_COLUMNS))
     trajectories: dict[str, dict[str, np.ndarray]] = {}
     for a in agents:
         if a.trajectory_file:
@@ -622,11 +648,12 @@ def load_run(folder: str | Path) -> RunFiles:
 
 def _resource(r: _Row) -> ResourceRow:
     kind = r.text("kind")
-    if kind == "capacity":
+    if kind not in KINDS:
+        names = [f"'{k}'" for k in KINDS]
+        raise r._bad("kind", ", ".join(names[:-1]) + " or " + names[-1])
+    if KINDS[kind].chart == "shares":  # a row per block, with its times and limit
         block, finite = r.whole("block"), True
-    elif kind == "exclusive":
-        block, finite = r.whole("block", True), False
     else:
-        raise r._bad("kind", "'exclusive' or 'capacity'")
+        block, finite = r.whole("block", True), False
     return ResourceRow(r.text("resource"), kind, r.num("gap_s"), block, r.num("start_s", finite),
                        r.num("end_s", finite), r.num("limit", finite), r.text("unit"))  # fmt: skip

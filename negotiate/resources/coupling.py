@@ -10,9 +10,10 @@ made of
 
 * every agent's reachable set (its box and its own rows ``A_i p_i <= b_i``, which include the sequence of
   its slots along its route), plus ``enter <= leave`` for each of its slots;
-* every exclusive resource, for its order ``a_1, a_2, ...``: ``leave(a_k) + gap <= enter(a_{k+1})``;
-* every capacity resource, in each time block ``j``: ``sum_i share_ij <= limit_j`` (shares are >= 0
-  through the agents' boxes).
+* every resource's own rows (:meth:`~negotiate.resources.base.ResourceKind.coupling_rows`), e.g. for an
+  exclusive resource and its order ``a_1, a_2, ...``: ``leave(a_k) + gap <= enter(a_{k+1})``; for a capacity
+  resource, in each time block ``j``: ``sum_i share_ij <= limit_j`` (shares are >= 0 through the agents'
+  boxes).
 
 Orders are checked for deadlocks first: the precedence graph (networkx) has a node per (agent, resource)
 slot, an edge from each slot to the agent's next slot along its route, and an edge from each user of an
@@ -34,7 +35,8 @@ from scipy.optimize import linprog
 
 from negotiate.core.agent import AgentModel
 from negotiate.core.qp import solve_qp
-from negotiate.resources import CapacityResource, ExclusiveResource, Resource
+from negotiate.resources import Resource
+from negotiate.resources.base import param_index
 
 __all__ = [
     "DeadlockError",
@@ -93,11 +95,7 @@ class Layout:
         return np.concatenate([np.asarray(q, dtype=float).ravel() for q in parts]) if parts else np.zeros(0)
 
 
-def _slot_index(agent: AgentModel, resource: str, kind: str) -> int:
-    for k, q in enumerate(agent.params):
-        if q.resource == resource and q.kind == kind:
-            return k
-    raise ValueError(f"agent {agent.name!r} has no '{kind}' parameter for resource {resource!r}")
+_slot_index = param_index
 
 
 def _slots(agent: AgentModel) -> list[str]:
@@ -122,14 +120,9 @@ def _inequality(row: np.ndarray, rhs: float, names: Sequence[str]) -> str:
 
 
 def fcfs_orders(agents: Sequence[AgentModel], resources: Sequence[Resource]) -> dict[str, list[str]]:
-    """First-come-first-served orders: users of each exclusive resource sorted by free-optimum entry time."""
-    orders: dict[str, list[str]] = {}
-    for r in resources:
-        if not isinstance(r, ExclusiveResource):
-            continue
-        users = [(a.free_optimum[_slot_index(a, r.name, "enter")], a.name) for a in agents if r.name in _slots(a)]
-        orders[r.name] = [name for _t, name in sorted(users)]
-    return orders
+    """First-come-first-served orders: users of each resource that needs an order (an exclusive one), sorted
+    by free-optimum entry time."""
+    return {r.name: r.first_come_order(agents) for r in resources if r.needs_order}
 
 
 def precedence_graph(agents: Sequence[AgentModel], orders: Mapping[str, Sequence[str]]) -> nx.DiGraph:
@@ -296,7 +289,6 @@ def build_feasible_set(
         If an order names an agent that does not use the resource, or misses one that does.
     """
     layout = Layout.of(agents)
-    by_name = {a.name: i for i, a in enumerate(agents)}
     rows: list[np.ndarray] = []
     rhs: list[float] = []
     labels: list[str] = []
@@ -323,30 +315,19 @@ def build_feasible_set(
             labels.append(f"{a.name}: enter <= leave on {res}")
 
     for res in resources:
-        if isinstance(res, ExclusiveResource):
-            users = list(orders.get(res.name, []))
-            expected = sorted(a.name for a in agents if res.name in _slots(a))
-            if sorted(users) != expected:
-                raise ValueError(f"order for resource {res.name!r} must list exactly its users {expected}, got {users}")
-            for u0, u1 in zip(users, users[1:], strict=False):
-                i0, i1 = by_name[u0], by_name[u1]
-                r = row()
-                r[layout.offsets[i0] + _slot_index(agents[i0], res.name, "leave")] = 1.0
-                r[layout.offsets[i1] + _slot_index(agents[i1], res.name, "enter")] = -1.0
-                rows.append(r)
-                rhs.append(-float(res.gap))
-                labels.append(f"{res.name}: {u0} leaves + gap <= {u1} enters")
-        elif isinstance(res, CapacityResource):
-            for j, limit in enumerate(res.limits):
-                r = row()
-                for i, a in enumerate(agents):
-                    for k, q in enumerate(a.params):
-                        if q.resource == res.name and q.kind == "share" and q.block == j:
-                            r[layout.offsets[i] + k] = 1.0
-                if r.any():
-                    rows.append(r)
-                    rhs.append(float(limit))
-                    labels.append(f"{res.name}: shares in block {j} <= limit")
+        order: list[str] = []
+        if res.needs_order:
+            order = list(orders.get(res.name, []))
+            expected = sorted(res.users(agents))
+            if sorted(order) != expected:
+                raise ValueError(f"order for resource {res.name!r} must list exactly its users {expected}, got {order}")
+        for c in res.coupling_rows(agents, order):
+            r = row()
+            for (i, k), v in c.coef.items():
+                r[layout.offsets[i] + k] = v
+            rows.append(r)
+            rhs.append(float(c.rhs))
+            labels.append(c.label)
     check_deadlock(agents, orders)
     A = np.vstack(rows) if rows else np.zeros((0, layout.n))
     return FeasibleSet(

@@ -27,7 +27,7 @@ import numpy as np
 from negotiate.coordination.methods import method_names
 from negotiate.errors import FleetError, Problem
 from negotiate.fleet.parse import BuiltAgent, _load, _parse, build_report
-from negotiate.fleet.spec import CapacityResource, ExclusiveResource, FleetSpec
+from negotiate.fleet.spec import CapacityResource, FleetSpec
 
 __all__ = [
     "LIMIT_WARN_RATIO",
@@ -102,7 +102,8 @@ class CheckResult:
     agents, resources : tuple
         :class:`AgentRow` and :class:`ResourceRow` per agent and resource, in file order.
     graph : networkx.Graph
-        The conflict graph (node attribute ``kind``: ``"agent"``, ``"exclusive"`` or ``"capacity"``).
+        The conflict graph (node attribute ``kind``: ``"agent"`` or the resource's kind, ``"exclusive"``,
+        ``"capacity"`` ...).
     groups : tuple of tuple of str
         Connected components of the graph (agents and resources), in file order.
     schedule : bool or None
@@ -274,7 +275,7 @@ def conflict_graph(spec: FleetSpec, models: Mapping[str, Any] | None = None) -> 
     models = models or {}
     g = nx.Graph()
     for r in spec.resources:
-        g.add_node(r.name, kind="capacity" if isinstance(r, CapacityResource) else "exclusive")
+        g.add_node(r.name, kind=r.kind)
     for agent in spec.agents:
         g.add_node(agent.name, kind="agent", model=agent.model)
         uses: dict[str, list[str]] = {}
@@ -332,21 +333,22 @@ def _resource_rows(
         if len(known) < len(users):
             rows.append(ResourceRow(r.name, _kind(r), users, None, "unknown (not every user was built)"))
             continue
-        if isinstance(r, ExclusiveResource):
+        if r.needs_order:  # users take turns: do their free-optimum slots overlap?
             slots = [(u, _slot(models[u], r.name)) for u in users]
             slots = [(u, s) for u, s in slots if s is not None]
+            gap = float(getattr(r, "gap", 0.0))
             pairs = total = 0
             for i in range(len(slots)):
                 for j in range(i + 1, len(slots)):
                     (a0, a1), (b0, b1) = slots[i][1], slots[j][1]
                     total += 1
-                    if a1 + r.gap > b0 and b1 + r.gap > a0:
+                    if a1 + gap > b0 and b1 + gap > a0:
                         pairs += 1
             detail = (
                 f"{pairs} of {total} pairs of free-optimum slots overlap (gap included)" if total else "a single user"
             )
-            rows.append(ResourceRow(r.name, "exclusive", users, pairs > 0, detail))
-        else:
+            rows.append(ResourceRow(r.name, r.kind, users, pairs > 0, detail))
+        elif isinstance(r, CapacityResource):
             demand = np.zeros(r.blocks)
             floor = np.zeros(r.blocks)
             for u in users:
@@ -365,7 +367,7 @@ def _resource_rows(
                 )
             else:
                 detail = "free-optimum shares fit within every block's limit"
-            rows.append(ResourceRow(r.name, "capacity", users, bool(over.size), detail))
+            rows.append(ResourceRow(r.name, r.kind, users, bool(over.size), detail))
             low = _low_limits(spec, r, demand)
             if low is not None:
                 warnings.append(low)
@@ -380,6 +382,8 @@ def _resource_rows(
                         f"blocks {', '.join(map(str, short))} short",
                     )
                 )
+        else:
+            rows.append(ResourceRow(r.name, r.kind, users, None, f"no contention check for a {r.kind} resource"))
     return rows, problems, warnings
 
 
@@ -417,7 +421,7 @@ def _share(fraction: float) -> str:
 
 
 def _kind(r: Any) -> str:
-    return "capacity" if isinstance(r, CapacityResource) else "exclusive"
+    return str(r.kind)
 
 
 # --------------------------------------------------------------------------------------------------------
@@ -492,10 +496,7 @@ def _text(res: CheckResult) -> str:
     out.append("resources")
     rows = []
     for r, row in zip(spec.resources, res.resources, strict=True):
-        if isinstance(r, ExclusiveResource):
-            what = f"exclusive, gap {_num(r.gap)} s"
-        else:
-            what = f"capacity, {r.blocks} blocks of {_num(r.block_length)} s from {_num(r.start)} s, limits in {r.unit}"
+        what = r.describe(_num)
         contended = {True: "yes", False: "no", None: "unknown"}[row.contended]
         rows.append([r.name, what, str(len(row.users)), contended, row.detail])
     out.extend(_table(["resource", "kind", "users", "contended", "detail"], rows, [False, False, True, False, False]))
