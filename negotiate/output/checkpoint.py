@@ -67,7 +67,7 @@ from typing import Any
 
 import numpy as np
 
-from agents.params import CapacityParams, MachineParams, StationParams, VehicleParams, ZoneParams
+from agents.families import family_records
 from negotiate.coordination.engine import CoordinationResult, EngineState, RoundRecord
 from negotiate.coordination.methods import AgentReport, Evaluation, Method
 from negotiate.core.agent import AgentModel
@@ -143,12 +143,20 @@ RECORDS: dict[str, type] = {
     cls.__name__: cls
     for cls in (
         RunState, TrialRecord, FleetSpec, ExclusiveResource, CapacityResource, CoordinatorSettings, AgentSpec,
-        VehicleParams, ZoneParams, MachineParams, StationParams, CapacityParams, Layout, FeasibleSet,
-        EngineState, CoordinationResult, RoundRecord, Evaluation, AgentReport, LocalResult, Certificate,
-        ConstraintRef, GuardReport,
+        Layout, FeasibleSet, EngineState, CoordinationResult, RoundRecord, Evaluation, AgentReport, LocalResult,
+        Certificate, ConstraintRef, GuardReport,
     )
 }  # fmt: skip
-"""The record types a checkpoint may hold, by name: nothing else is ever built when one is read."""
+"""The record types a checkpoint may hold, by name, besides the parameter records of the registered model
+families (:func:`agents.families.family_records`): nothing else is ever built when one is read."""
+
+
+def _record_type(name: str) -> type | None:
+    """The record type called ``name`` that a checkpoint may hold (None if there is none)."""
+    cls = RECORDS.get(name)
+    if cls is None:
+        cls = next((c for c in family_records() if c.__name__ == name), None)
+    return cls
 
 _SKIPPED_FIELDS = frozenset({"_problem"})
 """Fields not saved: a result's CasADi problem is re-attached from the agents built on resume."""
@@ -202,7 +210,7 @@ class _Encoder:
             return {"$d": [[self.encode(k, where), self.encode(x, f"{where}[{k!r}]")] for k, x in v.items()]}
         if t is np.ndarray:
             return self._array(v, where)
-        if dataclasses.is_dataclass(v) and RECORDS.get(t.__name__) is t:
+        if dataclasses.is_dataclass(v) and _record_type(t.__name__) is t:
             ref, k = self._shared(v)
             if ref is not None:
                 return ref
@@ -284,9 +292,10 @@ class _Decoder:
         if "$a" in node:
             return self._keep(node, self._array(node["$a"]))
         if "$c" in node:
-            cls = RECORDS.get(node["$c"]) if type(node["$c"]) is str else None
+            cls = _record_type(node["$c"]) if type(node["$c"]) is str else None
             if cls is None:
-                raise ValueError(f"unknown record type {node['$c']!r} (expected one of {', '.join(RECORDS)})")
+                known = [*RECORDS, *(c.__name__ for c in family_records())]
+                raise ValueError(f"unknown record type {node['$c']!r} (expected one of {', '.join(known)})")
             fields = node["f"]
             if type(fields) is not dict:
                 raise TypeError(f"fields of {node['$c']} are not a JSON object")
