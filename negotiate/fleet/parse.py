@@ -35,7 +35,7 @@ from pathlib import Path
 from typing import Any
 
 from agents.families import FAMILIES, RESOURCE_KEY, Family
-from agents.params import DURATION, MAX_BLOCKS, TIME
+from negotiate.core.ranges import DURATION, MAX_BLOCKS, TIME
 from negotiate.errors import FieldError, FleetError, Problem, describe, table_path
 from negotiate.fleet.schema import (
     _AGENT_KEYS,

@@ -21,7 +21,7 @@ from dataclasses import MISSING, dataclass, fields
 from typing import Any
 
 from agents.families import FAMILIES, RESOURCE_KEY, Family, Nested
-from agents.params import Range
+from negotiate.core.ranges import Range
 from negotiate.errors import Problem, describe
 from negotiate.fleet.spec import (
     MAX_ROUNDS,
