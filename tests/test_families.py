@@ -21,7 +21,8 @@ from negotiate.errors import FleetError, check_field
 from negotiate.fleet.build import build_agents
 from negotiate.fleet.docs import schema_markdown
 from negotiate.fleet.parse import parse_fleet
-from negotiate.output.checkpoint import _record_type
+from negotiate.output.checkpoint import _record_type, read_checkpoint
+from negotiate.run import run_fleet
 
 POWER = Range(0.0, 1e6)
 
@@ -94,6 +95,14 @@ def heater_fleet() -> dict:
             "h2": {"model": "heater", "demand": [5.0, 5.0], "curvature": 0.5},
         },
     }
+
+
+def closed_form() -> np.ndarray:
+    """Shares of the binding 9 W block: equal marginal values (KKT by hand: s_i = t_i - lam / (2 c_i),
+    sum s_i = C, the closed form of tests/test_coordinate.py)."""
+    t, c = np.array([4.0, 3.0, 5.0]), np.array([1.0, 2.0, 0.5])
+    lam = 2 * (t.sum() - 9.0) / np.sum(1 / c)
+    return t - lam / (2 * c)
 
 
 class TestRegistry:
@@ -182,16 +191,22 @@ class TestNewFamily:
         assert HeaterParams in family_records() and _record_type("HeaterParams") is HeaterParams
 
     def test_coordinated_shares_match_closed_form(self, heater):
-        """The binding block splits 9 W by equal marginal values (KKT by hand: s_i = t_i - lam / (2 c_i),
-        sum s_i = C, the closed form of tests/test_coordinate.py); the slack block gives each its demand."""
+        """The binding block splits 9 W by equal marginal values (:func:`closed_form`); the slack block gives
+        each heater at least its demand."""
         spec = parse_fleet(heater_fleet())
         built = build_agents(spec)
         assert [a.model for a in built] == ["heater"] * 3
         res = coordinate(built, spec.resources, spec.coordinator)
         assert res.success, res.message
-        t, c = np.array([4.0, 3.0, 5.0]), np.array([1.0, 2.0, 0.5])
-        lam = 2 * (t.sum() - 9.0) / np.sum(1 / c)
         shares = res.P.reshape(3, 2)
         # 1e-4: the stopping tolerance 1e-9 on the relative predicted decrease bounds the distance to ~sqrt(1e-9)
-        np.testing.assert_allclose(shares[:, 0], t - lam / (2 * c), atol=1e-4)
-        assert np.all(shares[:, 1] >= t - 1e-4) and shares[:, 1].sum() <= 20.0 + 1e-9
+        np.testing.assert_allclose(shares[:, 0], closed_form(), atol=1e-4)
+        assert np.all(shares[:, 1] >= np.array([4.0, 3.0, 5.0]) - 1e-4) and shares[:, 1].sum() <= 20.0 + 1e-9
+
+    def test_run_keeps_a_checkpoint(self, heater, tmp_path):
+        """run_fleet builds the family's agents itself and saves its records in the run's checkpoint."""
+        spec = parse_fleet(heater_fleet())
+        run = run_fleet(spec, checkpoint_dir=tmp_path)
+        assert run.coordination.success, run.coordination.message
+        np.testing.assert_allclose(run.coordination.P.reshape(3, 2)[:, 0], closed_form(), atol=1e-4)  # as above
+        assert read_checkpoint(tmp_path).spec == spec
