@@ -14,10 +14,11 @@ import pytest
 
 import agents
 from agents.families import FAMILIES, Family, family_records, register_family
+from agents.params import MachineParams, StationParams, VehicleParams, ZoneParams
 from negotiate import AgentModel, ParametricNLP, ReachableSet, SlotParam
 from negotiate.coordination.engine import coordinate
 from negotiate.core.ranges import MAX_BLOCKS, Range
-from negotiate.errors import FleetError, check_field
+from negotiate.errors import FieldError, FleetError, check_field
 from negotiate.fleet.build import build_agents
 from negotiate.fleet.docs import schema_markdown
 from negotiate.fleet.parse import parse_fleet
@@ -129,6 +130,25 @@ class TestRegistry:
         """A family naming a key its record does not have is refused when it is declared."""
         with pytest.raises(ValueError, match=r"family 'x': \['nope'\] are not fields of HeaterParams"):
             Family("x", HeaterParams, build_heater, required=frozenset({"nope"}))
+
+    @pytest.mark.parametrize(
+        ("make", "text"),
+        [
+            (lambda: VehicleParams(zones=(ZoneParams("a", 100.0, 200.0), ZoneParams("a", 300.0, 400.0))),
+             "vehicle: 'zones' must be zones of distinct resources, got resources ['a', 'a']"),
+            (lambda: VehicleParams(zones=({"resource": "a"},)),
+             "vehicle: 'zones' must be a list of ZoneParams, got a dict in it"),
+            (lambda: MachineParams(stations=(StationParams("a"), StationParams("a"))),
+             "machine: 'stations' must be stations of distinct resources, got resources ['a', 'a']"),
+            (lambda: MachineParams(stations=("oven",)),
+             "machine: 'stations' must be a list of StationParams, got a str in it"),
+        ],
+    )  # fmt: skip
+    def test_nested_lists_refused_with_their_key(self, make, text):
+        """A record refuses a bad nested list with a FieldError on the list's key (its exact message)."""
+        with pytest.raises(FieldError) as info:
+            make()
+        assert str(info.value) == text and info.value.key == text.split("'")[1]
 
     def test_reading_a_fleet_loads_no_builder(self):
         """Parsing a fleet of every built-in family imports neither CasADi nor a builder module."""
