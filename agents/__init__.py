@@ -16,7 +16,11 @@ Parameter records (frozen dataclasses, no CasADi, SI units in the field metadata
 :mod:`agents.params`: :class:`VehicleParams`, :class:`ZoneParams`, :class:`MachineParams`,
 :class:`StationParams`, :class:`CapacityParams`.
 
-``MODELS`` maps a family name to its builder, ``PARAMETERS`` to its parameter record; every builder is
+Each family describes itself in :mod:`agents.families` (a :class:`~agents.families.Family` record: its
+parameter record, builder, required and inherited keys, nested lists, units of advice), registered in
+``FAMILIES``; the fleet reader, its defaults, docs and messages follow from these records, so a new family
+is one module and one :func:`~agents.families.register_family` call. ``MODELS`` maps each registered
+family's name to its builder (importing it), ``PARAMETERS`` to its parameter record; every builder is
 called as ``builder(name, prm=None, weight=1.0, solver_options=None)`` with ``prm`` an instance of the
 family's record (its invented demo defaults when omitted).
 
@@ -29,25 +33,29 @@ from __future__ import annotations
 from importlib import import_module
 from typing import Any
 
+from agents.families import FAMILIES, Family, Nested, register_family
 from agents.params import CapacityParams, MachineParams, StationParams, VehicleParams, ZoneParams
 
 __all__ = [
+    "FAMILIES",
     "MODELS",
     "PARAMETERS",
     "CapacityParams",
+    "Family",
     "MachineParams",
+    "Nested",
     "StationParams",
     "VehicleParams",
     "ZoneParams",
     "build_capacity",
     "build_machine",
     "build_vehicle",
+    "register_family",
 ]
 
-PARAMETERS = {"vehicle": VehicleParams, "machine": MachineParams, "capacity": CapacityParams}
-
-# The builders import CasADi; they are loaded on first use so that the parameter records (and the fleet
-# parser that reads them) stay free of it.
+# The builders import CasADi; they are loaded on first use so that the parameter records and the family
+# registry (and the fleet parser that reads them) stay free of it. MODELS and PARAMETERS are read from the
+# registry when asked for, so that they include families registered later.
 _BUILDERS = {"build_vehicle": "agents.vehicle", "build_machine": "agents.machine", "build_capacity": "agents.capacity"}
 
 
@@ -55,6 +63,7 @@ def __getattr__(name: str) -> Any:
     if name in _BUILDERS:
         return getattr(import_module(_BUILDERS[name]), name)
     if name == "MODELS":
-        return {"vehicle": __getattr__("build_vehicle"), "machine": __getattr__("build_machine"),
-                "capacity": __getattr__("build_capacity")}  # fmt: skip
+        return {n: fam.build() for n, fam in FAMILIES.items()}
+    if name == "PARAMETERS":
+        return {n: fam.params for n, fam in FAMILIES.items()}
     raise AttributeError(f"module 'agents' has no attribute {name!r}")

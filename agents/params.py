@@ -14,7 +14,8 @@ Every number has a documented range (field metadata ``"range"``, a :class:`Range
 ``"count"``): physical quantities are positive or non-negative and bounded far beyond any real vehicle,
 machine or battery, times are ``>= 0`` s, counts have maxima that keep building an agent within seconds to
 minutes on a 2-core machine. Invalid numbers (a negative mass, a zone outside the route, ...) raise
-:class:`ValueError` naming the field, the expected range and the value received.
+:class:`negotiate.errors.FieldError` (a :class:`ValueError`) carrying the record, the field, what was
+expected and what was received.
 """
 
 from __future__ import annotations
@@ -180,7 +181,7 @@ class VehicleParams:
         previous_exit = 0.0
         for zone in self.zones:
             if not isinstance(zone, ZoneParams):
-                raise ValueError(f"vehicle: 'zones' must hold ZoneParams, got {type(zone).__name__}")
+                raise FieldError(owner, "zones", "a list of ZoneParams", f"a {type(zone).__name__} in it")
             _check(f"zone {zone.resource!r}", "entry", zone.entry, zone.entry >= previous_exit,
                    f">= the previous zone's exit ({previous_exit} m); zones must be in route order")
             _check(f"zone {zone.resource!r}", "exit", zone.exit, zone.exit + self.length <= self.route_length,
@@ -191,7 +192,7 @@ class VehicleParams:
             previous_exit = zone.exit
         names = [z.resource for z in self.zones]
         if len(set(names)) != len(names):
-            raise ValueError(f"vehicle: zone resources must be distinct, got {names}")
+            raise FieldError(owner, "zones", "zones of distinct resources", f"resources {names}")
 
     @property
     def total_mass(self) -> float:
@@ -255,10 +256,10 @@ class MachineParams:
                f">= peak_start = {self.peak_start}")
         for st in self.stations:
             if not isinstance(st, StationParams):
-                raise ValueError(f"machine: 'stations' must hold StationParams, got {type(st).__name__}")
+                raise FieldError(owner, "stations", "a list of StationParams", f"a {type(st).__name__} in it")
         names = [s.resource for s in self.stations]
         if len(set(names)) != len(names):
-            raise ValueError(f"machine: station resources must be distinct, got {names}")
+            raise FieldError(owner, "stations", "stations of distinct resources", f"resources {names}")
         earliest = self.release + self.work / self.max_rate + sum(s.transfer + s.duration for s in self.stations)
         _check(owner, "horizon", self.horizon, self.horizon > earliest,
                f"> earliest possible completion {earliest} s")

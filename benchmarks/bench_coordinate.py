@@ -34,7 +34,8 @@ from negotiate.coordination.centralized import solve_centralized
 from negotiate.coordination.engine import coordinate
 from negotiate.coordination.methods import Evaluation, Method, Proposal, register_method
 from negotiate.core.agent import AgentModel
-from negotiate.fleet.parse import build_agents, load_fleet
+from negotiate.fleet.build import build_agents
+from negotiate.fleet.parse import load_fleet
 from negotiate.fleet.spec import CoordinatorSettings
 from negotiate.resources.coupling import build_feasible_set, fcfs_orders
 

@@ -45,7 +45,8 @@ def one(fleet: str, config: str, cap: float) -> dict:
     from negotiate.coordination.centralized import solve_centralized
     from negotiate.coordination.engine import coordinate
     from negotiate.execution.executor import DaskExecutor, ProcessExecutor
-    from negotiate.fleet.parse import build_agents, load_fleet
+    from negotiate.fleet.build import build_agents
+    from negotiate.fleet.parse import load_fleet
     from negotiate.resources.coupling import build_feasible_set, fcfs_orders
 
     spec = load_fleet(fleet)

@@ -73,7 +73,7 @@ _WHERE = {
     "SlotParam": "negotiate.core.agent",
     "Status": "negotiate.core.status",
     "Tolerances": "negotiate.core.kkt",
-    "build_agents": "negotiate.fleet.parse",
+    "build_agents": "negotiate.fleet.build",
     "load_fleet": "negotiate.run",
     "option": "negotiate.coordination.methods",
     "register_kind": "negotiate.resources",

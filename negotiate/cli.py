@@ -198,7 +198,7 @@ def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ign
 
     from negotiate.errors import FleetError
     from negotiate.execution.executor import make_executor
-    from negotiate.fleet.parse import build_agents
+    from negotiate.fleet.build import build_agents
     from negotiate.output.checkpoint import FILENAME, CheckpointError, RunBook
     from negotiate.resources.coupling import DeadlockError
     from negotiate.run import check_method_options, resolve_method, run_fleet, write_outputs

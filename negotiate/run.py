@@ -197,7 +197,7 @@ def run_fleet(
 
         book = RunBook(checkpoint_dir, spec, settings.method, resume=resume)  # checked before building
     if agents is None:
-        from negotiate.fleet.parse import build_agents
+        from negotiate.fleet.build import build_agents
 
         agents = build_agents(spec)
         phases["build"] = time.perf_counter() - t0

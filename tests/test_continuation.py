@@ -84,7 +84,8 @@ def test_vehicle_model_continuation_matches_a_cold_solve():
     """The library's truck (invented data): a shifted slot continues and agrees with a cold IPOPT solve."""
     from pathlib import Path
 
-    from negotiate.fleet.parse import build_agents, load_fleet
+    from negotiate.fleet.build import build_agents
+    from negotiate.fleet.parse import load_fleet
 
     spec = load_fleet(Path(__file__).resolve().parent.parent / "examples" / "quarry_bridge.toml")
     agent = build_agents(spec)[0]
@@ -107,7 +108,8 @@ def test_first_round_starts_from_the_build_time_solve():
     from pathlib import Path
 
     from negotiate.coordination.engine import Oracle
-    from negotiate.fleet.parse import build_agents, load_fleet
+    from negotiate.fleet.build import build_agents
+    from negotiate.fleet.parse import load_fleet
     from negotiate.resources.coupling import build_feasible_set, fcfs_orders
 
     spec = load_fleet(Path(__file__).resolve().parent.parent / "examples" / "machining_cell.toml")

@@ -103,7 +103,8 @@ class TestAgainstCentralized:
         """With every certificate smooth, value Hessians save rounds over the gradient method (charging depot)."""
         from pathlib import Path
 
-        from negotiate.fleet.parse import build_agents, load_fleet
+        from negotiate.fleet.build import build_agents
+        from negotiate.fleet.parse import load_fleet
 
         spec = load_fleet(Path(__file__).parents[1] / "examples" / "charging_depot.toml")
         agents = build_agents(spec)

@@ -29,7 +29,8 @@ from negotiate.execution.executor import (
     cached_agents,
     make_executor,
 )
-from negotiate.fleet.parse import build_agents, load_fleet
+from negotiate.fleet.build import build_agents
+from negotiate.fleet.parse import load_fleet
 from negotiate.fleet.spec import CoordinatorSettings
 from negotiate.run import run_fleet
 

@@ -28,7 +28,8 @@ from refproblems import by_name
 from negotiate.core.nlp import ParametricNLP
 from negotiate.core.status import Status
 from negotiate.execution.executor import DaskExecutor, InProcessExecutor, ProcessExecutor
-from negotiate.fleet.parse import build_agents, load_fleet
+from negotiate.fleet.build import build_agents
+from negotiate.fleet.parse import load_fleet
 from negotiate.fleet.spec import AgentSpec
 from negotiate.run import run_fleet
 from negotiate.tools.generate import generate_fleet

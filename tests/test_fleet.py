@@ -16,7 +16,9 @@ import pytest
 
 from agents.params import CapacityParams, MachineParams, VehicleParams
 from negotiate.errors import FleetError, Problem, describe, table_path
-from negotiate.fleet.parse import BEGIN_MARK, END_MARK, build_agents, load_fleet, parse_fleet, schema_markdown
+from negotiate.fleet.build import build_agents
+from negotiate.fleet.docs import BEGIN_MARK, END_MARK, schema_markdown
+from negotiate.fleet.parse import load_fleet, parse_fleet
 from negotiate.fleet.spec import CapacityResource, ExclusiveResource, FleetSpec
 
 ROOT = Path(__file__).resolve().parent.parent

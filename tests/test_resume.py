@@ -22,7 +22,8 @@ import pytest
 from fleets import TWO_TRUCKS
 
 from negotiate.cli import main
-from negotiate.fleet.parse import build_agents, load_fleet
+from negotiate.fleet.build import build_agents
+from negotiate.fleet.parse import load_fleet
 from negotiate.output.checkpoint import FILENAME, FORMAT_VERSION, CheckpointError, fleet_digest, read_checkpoint
 from negotiate.run import run_fleet
 

@@ -67,7 +67,7 @@ from typing import Any
 
 import numpy as np
 
-from agents.params import CapacityParams, MachineParams, StationParams, VehicleParams, ZoneParams
+from agents.families import family_records
 from negotiate.coordination.engine import CoordinationResult, EngineState, RoundRecord
 from negotiate.coordination.methods import AgentReport, Evaluation, Method
 from negotiate.core.agent import AgentModel
@@ -144,18 +144,23 @@ RECORDS: dict[str, type] = {
     cls.__name__: cls
     for cls in (
         RunState, TrialRecord, FleetSpec, *KINDS.values(), CoordinatorSettings, AgentSpec,
-        VehicleParams, ZoneParams, MachineParams, StationParams, CapacityParams, Layout, FeasibleSet,
-        EngineState, CoordinationResult, RoundRecord, Evaluation, AgentReport, LocalResult, Certificate,
-        ConstraintRef, GuardReport,
+        Layout, FeasibleSet, EngineState, CoordinationResult, RoundRecord, Evaluation, AgentReport, LocalResult,
+        Certificate, ConstraintRef, GuardReport,
     )
 }  # fmt: skip
-"""The record types a checkpoint may hold, by name: nothing else is ever built when one is read (besides the
-records of resource kinds registered later, :func:`_record_type`)."""
+"""The record types a checkpoint may hold, by name, besides the records of resource kinds and the parameter
+records of model families registered later (:func:`_record_type`): nothing else is ever built when one is
+read."""
 
 
 def _record_type(name: str) -> type | None:
-    """The record type called ``name``: one of :data:`RECORDS` or of a registered resource kind."""
-    return RECORDS.get(name) or next((k for k in KINDS.values() if k.__name__ == name), None)
+    """The record type called ``name`` that a checkpoint may hold (None if there is none): one of
+    :data:`RECORDS`, of a registered resource kind, or a registered family's parameter record
+    (:func:`agents.families.family_records`)."""
+    cls = RECORDS.get(name) or next((k for k in KINDS.values() if k.__name__ == name), None)
+    if cls is None:
+        cls = next((c for c in family_records() if c.__name__ == name), None)
+    return cls
 
 _SKIPPED_FIELDS = frozenset({"_problem"})
 """Fields not saved: a result's CasADi problem is re-attached from the agents built on resume."""
@@ -293,7 +298,8 @@ class _Decoder:
         if "$c" in node:
             cls = _record_type(node["$c"]) if type(node["$c"]) is str else None
             if cls is None:
-                raise ValueError(f"unknown record type {node['$c']!r} (expected one of {', '.join(RECORDS)})")
+                known = [*RECORDS, *(c.__name__ for c in family_records())]
+                raise ValueError(f"unknown record type {node['$c']!r} (expected one of {', '.join(known)})")
             fields = node["f"]
             if type(fields) is not dict:
                 raise TypeError(f"fields of {node['$c']} are not a JSON object")

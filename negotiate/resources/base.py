@@ -27,11 +27,13 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, ClassVar, TypeVar
+from typing import TYPE_CHECKING, Any, ClassVar, TypeVar
 
 import numpy as np
 
-from negotiate.core.agent import AgentModel
+if TYPE_CHECKING:  # (the agent core imports CasADi; reading a fleet must not)
+    from negotiate.core.agent import AgentModel
+
 
 __all__ = [
     "KINDS",

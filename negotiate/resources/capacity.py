@@ -4,14 +4,16 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from negotiate.core.agent import AgentModel
 from negotiate.core.ranges import DURATION, MAX_BLOCKS, TIME, Range
 from negotiate.errors import FieldError, check_field
 from negotiate.resources.base import CouplingRow, Key, ResourceKind, SlotRow, register_kind
+
+if TYPE_CHECKING:  # (the agent core imports CasADi; reading a fleet must not)
+    from negotiate.core.agent import AgentModel
 
 __all__ = ["BLOCK_LIMIT", "CapacityResource"]
 

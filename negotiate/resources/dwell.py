@@ -10,12 +10,14 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from negotiate.core.agent import AgentModel
 from negotiate.errors import check_field
 from negotiate.resources.base import CouplingRow, Key, param_index, register_kind
 from negotiate.resources.exclusive import GAP, ExclusiveResource
+
+if TYPE_CHECKING:  # (the agent core imports CasADi; reading a fleet must not)
+    from negotiate.core.agent import AgentModel
 
 __all__ = ["DwellResource"]
 

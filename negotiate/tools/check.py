@@ -26,7 +26,8 @@ import numpy as np
 
 from negotiate.coordination.methods import method_names
 from negotiate.errors import FleetError, Problem
-from negotiate.fleet.parse import BuiltAgent, _load, _parse, build_report
+from negotiate.fleet.build import BuiltAgent, build_report
+from negotiate.fleet.parse import _load, _parse
 from negotiate.fleet.spec import CapacityResource, FleetSpec
 
 __all__ = [

@@ -109,7 +109,7 @@ def compare_methods(
         For an unknown method name.
     """
     if agents is None:
-        from negotiate.fleet.parse import build_agents
+        from negotiate.fleet.build import build_agents
 
         agents = build_agents(spec)
     agents = list(agents)

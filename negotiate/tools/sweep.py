@@ -247,7 +247,7 @@ def sweep_fleet(spec: FleetSpec, agent: str, param: str, start: float, stop: flo
     FleetError
         If the agent cannot be built.
     """
-    from negotiate.fleet.parse import build_agents
+    from negotiate.fleet.build import build_agents
 
     names = [a.name for a in spec.agents]
     if agent not in names:
