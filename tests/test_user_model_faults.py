@@ -18,7 +18,7 @@ import pytest
 from negotiate.cli import main
 from negotiate.coordination.engine import coordinate
 from negotiate.core.status import Status
-from negotiate.execution.executor import evaluate_agent
+from negotiate.execution.base import evaluate_agent
 from negotiate.fleet.parse import build_agents, parse_fleet
 
 # The tractor charges from a connection of its own, so that the heater's share is 0 W exactly.
