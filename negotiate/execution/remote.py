@@ -50,7 +50,7 @@ from negotiate.fleet.spec import AgentSpec, FleetSpec
 if TYPE_CHECKING:
     from negotiate.core.agent import AgentModel
 
-__all__ = ["REPLY_GRACE", "RemoteExecutor", "Settled", "Transport"]
+__all__ = ["REPLY_GRACE", "Record", "RemoteExecutor", "Settled", "Transport"]
 
 REPLY_GRACE = 10.0
 """Seconds added to a remote request's time budget for building the agent, certification and transport."""
