@@ -44,7 +44,8 @@ def one(fleet: str, config: str, cap: float) -> dict:
     """Measure one configuration in this process; return its figures."""
     from negotiate.coordination.centralized import solve_centralized
     from negotiate.coordination.engine import coordinate
-    from negotiate.execution.executor import DaskExecutor, ProcessExecutor
+    from negotiate.execution.dask import DaskExecutor
+    from negotiate.execution.processes import ProcessExecutor
     from negotiate.fleet.build import build_agents
     from negotiate.fleet.parse import load_fleet
     from negotiate.resources.coupling import build_feasible_set, fcfs_orders

@@ -32,7 +32,7 @@ DeadlockError, InfeasibleOrdersError
 run_fleet, write_outputs
     The main job as one call (orders, coordination, verification) and its files.
 
-Executors (in process, worker processes, Dask) live in :mod:`negotiate.execution.executor`; results, report, sweep
+Executors (in process, worker processes, Dask) live in :mod:`negotiate.execution`; results, report, sweep
 and comparison in :mod:`negotiate.output.results`, :mod:`negotiate.output.report`, :mod:`negotiate.tools.sweep`,
 :mod:`negotiate.tools.compare`.
 

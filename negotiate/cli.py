@@ -197,7 +197,7 @@ def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ign
     import time
 
     from negotiate.errors import FleetError
-    from negotiate.execution.executor import make_executor
+    from negotiate.execution.make import make_executor
     from negotiate.fleet.build import build_agents
     from negotiate.output.checkpoint import FILENAME, CheckpointError, RunBook
     from negotiate.resources.coupling import DeadlockError

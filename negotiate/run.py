@@ -158,7 +158,7 @@ def run_fleet(
     verify : bool
         Also solve the centralized NLP for the final orders and report the gap.
     executor : Executor, optional
-        Passed to :func:`negotiate.coordination.engine.coordinate` (an :mod:`negotiate.execution.executor` executor also
+        Passed to :func:`negotiate.coordination.engine.coordinate` (an :mod:`negotiate.execution` executor also
         solves the agents at their free optima).
     progress : callable, optional
         Called with each :class:`~negotiate.coordination.engine.RoundRecord`; its ``trial`` field says which order

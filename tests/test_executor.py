@@ -20,15 +20,11 @@ import numpy as np
 import pytest
 
 from negotiate.coordination.engine import coordinate
-from negotiate.execution.executor import (
-    AgentOutcome,
-    DaskExecutor,
-    Executor,
-    InProcessExecutor,
-    ProcessExecutor,
-    cached_agents,
-    make_executor,
-)
+from negotiate.execution.base import AgentOutcome, Executor, InProcessExecutor
+from negotiate.execution.dask import DaskExecutor
+from negotiate.execution.make import make_executor
+from negotiate.execution.processes import ProcessExecutor
+from negotiate.execution.worker import cached_agents
 from negotiate.fleet.build import build_agents
 from negotiate.fleet.parse import load_fleet
 from negotiate.fleet.spec import CoordinatorSettings

@@ -27,7 +27,9 @@ from refproblems import by_name
 
 from negotiate.core.nlp import ParametricNLP
 from negotiate.core.status import Status
-from negotiate.execution.executor import DaskExecutor, InProcessExecutor, ProcessExecutor
+from negotiate.execution.base import InProcessExecutor
+from negotiate.execution.dask import DaskExecutor
+from negotiate.execution.processes import ProcessExecutor
 from negotiate.fleet.build import build_agents
 from negotiate.fleet.parse import load_fleet
 from negotiate.fleet.spec import AgentSpec

@@ -18,7 +18,7 @@ import pytest
 from negotiate.cli import main
 from negotiate.coordination.engine import coordinate
 from negotiate.core.status import Status
-from negotiate.execution.executor import evaluate_agent
+from negotiate.execution.base import evaluate_agent
 from negotiate.fleet.build import build_agents
 from negotiate.fleet.parse import parse_fleet
 

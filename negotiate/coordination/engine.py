@@ -48,7 +48,7 @@ from negotiate.coordination.methods import AgentReport, Evaluation, Method, Prop
 from negotiate.core.agent import AgentModel
 from negotiate.core.nlp import LocalResult
 from negotiate.core.status import CoordinationStatus
-from negotiate.execution.executor import AgentOutcome, Executor, InProcessExecutor, evaluate_agent
+from negotiate.execution.base import AgentOutcome, Executor, InProcessExecutor, evaluate_agent
 from negotiate.fleet.spec import CoordinatorSettings, Resource
 from negotiate.resources.coupling import FeasibleSet, build_feasible_set, fcfs_orders
 
@@ -134,7 +134,7 @@ class CoordinationResult:
 class Oracle:
     """Evaluates all agents at a stacked point: warm-started solves, then the nonsmooth guard.
 
-    With an :class:`~negotiate.execution.executor.Executor` the guard's probes and the value Hessians are computed by
+    With an :class:`~negotiate.execution.base.Executor` the guard's probes and the value Hessians are computed by
     the executor, where the agents' solvers live (possibly other processes); with a plain callable
     ``executor(agents, params, warm) -> results`` they are computed here from ``agent.problem``.
     """
@@ -244,7 +244,7 @@ def coordinate(
     start : array, optional
         Stacked starting parameters (projected onto the feasible set); the free optima when omitted.
     executor : Executor or callable, optional
-        An :class:`~negotiate.execution.executor.Executor` (in-process, worker processes, Dask), or any callable
+        An :class:`~negotiate.execution.base.Executor` (in-process, worker processes, Dask), or any callable
         ``executor(agents, params, warm) -> results``; in process when omitted.
     progress : callable, optional
         Called with each :class:`RoundRecord` as it is made.

@@ -619,18 +619,3 @@ def _parse_agent(
     if prm is None or len(col.problems) > n_before:
         return None
     return AgentSpec(name=name, model=model, params=prm, weight=weight)
-
-
-
-
-_MOVED = {"build_agents", "build_report", "BuiltAgent"}
-
-
-def __getattr__(name: str) -> Any:
-    # Building moved to negotiate.fleet.build; these names are still found here (imported on first use, so
-    # that reading a fleet loads nothing of the building).
-    if name in _MOVED:
-        from negotiate.fleet import build
-
-        return getattr(build, name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
