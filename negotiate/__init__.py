@@ -16,7 +16,7 @@ Status, CoordinationStatus
     (``converged``, ``max-rounds``, ``failed``) with whether its schedule is usable.
 AgentModel, SlotParam, ReachableSet
     What a model builder hands to the coordinator.
-load_fleet, build_agents, FleetError
+load_fleet, build_agents
     Read a fleet file (every mistake reported as one FleetError) and build its agents.
 Method, register_method, option, Evaluation, AgentReport, Proposal, CoordinationResult
     What a coordination method of your own needs: the base class, its registration, declared options, what
@@ -24,8 +24,10 @@ Method, register_method, option, Evaluation, AgentReport, Proposal, Coordination
     :func:`negotiate.coordination.engine.coordinate` (not re-exported here: the name is its module's).
 CoordinatorSettings, ExclusiveResource, CapacityResource
     The upper level's settings and the shared resources (slots with a gap; capacity per time block).
-DeadlockError, InfeasibleOrdersError
-    Orders on exclusive resources that no schedule can meet (a cycle; an empty coupling polyhedron).
+FleetError, FieldError, DeadlockError, InfeasibleOrdersError, RunFolderError, CheckpointError
+    The exceptions for user mistakes and refusals, all in :mod:`negotiate.errors` (each a ``ValueError``):
+    a fleet file's mistakes; a record's refused field; orders that no schedule can meet (a cycle; an
+    empty coupling polyhedron); a run folder that cannot be used; a checkpoint that cannot be used.
 run_fleet, write_outputs
     The main job as one call (orders, coordination, verification) and its files.
 
@@ -54,15 +56,18 @@ _WHERE = {
     "CoordinationResult": "negotiate.coordination.engine",
     "CoordinationStatus": "negotiate.core.status",
     "CoordinatorSettings": "negotiate.fleet.spec",
-    "DeadlockError": "negotiate.resources.coupling",
+    "CheckpointError": "negotiate.errors",
+    "DeadlockError": "negotiate.errors",
     "Evaluation": "negotiate.coordination.methods",
     "ExclusiveResource": "negotiate.fleet.spec",
     "FleetError": "negotiate.errors",
-    "InfeasibleOrdersError": "negotiate.resources.coupling",
+    "FieldError": "negotiate.errors",
+    "InfeasibleOrdersError": "negotiate.errors",
     "LocalResult": "negotiate.core.nlp",
     "Method": "negotiate.coordination.methods",
     "ParametricNLP": "negotiate.core.nlp",
     "Proposal": "negotiate.coordination.methods",
+    "RunFolderError": "negotiate.errors",
     "ReachableSet": "negotiate.core.agent",
     "Sensitivity": "negotiate.core.sensitivity",
     "SlotParam": "negotiate.core.agent",
@@ -98,15 +103,18 @@ __all__ = [
     "CoordinationResult",
     "CoordinationStatus",
     "CoordinatorSettings",
+    "CheckpointError",
     "DeadlockError",
     "Evaluation",
     "ExclusiveResource",
+    "FieldError",
     "FleetError",
     "InfeasibleOrdersError",
     "LocalResult",
     "Method",
     "ParametricNLP",
     "Proposal",
+    "RunFolderError",
     "ReachableSet",
     "Sensitivity",
     "SlotParam",

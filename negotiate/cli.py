@@ -151,8 +151,7 @@ def _run(args: argparse.Namespace) -> int:
     import time
 
     started = time.perf_counter()  # the run's wall time counts from here: reading, building, solving
-    from negotiate.errors import FleetError
-    from negotiate.output.results import RunFolderError
+    from negotiate.errors import FleetError, RunFolderError
     from negotiate.run import claim_run_folder, load_fleet
 
     if args.fleet is None and args.resume is None:
@@ -196,11 +195,10 @@ def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ign
     import signal
     import time
 
-    from negotiate.errors import FleetError
+    from negotiate.errors import CheckpointError, DeadlockError, FleetError
     from negotiate.execution.executor import make_executor
     from negotiate.fleet.parse import build_agents
-    from negotiate.output.checkpoint import FILENAME, CheckpointError, RunBook
-    from negotiate.resources.coupling import DeadlockError
+    from negotiate.output.checkpoint import FILENAME, RunBook
     from negotiate.run import check_method_options, resolve_method, run_fleet, write_outputs
 
     if args.method is not None:
@@ -367,8 +365,8 @@ def _load(command: str, path: str):  # type: ignore[no-untyped-def]
 
 
 def _report(args: argparse.Namespace) -> int:
+    from negotiate.errors import RunFolderError
     from negotiate.output.report import write_report
-    from negotiate.output.results import RunFolderError
 
     try:
         path = write_report(args.dir)
@@ -416,8 +414,7 @@ def _sweep(args: argparse.Namespace) -> int:
 
 
 def _compare(args: argparse.Namespace) -> int:
-    from negotiate.errors import FleetError
-    from negotiate.resources.coupling import DeadlockError
+    from negotiate.errors import DeadlockError, FleetError
     from negotiate.tools.compare import compare_methods, write_comparison
 
     spec = _load("compare", args.fleet)

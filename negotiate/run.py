@@ -35,11 +35,11 @@ from negotiate.coordination.orders import search_orders
 from negotiate.core.agent import AgentModel
 from negotiate.core.files import write_atomic
 from negotiate.core.nlp import try_solve
-from negotiate.errors import FleetError, Problem, describe
+from negotiate.errors import FleetError, Problem, RunFolderError, describe
 from negotiate.fleet import parse
 from negotiate.fleet.spec import CapacityResource, FleetSpec
 from negotiate.output.checkpoint import FILENAME as CHECKPOINT_FILE
-from negotiate.output.results import SCHEDULE_COLUMNS, RunFolderError, RunResult, ScheduleRow, write_result_files
+from negotiate.output.results import SCHEDULE_COLUMNS, RunResult, ScheduleRow, write_result_files
 
 __all__ = [
     "LOCK_FILE",
@@ -179,7 +179,7 @@ def run_fleet(
     resume : bool
         Continue from the checkpoint in ``checkpoint_dir`` (finished order trials are not redone, the trial
         in progress continues from its last complete round). Raises
-        :class:`~negotiate.output.checkpoint.CheckpointError` when there is none, or it is of another fleet or
+        :class:`~negotiate.errors.CheckpointError` when there is none, or it is of another fleet or
         method, or damaged.
     build_time : float
         Seconds the caller spent building ``agents`` (s), counted in the run's wall time and its ``build``

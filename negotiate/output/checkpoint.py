@@ -76,6 +76,7 @@ from negotiate.core.guard import GuardReport
 from negotiate.core.kkt import Certificate, ConstraintRef
 from negotiate.core.nlp import LocalResult
 from negotiate.core.status import CoordinationStatus, Status
+from negotiate.errors import CheckpointError
 from negotiate.fleet.spec import AgentSpec, CapacityResource, CoordinatorSettings, ExclusiveResource, FleetSpec
 from negotiate.resources.coupling import FeasibleSet, Layout
 
@@ -83,7 +84,6 @@ __all__ = [
     "FILENAME",
     "FORMAT_VERSION",
     "RECORDS",
-    "CheckpointError",
     "RunBook",
     "RunState",
     "TrialRecord",
@@ -95,13 +95,6 @@ __all__ = [
 MAGIC = b"negotiate-checkpoint\n"
 FORMAT_VERSION = 2
 FILENAME = "checkpoint.bin"
-
-
-class CheckpointError(ValueError):
-    """A checkpoint that cannot be used: missing, of another fleet or method, another version, or damaged.
-
-    The message names the file and says what was expected and what was found.
-    """
 
 
 class _Unsavable(CheckpointError):
