@@ -239,8 +239,11 @@ class RunResult:
     wall_time: float
     agents: tuple[AgentModel, ...] = field(repr=False, default=())
     phase_times: dict[str, float] = field(default_factory=dict)
-    """Seconds spent in each phase: ``build`` (the agents), ``free_optima``, ``order_search`` (every
-    coordination of every order tried) and, with ``verify``, ``verify``; they add up to ``wall_time``."""
+    """Seconds spent in each phase: ``build`` (reading the fleet, claiming the folder, starting the workers,
+    building the agents), ``free_optima``, ``order_search`` (every coordination of every order tried) and,
+    with ``verify``, ``verify``; they add up to ``wall_time``."""
+    files: tuple[Path, ...] = field(repr=False, default=())
+    """The files written into the run folder (``run_fleet(..., out=DIR)``), empty when none were written."""
 
     @property
     def total(self) -> float:
