@@ -1,8 +1,9 @@
 """The main job as one call: read a fleet, build its agents, choose orders, coordinate, verify, write files.
 
-``run_fleet(spec)`` is what ``negotiate run fleet.toml`` does, minus printing. ``write_outputs(run, dir)``
-writes ``schedule.csv``, ``run.json`` and the other files of a run folder (columns and keys documented in the
-README and ``docs/outputs.md``).
+``run_fleet(spec, out=dir)`` is what ``negotiate run fleet.toml --out dir`` does, minus printing: the run
+folder, the executor (``workers``, ``scheduler``, ``cluster``), the time limit, resume, the outputs and the
+timing (see its parameters). ``write_outputs(run, dir)`` writes ``schedule.csv``, ``run.json`` and the
+other files of a run folder (columns and keys documented in the README and ``docs/outputs.md``).
 
 A run folder belongs to one run at a time: ``with claim_run_folder(dir):`` creates it, takes its lock
 (a second run into the same folder is refused, naming the process that holds it), refuses a folder that

@@ -1,16 +1,16 @@
 """Checkpoints: a run writes its state into its run folder after every round and can resume from it.
 
-``run_fleet(spec, checkpoint_dir=DIR)`` (and ``negotiate run --out DIR``) keeps the file ``DIR/checkpoint.bin``
-up to date: after the start and after every coordination round it holds the fleet, the method's name, the
-order trials finished so far (their orders, totals and schedules; the full result of the best one) and, for
-the trial in progress, the engine's :class:`~negotiate.coordination.engine.EngineState` -- the current point, the
-method's state (its bundles, metric, step sizes), the round count, the history and every agent's warm-start
-data (``x``, ``lam_g``, ``lam_x`` and the certificate of its last converged solve). The file is written to a
-new temporary file in the same folder, flushed to the disk and renamed over the old one
-(:func:`os.replace`, atomic on POSIX and Windows), so an interruption at any moment leaves the last
-complete round on disk.
+``run_fleet(spec, out=DIR)`` or ``run_fleet(spec, checkpoint_dir=DIR)`` (and ``negotiate run --out DIR``)
+keeps the file ``DIR/checkpoint.bin`` up to date: after the start and after every coordination round it holds
+the fleet, the method's name, the order trials finished so far (their orders, totals and schedules; the full
+result of the best one) and, for the trial in progress, the engine's
+:class:`~negotiate.coordination.engine.EngineState` -- the current point, the method's state (its bundles,
+metric, step sizes), the round count, the history and every agent's warm-start data (``x``, ``lam_g``,
+``lam_x`` and the certificate of its last converged solve). The file is written to a new temporary file in the
+same folder, flushed to the disk and renamed over the old one (:func:`os.replace`, atomic on POSIX and
+Windows), so an interruption at any moment leaves the last complete round on disk.
 
-``run_fleet(spec, checkpoint_dir=DIR, resume=True)`` (``negotiate run --resume DIR``) reads it back, skips
+``run_fleet(spec, out=DIR, resume=True)`` (``negotiate run --resume DIR``) reads it back, skips
 the finished order trials, continues the trial in progress from its last complete round and ends at the
 same schedule as the uninterrupted run: the solves are deterministic, and the method and warm starts are
 restored exactly.
