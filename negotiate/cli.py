@@ -16,6 +16,8 @@ import negotiate
 
 if TYPE_CHECKING:
     from negotiate.coordination.engine import RoundRecord
+    from negotiate.core.agent import AgentModel
+    from negotiate.fleet.spec import CoordinatorSettings, FleetSpec
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -156,7 +158,6 @@ def _run(args: argparse.Namespace) -> int:
 
     started = time.perf_counter()  # the run's wall time counts from here: reading, building, solving
     from negotiate.errors import CheckpointError, DeadlockError, FleetError, RunFolderError
-    from negotiate.fleet.spec import CoordinatorSettings, FleetSpec
     from negotiate.run import load_fleet, run_fleet
 
     if args.fleet is None and args.resume is None:
@@ -187,7 +188,7 @@ def _run(args: argparse.Namespace) -> int:
     bars: list[Any] = []  # the progress bar, once the agents are built
     trial = [0]
 
-    def built(spec: FleetSpec, agents: list[Any], settings: CoordinatorSettings) -> None:
+    def built(spec: FleetSpec, agents: list[AgentModel], settings: CoordinatorSettings) -> None:
         print(f"fleet {spec.name}: {len(agents)} agents, {len(spec.resources)} resources; method {settings.method}, "
               f"orders {settings.order}")  # fmt: skip
         if not args.quiet:
@@ -268,7 +269,7 @@ def _run(args: argparse.Namespace) -> int:
     return 0 if c.success else 3
 
 
-def _load(command: str, path: str):  # type: ignore[no-untyped-def]
+def _load(command: str, path: str) -> FleetSpec | int:
     """The parsed fleet, or the exit status after printing why it cannot be read."""
     from negotiate.errors import FleetError
     from negotiate.run import load_fleet

@@ -63,7 +63,7 @@ import re
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 
@@ -224,7 +224,7 @@ class _Encoder:
             return ref
         if a.dtype.kind not in _DTYPE_KINDS:
             raise _Unsavable(f"{where} is an array of {a.dtype}, which a checkpoint cannot hold")
-        order = "F" if a.flags.f_contiguous and not a.flags.c_contiguous else "C"
+        order: Literal["F", "C"] = "F" if a.flags.f_contiguous and not a.flags.c_contiguous else "C"
         dt = a.dtype.str
         offset = self.sizes.get(dt, 0)
         self.chunks.setdefault(dt, []).append(a.ravel(order=order))
@@ -354,7 +354,8 @@ def _encode(state: RunState) -> tuple[bytes, bytes]:
     names = sorted(flat)
     text = json.dumps({"tree": tree, "arrays": names}, separators=(",", ":"), allow_nan=True)
     buf = io.BytesIO()
-    np.savez(buf, **{f"a{i}": flat[dt] for i, dt in enumerate(names)})
+    members: dict[str, Any] = {f"a{i}": flat[dt] for i, dt in enumerate(names)}  # np.savez's keywords: arrays
+    np.savez(buf, **members)
     return text.encode("utf-8"), buf.getvalue()
 
 

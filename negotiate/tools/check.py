@@ -333,8 +333,7 @@ def _resource_rows(
             rows.append(ResourceRow(r.name, _kind(r), users, None, "unknown (not every user was built)"))
             continue
         if isinstance(r, ExclusiveResource):
-            slots = [(u, _slot(models[u], r.name)) for u in users]
-            slots = [(u, s) for u, s in slots if s is not None]
+            slots = [(u, s) for u in users if (s := _slot(models[u], r.name)) is not None]
             pairs = total = 0
             for i in range(len(slots)):
                 for j in range(i + 1, len(slots)):
