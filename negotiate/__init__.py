@@ -29,7 +29,8 @@ FleetError, FieldError, DeadlockError, InfeasibleOrdersError, RunFolderError, Ch
     a fleet file's mistakes; a record's refused field; orders that no schedule can meet (a cycle; an
     empty coupling polyhedron); a run folder that cannot be used; a checkpoint that cannot be used.
 run_fleet, write_outputs
-    The main job as one call (orders, coordination, verification) and its files.
+    The main job as one call, as ``negotiate run`` does it (run folder, executor, time limit, orders,
+    coordination, verification, resume, outputs), and the files of a result.
 
 Executors (in process, worker processes, Dask) live in :mod:`negotiate.execution.executor`; results, report, sweep
 and comparison in :mod:`negotiate.output.results`, :mod:`negotiate.output.report`, :mod:`negotiate.tools.sweep`,

@@ -154,7 +154,7 @@ def run_fleet(
     *,
     method: str | None = None,
     verify: bool = False,
-    executor: Any = None,
+    executor: Executor | Callable[..., Any] | None = None,
     progress: Callable[[RoundRecord], None] | None = None,
     checkpoint_dir: str | Path | None = None,
     resume: bool = False,
@@ -229,8 +229,8 @@ def run_fleet(
     stop_on_signal : bool
         Catch SIGINT and SIGTERM while the call runs (main thread only; the previous handlers are put back
         afterwards): the first is acted on after the round in progress, once its checkpoint is written,
-        by raising :class:`KeyboardInterrupt`; a second terminates the worker processes and ends the
-        process at once with exit status 130. Without it a signal acts as Python's default does.
+        by raising :class:`KeyboardInterrupt`; a second terminates the worker processes this call started
+        and ends the process at once with exit status 130. Without it a signal acts as Python's default does.
 
     Returns
     -------
