@@ -16,7 +16,7 @@ Status, CoordinationStatus
     (``converged``, ``max-rounds``, ``failed``) with whether its schedule is usable.
 AgentModel, SlotParam, ReachableSet
     What a model builder hands to the coordinator.
-load_fleet, build_agents, FleetError
+load_fleet, build_agents
     Read a fleet file (every mistake reported as one FleetError) and build its agents.
 Method, register_method, option, Evaluation, AgentReport, Proposal, CoordinationResult
     What a coordination method of your own needs: the base class, its registration, declared options, what
@@ -27,10 +27,13 @@ CoordinatorSettings, ExclusiveResource, CapacityResource, DwellResource
     with a gap and a minimum stay).
 ResourceKind, register_kind
     What a resource kind of your own needs: the base of its record and its registration (docs/extend.md).
-DeadlockError, InfeasibleOrdersError
-    Orders on exclusive resources that no schedule can meet (a cycle; an empty coupling polyhedron).
+FleetError, FieldError, DeadlockError, InfeasibleOrdersError, RunFolderError, CheckpointError
+    The exceptions for user mistakes and refusals, all in :mod:`negotiate.errors` (each a ``ValueError``):
+    a fleet file's mistakes; a record's refused field; orders that no schedule can meet (a cycle; an
+    empty coupling polyhedron); a run folder that cannot be used; a checkpoint that cannot be used.
 run_fleet, write_outputs
-    The main job as one call (orders, coordination, verification) and its files.
+    The main job as one call, as ``negotiate run`` does it (run folder, executor, time limit, orders,
+    coordination, verification, resume, outputs), and the files of a result.
 
 Executors (in process, worker processes, Dask) live in :mod:`negotiate.execution`; results, report, sweep
 and comparison in :mod:`negotiate.output.results`, :mod:`negotiate.output.report`, :mod:`negotiate.tools.sweep`,
@@ -57,16 +60,19 @@ _WHERE = {
     "CoordinationResult": "negotiate.coordination.engine",
     "CoordinationStatus": "negotiate.core.status",
     "CoordinatorSettings": "negotiate.fleet.spec",
-    "DeadlockError": "negotiate.resources.coupling",
+    "CheckpointError": "negotiate.errors",
+    "DeadlockError": "negotiate.errors",
     "DwellResource": "negotiate.resources",
     "Evaluation": "negotiate.coordination.methods",
     "ExclusiveResource": "negotiate.fleet.spec",
     "FleetError": "negotiate.errors",
-    "InfeasibleOrdersError": "negotiate.resources.coupling",
+    "FieldError": "negotiate.errors",
+    "InfeasibleOrdersError": "negotiate.errors",
     "LocalResult": "negotiate.core.nlp",
     "Method": "negotiate.coordination.methods",
     "ParametricNLP": "negotiate.core.nlp",
     "Proposal": "negotiate.coordination.methods",
+    "RunFolderError": "negotiate.errors",
     "ReachableSet": "negotiate.core.agent",
     "ResourceKind": "negotiate.resources",
     "Sensitivity": "negotiate.core.sensitivity",
@@ -104,16 +110,19 @@ __all__ = [
     "CoordinationResult",
     "CoordinationStatus",
     "CoordinatorSettings",
+    "CheckpointError",
     "DeadlockError",
     "DwellResource",
     "Evaluation",
     "ExclusiveResource",
+    "FieldError",
     "FleetError",
     "InfeasibleOrdersError",
     "LocalResult",
     "Method",
     "ParametricNLP",
     "Proposal",
+    "RunFolderError",
     "ReachableSet",
     "ResourceKind",
     "Sensitivity",

@@ -10,8 +10,14 @@ import argparse
 import sys
 from collections.abc import Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import negotiate
+
+if TYPE_CHECKING:
+    from negotiate.coordination.engine import RoundRecord
+    from negotiate.core.agent import AgentModel
+    from negotiate.fleet.spec import CoordinatorSettings, FleetSpec
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -151,9 +157,8 @@ def _run(args: argparse.Namespace) -> int:
     import time
 
     started = time.perf_counter()  # the run's wall time counts from here: reading, building, solving
-    from negotiate.errors import FleetError
-    from negotiate.output.results import RunFolderError
-    from negotiate.run import claim_run_folder, load_fleet
+    from negotiate.errors import CheckpointError, DeadlockError, FleetError, RunFolderError
+    from negotiate.run import load_fleet, run_fleet
 
     if args.fleet is None and args.resume is None:
         print("negotiate run: give a fleet file, or --resume DIR", file=sys.stderr)
@@ -168,7 +173,7 @@ def _run(args: argparse.Namespace) -> int:
     if limit is not None and not (limit > 0 and limit < float("inf")):
         print(f"negotiate run: --time-limit must be a positive number of seconds, got {limit}", file=sys.stderr)
         return 2
-    args.out = args.out or args.resume
+    out = args.out or args.resume
     spec = None
     if args.fleet is not None:
         try:
@@ -180,144 +185,56 @@ def _run(args: argparse.Namespace) -> int:
         except FleetError as exc:
             print(exc, file=sys.stderr)
             return 1
-    # The folder is claimed (created, locked, checked, an earlier run's files removed) before anything is
-    # built, and released however the run ends.
-    try:
-        with claim_run_folder(args.out, resume=args.resume is not None):
-            return _run_in_folder(args, spec, started)
-    except RunFolderError as exc:
-        print(f"negotiate run: {exc}", file=sys.stderr)
-        return 2
+    bars: list[Any] = []  # the progress bar, once the agents are built
+    trial = [0]
 
-
-def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ignore[no-untyped-def]
-    import contextlib
-    import os
-    import signal
-    import time
-
-    from negotiate.errors import FleetError
-    from negotiate.execution.make import make_executor
-    from negotiate.fleet.build import build_agents
-    from negotiate.output.checkpoint import FILENAME, CheckpointError, RunBook
-    from negotiate.resources.coupling import DeadlockError
-    from negotiate.run import check_method_options, resolve_method, run_fleet, write_outputs
-
-    if args.method is not None:
-        try:  # imported once, before a checkpoint that names it is read
-            args.method = resolve_method(args.method)
-        except ValueError as exc:
-            print(exc, file=sys.stderr)
-            return 1
-    try:
-        if spec is None:
-            spec = RunBook.saved_spec(args.resume)
-        elif args.resume is not None:
-            # Refuse a checkpoint of another fleet or method before building anything.
-            from negotiate.output.checkpoint import fleet_digest, read_checkpoint
-
-            read_checkpoint(args.resume, fleet_digest(spec, args.method or spec.coordinator.method))
-    except CheckpointError as exc:
-        print(f"negotiate run: {exc}", file=sys.stderr)
-        return 2
-    try:  # options the method does not know are refused before anything is built
-        check_method_options(spec, args.method)
-    except (FleetError, ValueError) as exc:
-        print(exc, file=sys.stderr)
-        return 1
-    limit = args.time_limit
-    bar = None
-    executor = None
-
-    # A signal is acted on after the current round, once its checkpoint is written: raising inside a solve
-    # would end it as a failed solve (CasADi turns the interrupt into a solver status). A second signal
-    # exits at once; the checkpoint on disk is the last complete round either way.
-    stop: list[int] = []
-
-    def interrupted(signum, frame):  # type: ignore[no-untyped-def]
-        if stop:
-            if executor is not None:  # no worker process may outlive the run
-                with contextlib.suppress(Exception):
-                    executor.terminate()
-            os._exit(130)
-        stop.append(signum)
-        # os.write, not print: the handler may run while the progress bar is writing to stderr.
-        os.write(2, b"negotiate run: stopping after the round in progress; a second signal stops at once\n")
-
-    previous = {s: signal.signal(s, interrupted) for s in (signal.SIGINT, signal.SIGTERM)}
-    try:
-        executor = make_executor(
-            spec, workers=args.workers, scheduler=args.scheduler, cluster=args.cluster, time_limit=limit
-        )
-        executor.start()  # remote workers build their agents while this process builds its own
-        # In process the limit is IPOPT's own; remote executors pass it on and also bound the reply time.
-        in_process = args.workers is None and args.scheduler is None and args.cluster is None
-        agents = build_agents(spec, solver_options={"ipopt.max_wall_time": limit} if limit and in_process else None)
-        built = time.perf_counter() - started  # reading the file, starting the workers, building the agents
-        method = args.method or spec.coordinator.method
-        print(f"fleet {spec.name}: {len(agents)} agents, {len(spec.resources)} resources; method {method}, "
-              f"orders {spec.coordinator.order}")  # fmt: skip
+    def built(spec: FleetSpec, agents: list[AgentModel], settings: CoordinatorSettings) -> None:
+        print(f"fleet {spec.name}: {len(agents)} agents, {len(spec.resources)} resources; method {settings.method}, "
+              f"orders {settings.order}")  # fmt: skip
         if not args.quiet:
             from tqdm import tqdm
 
-            bar = tqdm(total=None, unit="round", file=sys.stderr, dynamic_ncols=True, leave=False, desc="order 1")
-        trial = [0]
+            bars.append(tqdm(total=None, unit="round", file=sys.stderr, dynamic_ncols=True, leave=False,
+                             desc="order 1"))  # fmt: skip
 
-        def progress(rec):  # type: ignore[no-untyped-def]
-            if stop:
-                raise KeyboardInterrupt
-            if bar is not None:
-                if rec.trial != trial[0]:  # a new order of the search: its rounds count from 0 again
-                    trial[0] = rec.trial
-                    bar.reset()
-                    bar.set_description_str(f"order {rec.trial + 1}", refresh=False)
-                bar.update(1)
-                bar.set_postfix_str(
-                    f"total {_fmt(rec.best_total, 9)}  measure {rec.measure:.1e}  flagged {len(rec.flagged)}"
-                    + (f"  failed {len(rec.failed)}" if rec.failed else ""),
-                    refresh=False,
-                )
+    def progress(rec: RoundRecord) -> None:
+        for bar in bars:
+            if rec.trial != trial[0]:  # a new order of the search: its rounds count from 0 again
+                trial[0] = rec.trial
+                bar.reset()
+                bar.set_description_str(f"order {rec.trial + 1}", refresh=False)
+            bar.update(1)
+            bar.set_postfix_str(
+                f"total {_fmt(rec.best_total, 9)}  measure {rec.measure:.1e}  flagged {len(rec.flagged)}"
+                + (f"  failed {len(rec.failed)}" if rec.failed else ""),
+                refresh=False,
+            )
 
+    def close_bar() -> None:
+        while bars:
+            bars.pop().close()
+
+    try:
         result = run_fleet(
-            spec, agents, method=args.method, verify=args.verify, progress=progress, executor=executor,
-            checkpoint_dir=args.out, resume=args.resume is not None, build_time=built,
+            spec, method=args.method, verify=args.verify, progress=progress, out=out, resume=args.resume is not None,
+            workers=args.workers, scheduler=args.scheduler, cluster=args.cluster, time_limit=limit,
+            build_time=time.perf_counter() - started, on_built=built, stop_on_signal=True,
         )  # fmt: skip
-    except CheckpointError as exc:
-        if bar is not None:
-            bar.close()
-        print(f"negotiate run: {exc}", file=sys.stderr)
-        return 2
-    except ImportError as exc:
-        if bar is not None:
-            bar.close()
+    except (RunFolderError, CheckpointError, ImportError) as exc:
+        close_bar()
         print(f"negotiate run: {exc}", file=sys.stderr)
         return 2
     except (FleetError, DeadlockError, ValueError) as exc:
-        if bar is not None:
-            bar.close()
+        close_bar()
         print(exc, file=sys.stderr)
         return 1
     except KeyboardInterrupt:
-        if bar is not None:
-            bar.close()
-        print(f"negotiate run: interrupted; the last complete round is saved: negotiate run --resume {args.out}",
+        close_bar()
+        print(f"negotiate run: interrupted; the last complete round is saved: negotiate run --resume {out}",
               file=sys.stderr)  # fmt: skip
         return 130
     finally:
-        for sig, handler in previous.items():
-            signal.signal(sig, handler)
-        if executor is not None:
-            executor.close()
-    if bar is not None:
-        bar.close()
-    try:
-        paths = write_outputs(result, args.out)
-    except OSError as exc:
-        print(f"negotiate run: cannot write the outputs into {args.out} ({exc.strerror or exc}"
-              + (f": {exc.filename}" if exc.filename else "") + f"); the finished run is kept in "
-              f"{Path(args.out) / FILENAME}: fix the folder, then write them with 'negotiate run --resume {args.out}'",
-              file=sys.stderr)  # fmt: skip
-        return 2
+        close_bar()
     c = result.coordination
     rows = []
     for r in result.schedule:
@@ -344,14 +261,15 @@ def _run_in_folder(args: argparse.Namespace, spec, started: float):  # type: ign
         print(f"centralized: {ce.status} ({ce.message}), cost {_fmt(ce.total, 10)}, {ce.wall_time:.2f} s; "
               f"relative gap {'-' if gap is None else f'{gap:+.2e}'}")  # fmt: skip
     print("orders: " + "; ".join(f"{k}: {' > '.join(v)}" for k, v in c.orders.items()))
-    out = Path(args.out)
-    top = sorted({p.relative_to(out).parts[0] for p in paths})
-    print(f"wrote {len(paths)} files to {out}: " + ", ".join(t + ("/" if (out / t).is_dir() else "") for t in top))
+    folder = Path(out)
+    top = sorted({p.relative_to(folder).parts[0] for p in result.files})
+    print(f"wrote {len(result.files)} files to {folder}: "
+          + ", ".join(t + ("/" if (folder / t).is_dir() else "") for t in top))  # fmt: skip
     print("planning and research output, not a safety controller: check gaps and speeds against site rules")
     return 0 if c.success else 3
 
 
-def _load(command: str, path: str):  # type: ignore[no-untyped-def]
+def _load(command: str, path: str) -> FleetSpec | int:
     """The parsed fleet, or the exit status after printing why it cannot be read."""
     from negotiate.errors import FleetError
     from negotiate.run import load_fleet
@@ -367,8 +285,8 @@ def _load(command: str, path: str):  # type: ignore[no-untyped-def]
 
 
 def _report(args: argparse.Namespace) -> int:
+    from negotiate.errors import RunFolderError
     from negotiate.output.report import write_report
-    from negotiate.output.results import RunFolderError
 
     try:
         path = write_report(args.dir)
@@ -416,8 +334,7 @@ def _sweep(args: argparse.Namespace) -> int:
 
 
 def _compare(args: argparse.Namespace) -> int:
-    from negotiate.errors import FleetError
-    from negotiate.resources.coupling import DeadlockError
+    from negotiate.errors import DeadlockError, FleetError
     from negotiate.tools.compare import compare_methods, write_comparison
 
     spec = _load("compare", args.fleet)

@@ -1,4 +1,13 @@
-"""The one documented exception for user mistakes in a fleet file, and the record of a single mistake.
+"""Every exception the package raises for a user mistake or a refusal, and the record of a single mistake.
+
+* :class:`FleetError` -- a fleet file (or dictionary) with mistakes in it, each a :class:`Problem`;
+* :class:`FieldError` -- a record (model parameters, a resource) that refused one of its fields;
+* :class:`DeadlockError`, :class:`InfeasibleOrdersError` -- orders on exclusive resources that no schedule
+  can meet (a cycle of precedences; an empty coupling polyhedron);
+* :class:`RunFolderError` -- a run folder that cannot be used, or a file in it that cannot be read;
+* :class:`CheckpointError` -- a checkpoint that cannot be used (missing, of another fleet, damaged).
+
+Each subclasses :class:`ValueError`, so callers may catch either; each is importable from ``negotiate``.
 
 A fleet file can hold many mistakes at once; the parser collects all of them before it gives up, so that
 one run shows everything to fix. :class:`FleetError` carries them as :class:`Problem` records (file, table
@@ -15,11 +24,22 @@ from __future__ import annotations
 
 import math
 import re
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-__all__ = ["FieldError", "FleetError", "Problem", "check_field", "describe", "table_path"]
+__all__ = [
+    "CheckpointError",
+    "DeadlockError",
+    "FieldError",
+    "FleetError",
+    "InfeasibleOrdersError",
+    "Problem",
+    "RunFolderError",
+    "check_field",
+    "describe",
+    "table_path",
+]
 
 _BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")
 _PRINTABLE = re.compile(r"^[^\x00-\x1f\x7f\x85\u2028\u2029'\\]*$")
@@ -118,6 +138,37 @@ class FieldError(ValueError):
 
     def __reduce__(self) -> tuple[Any, ...]:
         return (type(self), (self.owner, self.key, self.expected, self.found))
+
+
+class DeadlockError(ValueError):
+    """A set of orders on exclusive resources that no schedule can meet (a cycle of precedences)."""
+
+
+class InfeasibleOrdersError(ValueError):
+    """Orders (without a cycle) whose coupling polyhedron is empty: no schedule meets the gaps, capacity
+    limits and every agent's reachable set at once. ``rows`` names the rules that conflict."""
+
+    def __init__(self, message: str, rows: Sequence[str] = ()) -> None:
+        super().__init__(message)
+        self.rows = tuple(rows)
+
+
+class RunFolderError(ValueError):
+    """A run folder that cannot be used, or a file in it that cannot be read.
+
+    Raised for a folder that is missing a file the report needs, a file that is damaged (not UTF-8, not
+    JSON or CSV, missing columns, a cell that is not a number, a path that leads outside the folder), and by
+    :func:`negotiate.run.claim_run_folder` for a folder in use by another run, a non-empty folder that is
+    not a run folder, or a path that cannot be written. The message names the folder or file, what was
+    expected and what was found, and what to do.
+    """
+
+
+class CheckpointError(ValueError):
+    """A checkpoint that cannot be used: missing, of another fleet or method, another version, or damaged.
+
+    The message names the file and says what was expected and what was found.
+    """
 
 
 def check_field(owner: str, key: str, value: Any, ok: bool, expected: str) -> None:

@@ -1,8 +1,9 @@
 """The main job as one call: read a fleet, build its agents, choose orders, coordinate, verify, write files.
 
-``run_fleet(spec)`` is what ``negotiate run fleet.toml`` does, minus printing. ``write_outputs(run, dir)``
-writes ``schedule.csv``, ``run.json`` and the other files of a run folder (columns and keys documented in the
-README and ``docs/outputs.md``).
+``run_fleet(spec, out=dir)`` is what ``negotiate run fleet.toml --out dir`` does, minus printing: the run
+folder, the executor (``workers``, ``scheduler``, ``cluster``), the time limit, resume, the outputs and the
+timing (see its parameters). ``write_outputs(run, dir)`` writes ``schedule.csv``, ``run.json`` and the
+other files of a run folder (columns and keys documented in the README and ``docs/outputs.md``).
 
 A run folder belongs to one run at a time: ``with claim_run_folder(dir):`` creates it, takes its lock
 (a second run into the same folder is refused, naming the process that holds it), refuses a folder that
@@ -19,8 +20,10 @@ import importlib.util
 import io
 import json
 import os
+import signal
 import sys
 import time
+import warnings
 from collections.abc import Callable, Iterator
 from dataclasses import replace
 from pathlib import Path
@@ -31,15 +34,17 @@ import numpy as np
 from negotiate.coordination.centralized import solve_centralized
 from negotiate.coordination.engine import CoordinationResult, RoundRecord, coordinate
 from negotiate.coordination.methods import Method, method_class, method_names, option_problems, register_method
-from negotiate.coordination.orders import search_orders
+from negotiate.coordination.orders import OrderTrial, search_orders
 from negotiate.core.agent import AgentModel
 from negotiate.core.files import write_atomic
-from negotiate.core.nlp import try_solve
-from negotiate.errors import FleetError, Problem, describe
-from negotiate.fleet import parse
-from negotiate.fleet.spec import FleetSpec
+from negotiate.errors import FleetError, Problem, RunFolderError, describe
+from negotiate.execution.base import Executor
+from negotiate.execution.make import make_executor
+from negotiate.fleet import build, parse
+from negotiate.fleet.spec import CoordinatorSettings, FleetSpec
 from negotiate.output.checkpoint import FILENAME as CHECKPOINT_FILE
-from negotiate.output.results import SCHEDULE_COLUMNS, RunFolderError, RunResult, ScheduleRow, write_result_files
+from negotiate.output.checkpoint import RunBook
+from negotiate.output.results import SCHEDULE_COLUMNS, RunResult, ScheduleRow, write_result_files
 
 __all__ = [
     "LOCK_FILE",
@@ -134,81 +139,258 @@ def _schedule(
 
 
 def run_fleet(
-    spec: FleetSpec,
+    spec: FleetSpec | None = None,
     agents: list[AgentModel] | None = None,
     *,
     method: str | None = None,
     verify: bool = False,
-    executor: Any = None,
+    executor: Executor | Callable[..., Any] | None = None,
     progress: Callable[[RoundRecord], None] | None = None,
     checkpoint_dir: str | Path | None = None,
     resume: bool = False,
     build_time: float = 0.0,
+    out: str | Path | None = None,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    cluster: str | None = None,
+    time_limit: float | None = None,
+    on_built: Callable[[FleetSpec, list[AgentModel], CoordinatorSettings], None] | None = None,
+    stop_on_signal: bool = False,
 ) -> RunResult:
-    """Coordinate a fleet.
+    """Coordinate a fleet: what ``negotiate run`` does, minus printing.
+
+    In this order: claim the run folder ``out`` (when given); import and register a user ``method``; read
+    the checkpoint to resume from (and the fleet it records, when ``spec`` is None); refuse method options
+    the method does not declare; start the executor (``workers``, ``scheduler`` or ``cluster``; in process
+    otherwise); build the agents (unless given); solve them at their free optima; choose the orders and
+    coordinate (checkpointed after every round); verify against the centralized NLP (``verify``); write the
+    outputs into ``out``. The executor this call starts is closed however it ends.
 
     Parameters
     ----------
-    spec : FleetSpec
-        The parsed fleet (:func:`negotiate.fleet.load_fleet`).
+    spec : FleetSpec, optional
+        The parsed fleet (:func:`load_fleet`). May be None only with ``resume``: the fleet recorded in the
+        checkpoint is used.
     agents : list of AgentModel, optional
-        Built agents (built from ``spec`` when omitted).
+        Built agents (built from ``spec`` when omitted, where ``time_limit`` applies to them in process).
     method : str, optional
-        Overrides ``spec.coordinator.method``: a built-in name or ``"module:Class"``.
+        Overrides ``spec.coordinator.method``: a registered name, ``"package.module:Class"`` or
+        ``"path/to/file.py:Class"`` (:func:`resolve_method`; this imports and runs user code).
     verify : bool
         Also solve the centralized NLP for the final orders and report the gap.
-    executor : Executor, optional
-        Passed to :func:`negotiate.coordination.engine.coordinate` (an :mod:`negotiate.execution` executor also
-        solves the agents at their free optima).
+    executor : Executor or callable, optional
+        Solves the agents (:mod:`negotiate.execution`; also the free optima); the caller keeps it
+        open and closes it. When omitted, one is made from ``workers``, ``scheduler`` and ``cluster``
+        (:func:`negotiate.execution.make.make_executor`), started before the agents are built and
+        closed at the end.
     progress : callable, optional
-        Called with each :class:`~negotiate.coordination.engine.RoundRecord`; its ``trial`` field says which order
-        trial (0, 1, ...) the round belongs to, its ``round`` counts within that trial.
+        Called with each :class:`~negotiate.coordination.engine.RoundRecord`; its ``trial`` field says which
+        order trial (0, 1, ...) the round belongs to, its ``round`` counts within that trial.
     checkpoint_dir : path, optional
-        Run folder to keep ``checkpoint.bin`` in, written after every round (:mod:`negotiate.output.checkpoint`).
+        Folder to keep ``checkpoint.bin`` in, written after every round (:mod:`negotiate.output.checkpoint`);
+        nothing else is written there. With ``out``, the run folder is the checkpoint's folder.
     resume : bool
-        Continue from the checkpoint in ``checkpoint_dir`` (finished order trials are not redone, the trial
-        in progress continues from its last complete round). Raises
-        :class:`~negotiate.output.checkpoint.CheckpointError` when there is none, or it is of another fleet or
+        Continue from the checkpoint in ``out`` (or ``checkpoint_dir``): finished order trials are not
+        redone, the trial in progress continues from its last complete round. Raises
+        :class:`~negotiate.errors.CheckpointError` when there is none, or it is of another fleet or
         method, or damaged.
     build_time : float
-        Seconds the caller spent building ``agents`` (s), counted in the run's wall time and its ``build``
-        phase; ignored when the agents are built here.
+        Seconds the caller spent before this call on the run (reading the fleet file, building ``agents``)
+        (s), added to the run's wall time and its ``build`` phase.
+    out : path, optional
+        The run folder, as ``negotiate run --out DIR``: claimed for the duration of the call
+        (:func:`claim_run_folder`: created, locked, an earlier run's files removed; with ``resume`` it must
+        exist and is kept), the checkpoint kept there, and the outputs written there at the end
+        (:func:`write_outputs`; their paths are the result's ``files``).
+    workers : int, optional
+        Solve the agents in this many local worker processes (with ``scheduler`` or ``cluster``: the number
+        of local Dask workers, default 2).
+    scheduler : str, optional
+        Address of a Dask scheduler (``tcp://HOST:PORT``) whose workers solve the agents.
+    cluster : {"local"}, optional
+        Start a Dask cluster on this machine (loopback) for the run.
+    time_limit : float, optional
+        Seconds per agent solve (s, > 0): a solve that runs longer counts as failed for that agent
+        (``time-limit``). In process it is IPOPT's own ``max_wall_time``, set when the agents are built
+        here; remote executors pass it on and also bound the reply time.
+    on_built : callable, optional
+        Called once as ``on_built(spec, agents, settings)`` when the agents are built, before anything is
+        solved; ``settings`` are the coordinator settings in force (``method`` resolved).
+    stop_on_signal : bool
+        Catch SIGINT and SIGTERM while the call runs (main thread only; the previous handlers are put back
+        afterwards): the first is acted on after the round in progress, once its checkpoint is written,
+        by raising :class:`KeyboardInterrupt`; a second terminates the worker processes this call started
+        and ends the process at once with exit status 130. Without it a signal acts as Python's default does.
+
+    Returns
+    -------
+    RunResult
+        The schedule, the coordination, the order trials, the centralized reference (``verify``), the wall
+        time and its phases; ``files`` lists the outputs written into ``out``.
 
     Raises
     ------
     FleetError
         When ``[coordinator.options]`` holds a key the method does not declare or a value of the wrong type
-        (:func:`check_method_options`), before anything is built or solved.
+        (:func:`check_method_options`), before anything is built or solved; or when an agent cannot be built.
     DeadlockError, InfeasibleOrdersError
         When the first order (first-come-first-served) admits no schedule; later candidates of an order
         search that admit none are recorded as infeasible trials and skipped.
+    RunFolderError
+        When ``out`` cannot be claimed (:func:`claim_run_folder`), or the outputs cannot be written into it
+        (the finished run stays in its checkpoint: resume to write them).
+    CheckpointError
+        When the checkpoint to resume from cannot be used, or one cannot be written.
+    ValueError
+        For a ``method`` that cannot be imported, a ``time_limit`` that is not a positive number, arguments
+        that contradict each other, or an executor address that is not one.
+    ImportError
+        When ``scheduler`` or ``cluster`` is given and Dask is not installed.
     """
-    t0 = time.perf_counter()
-    phases = {"build": float(build_time)}
+    t0 = time.perf_counter() - float(build_time)
+    if time_limit is not None and not (0 < time_limit < float("inf")):
+        raise ValueError(f"'time_limit' must be a positive number of seconds, got {time_limit}")
+    if executor is not None and (workers is not None or scheduler is not None or cluster is not None):
+        raise ValueError("give either an executor or 'workers', 'scheduler' and 'cluster' to make one, not both")
+    if out is None:
+        return _run(t0, spec, agents, method, verify, executor, progress, checkpoint_dir, resume, workers,
+                    scheduler, cluster, time_limit, on_built, stop_on_signal)  # fmt: skip
+    if checkpoint_dir is not None and Path(checkpoint_dir).resolve() != Path(out).resolve():
+        raise ValueError("'out' keeps the checkpoint in the run folder; leave out 'checkpoint_dir'")
+    # The folder is claimed (created, locked, checked, an earlier run's files removed) before anything is
+    # built, and released however the run ends.
+    with claim_run_folder(out, resume=resume):
+        run = _run(t0, spec, agents, method, verify, executor, progress, out, resume, workers, scheduler,
+                   cluster, time_limit, on_built, stop_on_signal)  # fmt: skip
+        try:
+            files = write_outputs(run, out)
+        except OSError as exc:
+            raise RunFolderError(
+                f"cannot write the outputs into {out} ({exc.strerror or exc}"
+                + (f": {exc.filename}" if exc.filename else "")
+                + f"); the finished run is kept in {Path(out) / CHECKPOINT_FILE}: fix the folder, then write them "
+                f"with 'negotiate run --resume {out}'"
+            ) from exc
+    return replace(run, files=tuple(files))
+
+
+def _run(
+    t0: float,
+    spec: FleetSpec | None,
+    agents: list[AgentModel] | None,
+    method: str | None,
+    verify: bool,
+    executor: Any,
+    progress: Callable[[RoundRecord], None] | None,
+    checkpoint_dir: str | Path | None,
+    resume: bool,
+    workers: int | None,
+    scheduler: str | None,
+    cluster: str | None,
+    time_limit: float | None,
+    on_built: Callable[[FleetSpec, list[AgentModel], CoordinatorSettings], None] | None,
+    stop_on_signal: bool,
+) -> RunResult:
+    """:func:`run_fleet` once its run folder is claimed: everything but the claim and the outputs."""
     if resume and checkpoint_dir is None:
-        raise ValueError("'resume' needs the run folder holding the checkpoint ('checkpoint_dir')")
-    settings = spec.coordinator
-    if method is not None:
-        settings = replace(settings, method=resolve_method(method))
-    check_method_options(spec, settings.method)
+        raise ValueError("'resume' needs the run folder holding the checkpoint ('out' or 'checkpoint_dir')")
+    # A user method is imported once, before a checkpoint that names it (and may hold its state) is read.
+    resolved = resolve_method(method) if method is not None else None
+    if spec is None:
+        if not resume or checkpoint_dir is None:
+            raise ValueError("give the fleet ('spec'), or resume a run from its checkpoint ('resume')")
+        spec = RunBook.saved_spec(checkpoint_dir)
+    settings = spec.coordinator if resolved is None else replace(spec.coordinator, method=resolved)
     book = None
-    if checkpoint_dir is not None:
-        from negotiate.output.checkpoint import RunBook
+    if checkpoint_dir is not None and resume:
+        # A checkpoint of another fleet or method is refused before anything else is checked or built.
+        book = RunBook(checkpoint_dir, spec, settings.method, resume=True)
+    check_method_options(spec, settings.method)
+    if checkpoint_dir is not None and book is None:
+        book = RunBook(checkpoint_dir, spec, settings.method)  # a fleet it cannot save is refused here
+    own = executor is None
+    in_process = own and workers is None and scheduler is None and cluster is None
+    if time_limit is not None and not own:
+        warnings.warn("'time_limit' is ignored with an executor of your own: give it to that executor",
+                      stacklevel=3)  # fmt: skip
+    elif time_limit is not None and in_process and agents is not None:
+        warnings.warn("'time_limit' in process applies to agents built here: build yours with "
+                      "solver_options={'ipopt.max_wall_time': seconds}", stacklevel=3)  # fmt: skip
 
-        book = RunBook(checkpoint_dir, spec, settings.method, resume=resume)  # checked before building
-    if agents is None:
-        from negotiate.fleet.build import build_agents
+    # A signal is acted on after the current round, once its checkpoint is written: raising inside a solve
+    # would end it as a failed solve (CasADi turns the interrupt into a solver status). A second signal
+    # exits at once; the checkpoint on disk is the last complete round either way.
+    stop: list[int] = []
+    made: list[Executor] = []  # the executor this call made, for a second signal to terminate
 
-        agents = build_agents(spec)
-        phases["build"] = time.perf_counter() - t0
-    t1 = time.perf_counter()
-    if executor is not None:
+    def interrupted(signum: int, frame: object) -> None:
+        if stop:
+            for ex in made:  # no worker process may outlive the run
+                with contextlib.suppress(Exception):
+                    ex.terminate()
+            os._exit(130)
+        stop.append(signum)
+        # os.write, not print: the handler may run while a progress bar is writing to stderr.
+        os.write(2, b"negotiate run: stopping after the round in progress; a second signal stops at once\n")
+
+    previous = {s: signal.signal(s, interrupted) for s in (signal.SIGINT, signal.SIGTERM)} if stop_on_signal else {}
+    try:
+        if own:
+            executor = make_executor(spec, workers=workers, scheduler=scheduler, cluster=cluster, time_limit=time_limit)
+            made.append(executor)
+            executor.start()  # remote workers build their agents while this process builds its own
+        if agents is None:
+            limit = {"ipopt.max_wall_time": time_limit} if time_limit is not None and in_process else None
+            agents = build.build_agents(spec, solver_options=limit)
+        phases = {"build": time.perf_counter() - t0}  # reading, claiming, starting the workers, building
+        if on_built is not None:
+            on_built(spec, agents, settings)
+        t1 = time.perf_counter()
         free_results = executor(agents, [a.free_optimum for a in agents], [None] * len(agents))
         free = np.array([r.value for r in free_results])
-    else:
-        free = np.array([try_solve(a.problem, a.free_optimum).value for a in agents])
-    t2 = time.perf_counter()
-    phases["free_optima"] = t2 - t1
+        t2 = time.perf_counter()
+        phases["free_optima"] = t2 - t1
+        best, trials = _search(spec, agents, settings, executor, progress, book, stop if stop_on_signal else None)
+        t3 = time.perf_counter()
+        phases["order_search"] = t3 - t2
+        central = None
+        if verify:
+            central = solve_centralized(
+                agents,
+                best.evaluation.feasible,
+                start=[rep.result.x for rep in best.evaluation.reports],
+                start_P=best.P,
+            )
+            phases["verify"] = time.perf_counter() - t3
+    finally:
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+        for ex in made:
+            ex.close()
+    return RunResult(
+        spec=spec,
+        coordination=best,
+        schedule=tuple(_schedule(agents, best, free, spec)),
+        free_values=free,
+        order_trials=tuple(trials),
+        centralized=central,
+        wall_time=sum(phases.values()),
+        agents=tuple(agents),
+        phase_times=phases,
+    )
+
+
+def _search(
+    spec: FleetSpec,
+    agents: list[AgentModel],
+    settings: CoordinatorSettings,
+    executor: Any,
+    progress: Callable[[RoundRecord], None] | None,
+    book: RunBook | None,
+    stop: list[int] | None,
+) -> tuple[CoordinationResult, list[OrderTrial]]:
+    """Choose the orders and coordinate each candidate (the order search), checkpointed through ``book``;
+    ``stop`` non-empty (a signal came) ends the run with :class:`KeyboardInterrupt` after a round."""
     coordinated = 0  # order trials handed to the coordinator so far
 
     def one(
@@ -221,7 +403,15 @@ def run_fleet(
             done = book.finished(k, orders, agents)
             if done is not None:
                 return done
-        tell = None if progress is None else (lambda rec: progress(replace(rec, trial=trial)))
+        tell = None
+        if progress is not None or stop is not None:
+
+            def tell(rec: RoundRecord) -> None:
+                if stop:
+                    raise KeyboardInterrupt
+                if progress is not None:
+                    progress(replace(rec, trial=trial))
+
         r = coordinate(
             agents, spec.resources, settings, orders=orders, start=start, executor=executor, progress=tell,
             checkpoint=book.hook(k, orders) if book is not None else None,
@@ -234,28 +424,7 @@ def run_fleet(
 
     best, _orders, trials = search_orders(agents, spec.resources, settings.order, one)
     assert isinstance(best, CoordinationResult)
-    t3 = time.perf_counter()
-    phases["order_search"] = t3 - t2
-    central = None
-    if verify:
-        central = solve_centralized(
-            agents,
-            best.evaluation.feasible,
-            start=[rep.result.x for rep in best.evaluation.reports],
-            start_P=best.P,
-        )
-        phases["verify"] = time.perf_counter() - t3
-    return RunResult(
-        spec=spec,
-        coordination=best,
-        schedule=tuple(_schedule(agents, best, free, spec)),
-        free_values=free,
-        order_trials=tuple(trials),
-        centralized=central,
-        wall_time=sum(phases.values()),
-        agents=tuple(agents),
-        phase_times=phases,
-    )
+    return best, list(trials)
 
 
 def _clean(v: Any) -> Any:

@@ -260,20 +260,21 @@ class TestRunFolder:
         out = tmp_path / "run"
         assert main(["run", str(fleets[1]), "--out", str(out), "--method", "nowhere.py:Nothing", "--quiet"]) == 1
         assert not out.exists()
-        import negotiate.run
+        import negotiate.fleet.build
 
         def interrupt(*a, **k):
             raise KeyboardInterrupt
 
-        monkeypatch.setattr(negotiate.run, "run_fleet", interrupt)
+        # Building the agents happens inside the claimed folder (negotiate.run.run_fleet claims it first).
+        monkeypatch.setattr(negotiate.fleet.build, "build_agents", interrupt)
         assert main(["run", str(fleets[1]), "--out", str(out), "--quiet"]) == 130
         assert not out.exists()
 
         def broken(*a, **k):
-            (Path(k["checkpoint_dir"]) / "partial.txt").write_text("x")
+            (out / "partial.txt").write_text("x")
             raise RuntimeError("a bug")
 
-        monkeypatch.setattr(negotiate.run, "run_fleet", broken)
+        monkeypatch.setattr(negotiate.fleet.build, "build_agents", broken)
         with pytest.raises(RuntimeError, match="a bug"):
             main(["run", str(fleets[1]), "--out", str(out), "--quiet"])
         assert os.listdir(out) == ["partial.txt"]

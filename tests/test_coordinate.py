@@ -15,8 +15,9 @@ from negotiate.coordination.centralized import solve_centralized
 from negotiate.coordination.engine import coordinate
 from negotiate.coordination.methods import Evaluation, Method, Proposal, register_method
 from negotiate.coordination.orders import search_orders
+from negotiate.errors import DeadlockError, InfeasibleOrdersError
 from negotiate.fleet.spec import CapacityResource, CoordinatorSettings, ExclusiveResource
-from negotiate.resources.coupling import DeadlockError, InfeasibleOrdersError, build_feasible_set, check_orders
+from negotiate.resources.coupling import build_feasible_set, check_orders
 
 METHODS = ["bundle", "gradient", "newton"]
 

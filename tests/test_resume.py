@@ -22,9 +22,10 @@ import pytest
 from fleets import TWO_TRUCKS
 
 from negotiate.cli import main
+from negotiate.errors import CheckpointError
 from negotiate.fleet.build import build_agents
 from negotiate.fleet.parse import load_fleet
-from negotiate.output.checkpoint import FILENAME, FORMAT_VERSION, CheckpointError, fleet_digest, read_checkpoint
+from negotiate.output.checkpoint import FILENAME, FORMAT_VERSION, fleet_digest, read_checkpoint
 from negotiate.run import run_fleet
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"

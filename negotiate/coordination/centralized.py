@@ -18,6 +18,7 @@ from __future__ import annotations
 import time
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import casadi as ca
 import numpy as np
@@ -53,7 +54,7 @@ def solve_centralized(
     start: Sequence[np.ndarray] | None = None,
     start_P: np.ndarray | None = None,
     max_wall_time: float | None = None,
-    solver_options: dict | None = None,
+    solver_options: dict[str, Any] | None = None,
 ) -> CentralizedResult:
     """Solve the monolithic NLP (see the module docstring).
 
@@ -92,7 +93,7 @@ def solve_centralized(
     coupling = ca.mtimes(ca.DM(feasible.A), P) if feasible.A.shape[0] else ca.MX(0, 1)
     z = ca.vertcat(*xs, P)
     nlp = {"x": z, "f": ca.sum1(ca.vertcat(*fs)), "g": ca.vertcat(*gs, coupling)}
-    options = {"ipopt.print_level": 0, "ipopt.sb": "yes", "print_time": False, "expand": True}
+    options: dict[str, Any] = {"ipopt.print_level": 0, "ipopt.sb": "yes", "print_time": False, "expand": True}
     if max_wall_time is not None:
         options["ipopt.max_wall_time"] = float(max_wall_time)
     options.update(solver_options or {})
@@ -115,12 +116,12 @@ def solve_centralized(
     zopt = np.asarray(out["z"] if "z" in out else out["x"]).ravel()
     n_x = sum(a.problem.n_x for a in agents)
     P_opt = zopt[n_x:]
-    values = []
+    values: list[float] = []
     off = 0
     for a in agents:
-        xi = zopt[off : off + a.problem.n_x]
+        x_opt = zopt[off : off + a.problem.n_x]
         off += a.problem.n_x
-        values.append(float(a.problem.objective(xi, P_opt[lay.slice(len(values))])))
+        values.append(float(a.problem.objective(x_opt, P_opt[lay.slice(len(values))])))
     return CentralizedResult(
         total=float(out["f"]),
         P=P_opt,

@@ -9,8 +9,8 @@ brings no improvement. ``exhaustive`` tries every order of each resource with at
 whose orders form a cycle with the agents' routes (a deadlock) or whose coupling polyhedron is empty
 (:func:`negotiate.resources.coupling.check_orders`: a linear program, no agent solve) is recorded as an infeasible
 trial with the reason and skipped, never handed to the solver. When the first order itself is infeasible
-the search raises (:class:`~negotiate.resources.coupling.DeadlockError` or
-:class:`~negotiate.resources.coupling.InfeasibleOrdersError`), since there is nothing to start from.
+the search raises (:class:`~negotiate.errors.DeadlockError` or
+:class:`~negotiate.errors.InfeasibleOrdersError`), since there is nothing to start from.
 """
 
 from __future__ import annotations
@@ -22,8 +22,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from negotiate.core.agent import AgentModel
+from negotiate.errors import DeadlockError, InfeasibleOrdersError
 from negotiate.fleet.spec import Resource
-from negotiate.resources.coupling import DeadlockError, InfeasibleOrdersError, check_orders, fcfs_orders
+from negotiate.resources.coupling import check_orders, fcfs_orders
 
 __all__ = ["EXHAUSTIVE_LIMIT", "OrderTrial", "search_orders"]
 

@@ -212,7 +212,8 @@ class Point:
         return np.vstack([self.J, np.eye(self.x.size)])
 
     def grad_lagrangian(self) -> np.ndarray:
-        return self.grad_f + self.J.T @ self.lam_g + self.lam_x
+        grad: np.ndarray = self.grad_f + self.J.T @ self.lam_g + self.lam_x
+        return grad
 
 
 @dataclass(frozen=True)
@@ -309,12 +310,14 @@ def _solve_kkt(H: np.ndarray, C: np.ndarray, rhs: np.ndarray) -> np.ndarray:
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("error", scipy.linalg.LinAlgWarning)  # singular: take least squares below
-            sol = scipy.linalg.lu_solve(scipy.linalg.lu_factor(K, check_finite=False), rhs, check_finite=False)
+            sol: np.ndarray = scipy.linalg.lu_solve(scipy.linalg.lu_factor(K, check_finite=False), rhs,
+                                                    check_finite=False)  # fmt: skip
         if np.all(np.isfinite(sol)) and np.allclose(K @ sol, rhs, rtol=1e-8, atol=1e-10 * max(1.0, np.abs(rhs).max())):
             return sol
     except (np.linalg.LinAlgError, ValueError, scipy.linalg.LinAlgWarning):
         pass
-    return np.linalg.lstsq(K, rhs, rcond=None)[0]
+    least: np.ndarray = np.linalg.lstsq(K, rhs, rcond=None)[0]
+    return least
 
 
 # --------------------------------------------------------------------------------------------------------

@@ -184,10 +184,12 @@ class _Evaluator:
         self._ins = [np.zeros(fn.nnz_in(i)) for i in range(fn.n_in())]
         self._nz = [np.zeros(fn.nnz_out(i)) for i in range(fn.n_out())]
         self._buf, self._trigger = fn.buffer()
+        # CasADi's stub lists the buffer's byte size as an argument; the wrapper takes it from the buffer itself
+        # (and refuses a third argument).
         for i, a in enumerate(self._ins):
-            self._buf.set_arg(i, memoryview(a))
+            self._buf.set_arg(i, a.data)  # type: ignore[call-arg]
         for i, o in enumerate(self._nz):
-            self._buf.set_res(i, memoryview(o))
+            self._buf.set_res(i, o.data)  # type: ignore[call-arg]
         self._layout = []
         for i in range(fn.n_out()):
             sp = fn.sparsity_out(i)

@@ -20,6 +20,7 @@ import os
 import sys
 from collections.abc import Iterator
 from dataclasses import dataclass
+from typing import Any
 
 import casadi as ca
 import numpy as np
@@ -30,13 +31,13 @@ __all__ = ["QPResult", "solve_qp"]
 
 # Tolerances well below what the callers test (PIQP's defaults are 1e-8 absolute / 1e-9 relative); DAQP's
 # default primal tolerance is loose (violations of 1e-4 were seen on bundle masters).
-_OPTIONS = {
+_OPTIONS: dict[str, dict[str, Any]] = {
     "piqp": {"error_on_fail": False, "piqp": {"eps_abs": 1e-10, "eps_rel": 1e-12, "verbose": False}},
     "daqp": {"error_on_fail": False, "daqp": {"primal_tol": 1e-10}},
     "qpoases": {"error_on_fail": False, "printLevel": "none"},
 }
 _DENSE_LIMIT = 4_000_000  # entries of a dense A beyond which the dense fallbacks are not tried
-_CACHE: dict[tuple, ca.Function] = {}
+_CACHE: dict[tuple[str, str, str], ca.Function] = {}
 
 
 @dataclass(frozen=True)
@@ -196,7 +197,7 @@ def _polish(res: QPResult, H: sp.csr_array, g: np.ndarray, A: sp.csr_array, lba:
 def _attempt(plugin: str, Hc: ca.DM, Ac: ca.DM, H: sp.csr_array, g: np.ndarray, A: sp.csr_array, lba: np.ndarray,
              uba: np.ndarray, lbz: np.ndarray, ubz: np.ndarray, z0: np.ndarray | None) -> QPResult:  # fmt: skip
     fn = _solver(Hc, Ac, plugin)
-    args = {"h": Hc, "g": g, "a": Ac, "lba": lba, "uba": uba, "lbx": lbz, "ubx": ubz}
+    args: dict[str, Any] = {"h": Hc, "g": g, "a": Ac, "lba": lba, "uba": uba, "lbx": lbz, "ubx": ubz}
     if z0 is not None:
         args["x0"] = z0
     out = fn(**args)

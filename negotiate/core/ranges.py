@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import numbers
 from dataclasses import dataclass
+from typing import cast
 
 __all__ = ["Range"]
 
@@ -33,8 +34,11 @@ class Range:
     def __contains__(self, value: object) -> bool:
         if isinstance(value, bool) or not isinstance(value, numbers.Real):
             return False
-        above = value > self.lo if self.lo_open else value >= self.lo
-        below = value < self.hi if self.hi_open else value <= self.hi
+        # Every Real compares with a float (an int of any size exactly); the stubs of ``numbers`` declare no
+        # comparison, so the checker is told what the runtime does.
+        v = cast(float, value)
+        above = v > self.lo if self.lo_open else v >= self.lo
+        below = v < self.hi if self.hi_open else v <= self.hi
         return bool(above and below)  # False for NaN
 
     @property

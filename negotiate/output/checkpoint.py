@@ -1,16 +1,16 @@
 """Checkpoints: a run writes its state into its run folder after every round and can resume from it.
 
-``run_fleet(spec, checkpoint_dir=DIR)`` (and ``negotiate run --out DIR``) keeps the file ``DIR/checkpoint.bin``
-up to date: after the start and after every coordination round it holds the fleet, the method's name, the
-order trials finished so far (their orders, totals and schedules; the full result of the best one) and, for
-the trial in progress, the engine's :class:`~negotiate.coordination.engine.EngineState` -- the current point, the
-method's state (its bundles, metric, step sizes), the round count, the history and every agent's warm-start
-data (``x``, ``lam_g``, ``lam_x`` and the certificate of its last converged solve). The file is written to a
-new temporary file in the same folder, flushed to the disk and renamed over the old one
-(:func:`os.replace`, atomic on POSIX and Windows), so an interruption at any moment leaves the last
-complete round on disk.
+``run_fleet(spec, out=DIR)`` or ``run_fleet(spec, checkpoint_dir=DIR)`` (and ``negotiate run --out DIR``)
+keeps the file ``DIR/checkpoint.bin`` up to date: after the start and after every coordination round it holds
+the fleet, the method's name, the order trials finished so far (their orders, totals and schedules; the full
+result of the best one) and, for the trial in progress, the engine's
+:class:`~negotiate.coordination.engine.EngineState` -- the current point, the method's state (its bundles,
+metric, step sizes), the round count, the history and every agent's warm-start data (``x``, ``lam_g``,
+``lam_x`` and the certificate of its last converged solve). The file is written to a new temporary file in the
+same folder, flushed to the disk and renamed over the old one (:func:`os.replace`, atomic on POSIX and
+Windows), so an interruption at any moment leaves the last complete round on disk.
 
-``run_fleet(spec, checkpoint_dir=DIR, resume=True)`` (``negotiate run --resume DIR``) reads it back, skips
+``run_fleet(spec, out=DIR, resume=True)`` (``negotiate run --resume DIR``) reads it back, skips
 the finished order trials, continues the trial in progress from its last complete round and ends at the
 same schedule as the uninterrupted run: the solves are deterministic, and the method and warm starts are
 restored exactly.
@@ -63,7 +63,7 @@ import re
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 
@@ -76,6 +76,7 @@ from negotiate.core.guard import GuardReport
 from negotiate.core.kkt import Certificate, ConstraintRef
 from negotiate.core.nlp import LocalResult
 from negotiate.core.status import CoordinationStatus, Status
+from negotiate.errors import CheckpointError
 from negotiate.fleet.spec import AgentSpec, CoordinatorSettings, FleetSpec
 from negotiate.resources import KINDS
 from negotiate.resources.coupling import FeasibleSet, Layout
@@ -84,7 +85,6 @@ __all__ = [
     "FILENAME",
     "FORMAT_VERSION",
     "RECORDS",
-    "CheckpointError",
     "RunBook",
     "RunState",
     "TrialRecord",
@@ -96,13 +96,6 @@ __all__ = [
 MAGIC = b"negotiate-checkpoint\n"
 FORMAT_VERSION = 2
 FILENAME = "checkpoint.bin"
-
-
-class CheckpointError(ValueError):
-    """A checkpoint that cannot be used: missing, of another fleet or method, another version, or damaged.
-
-    The message names the file and says what was expected and what was found.
-    """
 
 
 class _Unsavable(CheckpointError):
@@ -243,7 +236,7 @@ class _Encoder:
             return ref
         if a.dtype.kind not in _DTYPE_KINDS:
             raise _Unsavable(f"{where} is an array of {a.dtype}, which a checkpoint cannot hold")
-        order = "F" if a.flags.f_contiguous and not a.flags.c_contiguous else "C"
+        order: Literal["F", "C"] = "F" if a.flags.f_contiguous and not a.flags.c_contiguous else "C"
         dt = a.dtype.str
         offset = self.sizes.get(dt, 0)
         self.chunks.setdefault(dt, []).append(a.ravel(order=order))
@@ -374,7 +367,8 @@ def _encode(state: RunState) -> tuple[bytes, bytes]:
     names = sorted(flat)
     text = json.dumps({"tree": tree, "arrays": names}, separators=(",", ":"), allow_nan=True)
     buf = io.BytesIO()
-    np.savez(buf, **{f"a{i}": flat[dt] for i, dt in enumerate(names)})
+    members: dict[str, Any] = {f"a{i}": flat[dt] for i, dt in enumerate(names)}  # np.savez's keywords: arrays
+    np.savez(buf, **members)
     return text.encode("utf-8"), buf.getvalue()
 
 

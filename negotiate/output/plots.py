@@ -12,7 +12,7 @@ from __future__ import annotations
 import functools
 import io
 from collections.abc import Callable, Mapping, Sequence
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import matplotlib
 
@@ -20,9 +20,15 @@ matplotlib.use("Agg")  # no display: files only
 
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
+from cycler import cycler  # noqa: E402  (a dependency of matplotlib, which re-exports it)
+from matplotlib.artist import Artist  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
+from matplotlib.lines import Line2D  # noqa: E402
 from matplotlib.patches import Patch  # noqa: E402
 from matplotlib.ticker import EngFormatter, FuncFormatter, NullFormatter, ScalarFormatter  # noqa: E402
+
+if TYPE_CHECKING:
+    from matplotlib.typing import RcKeyType
 
 __all__ = [
     "PALETTE",
@@ -44,7 +50,7 @@ MAX_LEGEND_USERS = 12
 """Share charts with more users have no legend of users."""
 GRID = "#DDDDDD"
 
-_STYLE = {
+_STYLE: dict[RcKeyType, Any] = {
     "figure.facecolor": "white",
     "axes.facecolor": "white",
     "axes.edgecolor": "#888888",
@@ -63,7 +69,7 @@ _STYLE = {
     "font.size": 9.5,
     "legend.frameon": False,
     "legend.fontsize": 8.5,
-    "axes.prop_cycle": matplotlib.cycler(color=PALETTE[:7]),
+    "axes.prop_cycle": cycler(color=PALETTE[:7]),
 }
 
 
@@ -327,9 +333,11 @@ def trajectory_chart(agent: str, series: Mapping[str, np.ndarray], slots: Sequen
         ax.set_xlabel("time (s)")
         ax.set_ylabel(f"{name} ({unit})" if unit else name)
         ax.set_title(title)
-    handles = [Patch(facecolor=colour(1 + i), alpha=0.4, label=f"slot on {r}") for i, r in enumerate(resources)]
+    handles: list[Artist] = [
+        Patch(facecolor=colour(1 + i), alpha=0.4, label=f"slot on {r}") for i, r in enumerate(resources)
+    ]
     if shares:
-        handles.append(plt.Line2D([], [], color=PALETTE[3], linewidth=5, alpha=0.35, label="allocated share"))
+        handles.append(Line2D([], [], color=PALETTE[3], linewidth=5, alpha=0.35, label="allocated share"))
     if handles:
         fig.legend(handles=handles, loc="outside lower center", ncols=min(4, len(handles)))
     fig.suptitle(agent, fontsize=11, fontweight="bold", x=0.01, ha="left")
@@ -401,16 +409,16 @@ def sweep_chart(sweep: Any, max_multipliers: int = 8) -> Figure:
             for s0, s1 in spans:
                 if s1 > s0:
                     a.axvspan(s0, s1, facecolor="#BBBBBB", alpha=0.35, hatch="xx", edgecolor="#888888", linewidth=0)
-    handles = []
+    handles: list[Artist] = []
     if sweep.changes:
         handles.append(Patch(facecolor=PALETTE[4], alpha=0.4, label="active set changes in this interval"))
     else:
         handles.append(Patch(facecolor="none", edgecolor="none", label="the active set is the same at every point"))
     if flag.any():
-        handles.append(plt.Line2D([], [], color=PALETTE[3], marker="o", mfc="none", mew=1.4, linestyle="none",
+        handles.append(Line2D([], [], color=PALETTE[3], marker="o", mfc="none", mew=1.4, linestyle="none",
                                   label="weakly active constraint or nonsmooth certificate"))  # fmt: skip
     if (~ok).any():
-        handles.append(plt.Line2D([], [], color=PALETTE[7], marker="x", linestyle="none", label="solve failed"))
+        handles.append(Line2D([], [], color=PALETTE[7], marker="x", linestyle="none", label="solve failed"))
     if outside.any():
         label = f"outside the reachable window ({int(outside.sum())} of {x.size} points)"
         handles.append(Patch(facecolor="#BBBBBB", alpha=0.5, hatch="xx", edgecolor="#888888", label=label))
@@ -431,17 +439,17 @@ def compare_chart(rows: Sequence[Any], histories: Mapping[str, Sequence[Any]], r
     fig, axes = _figure(9.0, 3.4, ncols=2)
     ax = axes[0, 0]
     floor = 1e-12
-    use_gap = reference is not None and np.isfinite(reference) and reference != 0
+    gap_to = reference if reference is not None and np.isfinite(reference) and reference != 0 else None
     for i, (name, hist) in enumerate(histories.items()):
         s = np.array([h.agent_solves for h in hist])
         b = np.array([h.best_total for h in hist], dtype=float)
         ok = np.isfinite(b)
-        if use_gap:
-            y = np.maximum((b - reference) / abs(reference), floor)
+        if gap_to is not None:
+            y = np.maximum((b - gap_to) / abs(gap_to), floor)
             ax.semilogy(s[ok], y[ok], "o-", color=colour(i), markersize=3.5, linewidth=1.4, label=name)
         else:
             ax.plot(s[ok], b[ok], "o-", color=colour(i), markersize=3.5, linewidth=1.4, label=name)
-    if use_gap:
+    if gap_to is not None:
         ax.set_ylabel("relative gap to centralized")
         ax.set_title("gap per agent solve (log scale)")
     else:

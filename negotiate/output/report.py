@@ -20,8 +20,9 @@ from pathlib import Path
 import numpy as np
 
 from negotiate.core.files import write_atomic
+from negotiate.errors import RunFolderError
 from negotiate.output import plots
-from negotiate.output.results import PriceRow, RunFiles, RunFolderError, load_run
+from negotiate.output.results import PriceRow, RunFiles, load_run
 from negotiate.resources import KINDS
 
 __all__ = ["CAUTION", "MAX_TRAJECTORIES", "render_report", "write_report"]

@@ -31,6 +31,7 @@ from negotiate.coordination.engine import CoordinationResult, RoundRecord
 from negotiate.coordination.orders import OrderTrial
 from negotiate.core.agent import AgentModel
 from negotiate.core.files import write_atomic
+from negotiate.errors import RunFolderError
 from negotiate.fleet.spec import FleetSpec
 from negotiate.resources import KINDS, Resource
 
@@ -44,7 +45,6 @@ __all__ = [
     "PriceRow",
     "ResourceRow",
     "RunFiles",
-    "RunFolderError",
     "RunResult",
     "ScheduleRow",
     "load_run",
@@ -256,8 +256,11 @@ class RunResult:
     wall_time: float
     agents: tuple[AgentModel, ...] = field(repr=False, default=())
     phase_times: dict[str, float] = field(default_factory=dict)
-    """Seconds spent in each phase: ``build`` (the agents), ``free_optima``, ``order_search`` (every
-    coordination of every order tried) and, with ``verify``, ``verify``; they add up to ``wall_time``."""
+    """Seconds spent in each phase: ``build`` (reading the fleet, claiming the folder, starting the workers,
+    building the agents), ``free_optima``, ``order_search`` (every coordination of every order tried) and,
+    with ``verify``, ``verify``; they add up to ``wall_time``."""
+    files: tuple[Path, ...] = field(repr=False, default=())
+    """The files written into the run folder (``run_fleet(..., out=DIR)``), empty when none were written."""
 
     @property
     def total(self) -> float:
@@ -380,17 +383,6 @@ class RunFiles:
     def capacity_names(self) -> list[str]:
         """Names of the resources drawn as shares per block (capacity ones and the like)."""
         return list(dict.fromkeys(r.resource for r in self.charted("shares")))
-
-
-class RunFolderError(ValueError):
-    """A run folder that cannot be used, or a file in it that cannot be read.
-
-    Raised for a folder that is missing a file the report needs, a file that is damaged (not UTF-8, not
-    JSON or CSV, missing columns, a cell that is not a number, a path that leads outside the folder), and by
-    :func:`negotiate.run.claim_run_folder` for a folder in use by another run, a non-empty folder that is
-    not a run folder, or a path that cannot be written. The message names the folder or file, what was
-    expected and what was found, and what to do.
-    """
 
 
 AGAIN = "write the folder again with 'negotiate run FLEET --out DIR' (or 'negotiate run --resume DIR')"

@@ -35,6 +35,7 @@ from scipy.optimize import linprog
 
 from negotiate.core.agent import AgentModel
 from negotiate.core.qp import solve_qp
+from negotiate.errors import DeadlockError, InfeasibleOrdersError
 from negotiate.resources import Resource
 from negotiate.resources.base import param_index
 
@@ -48,19 +49,6 @@ __all__ = [
     "fcfs_orders",
     "precedence_graph",
 ]
-
-
-class DeadlockError(ValueError):
-    """A set of orders on exclusive resources that no schedule can meet (a cycle of precedences)."""
-
-
-class InfeasibleOrdersError(ValueError):
-    """Orders (without a cycle) whose coupling polyhedron is empty: no schedule meets the gaps, capacity
-    limits and every agent's reachable set at once. ``rows`` names the rules that conflict."""
-
-    def __init__(self, message: str, rows: Sequence[str] = ()) -> None:
-        super().__init__(message)
-        self.rows = tuple(rows)
 
 
 @dataclass(frozen=True)

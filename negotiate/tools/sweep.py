@@ -139,7 +139,8 @@ def sweep_problem(
     n = values.size
     value = np.full(n, np.nan)
     grad = np.full((n, problem.n_p), np.nan)
-    status, verdict, active, weak = [], [], [], []
+    status, active, weak = [], [], []
+    verdict: list[str] = []  # a certificate's verdict, or "" where the solve failed
     keys: list[tuple[str, int]] = []  # (kind, index) of every row active somewhere, in order of appearance
     sides: list[frozenset[tuple[str, int, str]] | None] = []
     for k, r in enumerate(results):

@@ -202,8 +202,12 @@ def method_options(cls: type[Method], given: Mapping[str, Any]) -> dict[str, Any
         if f.name in given and f.name not in refused:
             value = given[f.name]
             out[f.name] = float(value) if _option_type(f) is float else value
+        elif f.default is not MISSING:
+            out[f.name] = f.default
+        elif f.default_factory is not MISSING:
+            out[f.name] = f.default_factory()
         else:
-            out[f.name] = f.default if f.default is not MISSING else f.default_factory()  # type: ignore[misc]
+            raise TypeError(f"option {f.name!r} of {cls.__name__}.Options has no default: give it one")
     return out
 
 

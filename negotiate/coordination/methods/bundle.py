@@ -157,7 +157,8 @@ class ProximalBundle(Method):
         # a small strictly convex term eps/2 (rho/C)^2 keeps the QP well conditioned without biasing rho.
         # Every cut touches one agent's parameters and its rho: the rows are assembled sparse.
         C = max(1.0, abs(c.total))
-        ri, ci, vals, ub, models = [], [], [], [], []
+        ri, ci, vals, models = [], [], [], []
+        ub: list[float] = []
         for i in range(N):
             sl = self.lay.slice(i)
             G, a = self.shifted(i, c.P[sl], c.reports[i].value, gamma)
@@ -235,6 +236,7 @@ class ProximalBundle(Method):
         if P is None:
             return Proposal(None, float("inf"), False, f"bundle master QP failed: {why}")
         c = self.center
+        assert c is not None  # the first evaluation made the centre
         self.delta = max(c.total - model, 0.0)
         # delta alone shrinks when kappa grows (short steps promise little); the decrease a step with kappa = 1
         # would promise, kappa^2 d.M.d / 2 for the step d taken, does not. Both must be small.

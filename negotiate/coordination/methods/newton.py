@@ -46,7 +46,7 @@ class ProjectedNewton(ProjectedGradient):
         B = np.zeros((lay.n, lay.n))
         for i, (w, rep) in enumerate(zip(ev.weights, ev.reports, strict=True)):
             sl = lay.slice(i)
-            Hu = w * rep.hessian * np.outer(s[sl], s[sl])  # type: ignore[operator]
+            Hu = w * rep.hessian * np.outer(s[sl], s[sl])
             lam, Q = np.linalg.eigh(0.5 * (Hu + Hu.T))
             floor = max(1e-6 * float(np.max(np.abs(lam), initial=0.0)), 1e-6 * self.mu0, 1e-300)
             B[sl, sl] = (Q * np.maximum(lam, floor)) @ Q.T
