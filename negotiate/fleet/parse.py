@@ -314,14 +314,14 @@ def _resource_grid(
                 f"{describe(t.raw)} ({len(t.value)} numbers)",
             )
             ok = False
-    unit = getattr(res, "unit", None)
-    if family.resource_unit is not None and unit != family.resource_unit:
+    res_unit = getattr(res, "unit", None)
+    if family.resource_unit is not None and res_unit != family.resource_unit:
         col.add(
             values[RESOURCE_KEY].table,
             RESOURCE_KEY,
             f'a {family.resource_kind} resource with unit "{family.resource_unit}" (the {family.name} model '
             f"shares {family.shares})",
-            f"{describe(res.name)} (unit {describe(unit)})",
+            f"{describe(res.name)} (unit {describe(res_unit)})",
         )
         ok = False
     return ok
@@ -496,7 +496,7 @@ def _parse_resources(col: _Collector, table: dict[str, Any] | None) -> dict[str,
             continue
         conv.pop("kind")
         try:
-            out[name] = KINDS[kind](name=name, **conv)
+            out[name] = KINDS[kind](name=name, **conv)  # type: ignore[call-arg]  # (every kind's record has a name)
         except FieldError as exc:
             exp = _phrase(exc.expected, next(k.unit for k in keys if k.name == exc.key))
             # A list is named by the record's own words (its bad entry or its length), not in full.

@@ -291,8 +291,8 @@ class _Decoder:
         if "$c" in node:
             cls = _record_type(node["$c"]) if type(node["$c"]) is str else None
             if cls is None:
-                known = [*RECORDS, *(c.__name__ for c in family_records())]
-                raise ValueError(f"unknown record type {node['$c']!r} (expected one of {', '.join(known)})")
+                names = [*RECORDS, *(c.__name__ for c in family_records())]
+                raise ValueError(f"unknown record type {node['$c']!r} (expected one of {', '.join(names)})")
             fields = node["f"]
             if type(fields) is not dict:
                 raise TypeError(f"fields of {node['$c']} are not a JSON object")

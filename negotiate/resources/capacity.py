@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, ClassVar
 
 import numpy as np
 
@@ -49,7 +49,7 @@ class CapacityResource(ResourceKind):
 
     kind = "capacity"
     about = "A resource shared by amount in time blocks."
-    keys = (
+    keys: ClassVar[tuple[Key, ...]] = (
         Key("limits", "numbers", "W", "limit of the summed shares in each time block; its length is the number "
             "of blocks", allowed=f"each {BLOCK_LIMIT.interval}; 1 to {MAX_BLOCKS} entries", required=True),
         Key("start", "number", "s", "start of the first block", allowed=TIME.interval),

@@ -210,7 +210,7 @@ class FeasibleSet:
         m, n = self.A.shape
         lo, hi = self.lower / s, self.upper / s
         if np.any(lo > hi):
-            return [f"{self._param_name(j)}: lower bound {self.lower[j]:.6g} > upper bound {self.upper[j]:.6g}"
+            return [f"{self._param_name(int(j))}: lower bound {self.lower[j]:.6g} > upper bound {self.upper[j]:.6g}"
                     for j in np.flatnonzero(lo > hi)]  # fmt: skip
         if m == 0:
             return None
@@ -227,9 +227,9 @@ class FeasibleSet:
             return None
         rows = [self.labels[k] for k in np.flatnonzero(np.abs(res.ineqlin.marginals) > 1e-9)]
         for j in np.flatnonzero(np.abs(res.lower.marginals[:n]) > 1e-9):
-            rows.append(f"{self._param_name(j)} >= {self.lower[j]:.6g} (reachable window)")
+            rows.append(f"{self._param_name(int(j))} >= {self.lower[j]:.6g} (reachable window)")
         for j in np.flatnonzero(np.abs(res.upper.marginals[:n]) > 1e-9):
-            rows.append(f"{self._param_name(j)} <= {self.upper[j]:.6g} (reachable window)")
+            rows.append(f"{self._param_name(int(j))} <= {self.upper[j]:.6g} (reachable window)")
         return rows
 
     def _param_name(self, j: int) -> str:
@@ -294,13 +294,13 @@ def build_feasible_set(
             rows.append(r)
             rhs.append(float(a.reachable.b[k]))
             labels.append(f"{a.name}: {_inequality(a.reachable.A[k], a.reachable.b[k], a.param_names)} (reachable set)")
-        for res in _slots(a):
+        for zone in _slots(a):
             r = row()
-            r[off + _slot_index(a, res, "enter")] = 1.0
-            r[off + _slot_index(a, res, "leave")] = -1.0
+            r[off + _slot_index(a, zone, "enter")] = 1.0
+            r[off + _slot_index(a, zone, "leave")] = -1.0
             rows.append(r)
             rhs.append(0.0)
-            labels.append(f"{a.name}: enter <= leave on {res}")
+            labels.append(f"{a.name}: enter <= leave on {zone}")
 
     for res in resources:
         order: list[str] = []

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, ClassVar
 
 from negotiate.errors import check_field
 from negotiate.resources.base import CouplingRow, Key, param_index, register_kind
@@ -39,7 +39,7 @@ class DwellResource(ExclusiveResource):
 
     kind = "dwell"
     about = "An exclusive resource where each user stays at least a minimum time."
-    keys = (
+    keys: ClassVar[tuple[Key, ...]] = (
         *ExclusiveResource.keys,
         Key("min_dwell", "number", "s", "smallest time between a user's entry and its exit",
             allowed=GAP.interval, required=True),

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, ClassVar
 
 import numpy as np
 
@@ -42,7 +42,7 @@ class ExclusiveResource(ResourceKind):
 
     kind = "exclusive"
     about = "A resource used by one agent at a time."
-    keys = (
+    keys: ClassVar[tuple[Key, ...]] = (
         Key("gap", "number", "s", "smallest time between one user's exit and the next user's entry (headway or "
             "changeover)", allowed=GAP.interval),
     )  # fmt: skip

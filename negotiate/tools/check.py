@@ -335,8 +335,7 @@ def _resource_rows(
             rows.append(ResourceRow(r.name, _kind(r), users, None, "unknown (not every user was built)"))
             continue
         if r.needs_order:  # users take turns: do their free-optimum slots overlap?
-            slots = [(u, _slot(models[u], r.name)) for u in users]
-            slots = [(u, s) for u, s in slots if s is not None]
+            slots = [(u, s) for u in users if (s := _slot(models[u], r.name)) is not None]
             gap = float(getattr(r, "gap", 0.0))
             pairs = total = 0
             for i in range(len(slots)):
