@@ -53,6 +53,19 @@ class TestClosedForm:
         np.testing.assert_allclose(res.P, self.expected(), atol=1e-4)
 
 
+    @pytest.mark.parametrize("method", METHODS)
+    def test_a_start_with_zero_gradient_stays(self, method):
+        """An agent above its target (V = 0 there, dV/dp = 0 exactly: the draw constraint is inactive, by hand)
+        under a limit that does not bind: every method stops at the start with no step (a zero gradient once
+        made the first step 1 / 1e-300 and overflowed)."""
+        # A window of 200 kW as a charger's: the scaled step used to overflow only where s^2 / 1e-300 does.
+        agent = quadratic_share_agent("alone", 4e4, 1e-3, upper=2e5)  # starts at its free optimum 40 000.5 W
+        res = coordinate([agent], [CapacityResource("grid", (1.5e5,))], settings(method))
+        assert res.success, res.message
+        assert res.evaluation.reports[0].gradient.tolist() == [0.0]
+        assert res.P.tolist() == [4e4 + 0.5]
+
+
 def three_trucks():
     from agents import VehicleParams, ZoneParams, build_vehicle
 

@@ -120,11 +120,11 @@ class ProjectedGradient(Method):
         g, sub = self.direction(self.x)
         gu = np.max(np.abs(g * self.s))
         if self.alpha is None:
-            self.alpha = self.first_step / max(gu, 1e-300)
+            self.alpha = self.first_step / gu if gu > 0 else self.first_step  # (g = 0: any step stays put)
             self.alpha_sub0 = self.alpha
         scale = max(1.0, abs(self.x.total))
         if sub:
-            _P_ref, pred_ref = self.subgradient_trial(1.0 / max(gu, 1e-300))  # measure at a unit step, as below
+            _P_ref, pred_ref = self.subgradient_trial(1.0 / gu if gu > 0 else 1.0)  # measure at a unit step, as below
             measure = pred_ref / scale
             alpha = float(self.alpha_sub0) / (1 + self.n_sub)  # type: ignore[arg-type]
             Pn, pred = self.subgradient_trial(alpha)
@@ -136,7 +136,7 @@ class ProjectedGradient(Method):
         # The stopping measure uses a step of unit length in scaled units along the largest gradient entry
         # (up to one window width, so the projection QP stays well scaled), so that it does not shrink just
         # because the line search shortened the step (it would "converge" at a kink it cannot resolve).
-        _P_ref, pred_ref = self.trial(g, 1.0 / max(gu, 1e-300))
+        _P_ref, pred_ref = self.trial(g, 1.0 / gu if gu > 0 else 1.0)
         measure = pred_ref / scale
         if self.tolerance_reached(measure):
             return Proposal(None, measure, True, "predicted decrease below tolerance")
