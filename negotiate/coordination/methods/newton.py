@@ -71,8 +71,8 @@ class ProjectedNewton(ProjectedGradient):
             # A Hessian that overstates the curvature (near a kink) promises too little: stop only if the
             # gradient method's step-independent measure agrees, else take a gradient step from here.
             g = self.x.gradient
-            gu = float(np.max(np.abs(g * s)))
-            _P, pred_ref = self.trial(g, 1.0 / gu if gu > 0 else 1.0)  # (g = 0: any step stays put)
+            g_max = float(np.max(np.abs(g * s)))
+            _P, pred_ref = self.trial(g, 1.0 / g_max if g_max > 0 else 1.0)  # (g = 0: any step stays put)
             if self.tolerance_reached(pred_ref / max(1.0, abs(self.x.total))):
                 return Proposal(None, measure, True, "Newton predicted decrease below tolerance")
             return None
