@@ -36,7 +36,7 @@ from negotiate.core.ranges import (  # noqa: F401  (part of this module's vocabu
     SPEED,
     TIME,
     Range,
-    _short,
+    short_bound,
 )
 from negotiate.errors import FieldError, check_field
 
@@ -90,7 +90,7 @@ def _check_ranges(owner: str, obj: Any) -> None:
         value = getattr(obj, f.name)
         count = f.metadata.get("count")
         if count is not None and len(value) not in count:
-            raise FieldError(owner, f.name, f"a list of {_short(count.lo)} to {_short(count.hi)} entries",
+            raise FieldError(owner, f.name, f"a list of {short_bound(count.lo)} to {short_bound(count.hi)} entries",
                              f"{len(value)} entries")  # fmt: skip
         rng = f.metadata.get("range")
         if rng is None or (value is None and f.default is None):

@@ -92,6 +92,23 @@ def test_layers_do_not_skip_upward_through_a_package_init():
             assert all(_layer(m) <= _layer(name) for m in GRAPH.successors(name)), name
 
 
+def _package(module: str) -> str:
+    return module if MODULES[module].name == "__init__.py" else module.rpartition(".")[0]
+
+
+@pytest.mark.parametrize("module", sorted(MODULES))
+def test_private_names_stay_in_their_package(module):
+    """A name with a leading underscore is imported only by modules of the package that defines it."""
+    tree = ast.parse(MODULES[module].read_text())
+    found = []
+    for node in ast.walk(tree):
+        if isinstance(node, ast.ImportFrom) and node.module in MODULES and not node.level:
+            private = [a.name for a in node.names if a.name.startswith("_") and not a.name.startswith("__")]
+            if private and _package(node.module) != _package(module) and node.module != _package(module):
+                found.append(f"{node.module}: {', '.join(private)}")
+    assert found == []
+
+
 def test_no_import_circle():
     assert sorted(sorted(c) for c in nx.simple_cycles(GRAPH)) == []
 

@@ -10,10 +10,10 @@ import numbers
 from dataclasses import dataclass
 from typing import cast
 
-__all__ = ["Range"]
+__all__ = ["Range", "short_bound"]
 
 
-def _short(value: float) -> str:
+def short_bound(value: float) -> str:
     """A bound as it is written in a message or a table: ``0``, ``0.1``, ``200``, ``1e6``, ``1e-6``."""
     text = f"{value:g}"
     return text.replace("e+0", "e").replace("e+", "e").replace("e-0", "e-")
@@ -44,7 +44,8 @@ class Range:
     @property
     def interval(self) -> str:
         """``"(0, 1e6]"``: the interval in the usual notation."""
-        return f"{'(' if self.lo_open else '['}{_short(self.lo)}, {_short(self.hi)}{')' if self.hi_open else ']'}"
+        lo, hi = "(" if self.lo_open else "[", ")" if self.hi_open else "]"
+        return f"{lo}{short_bound(self.lo)}, {short_bound(self.hi)}{hi}"
 
     def __str__(self) -> str:
         return f"within {self.interval}"

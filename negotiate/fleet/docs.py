@@ -8,7 +8,7 @@ import dataclasses
 from pathlib import Path
 
 from agents.families import FAMILIES
-from negotiate.fleet.parse import _kind_keys
+from negotiate.fleet.parse import kind_keys
 from negotiate.fleet.schema import (
     _AGENT_KEYS,
     _COORDINATOR_KEYS,
@@ -78,7 +78,7 @@ def schema_markdown() -> str:
 
     section("`[fleet]`", "Optional.", _FLEET_KEYS)
     for kind, cls in KINDS.items():
-        section(f'`[resources.<name>]` with `kind = "{kind}"`', cls.about, _kind_keys(kind))
+        section(f'`[resources.<name>]` with `kind = "{kind}"`', cls.about, kind_keys(kind))
     section(
         "`[coordinator]`",
         "Optional; `[coordinator.options]` holds options the method declares (docs/methods.md).",

@@ -69,14 +69,14 @@ from negotiate.fleet.spec import (
 )
 from negotiate.resources import KINDS
 
-__all__ = ["load_fleet", "parse_fleet"]
+__all__ = ["kind_keys", "load_fleet", "parse_fleet"]
 
 def _kind_key() -> _Key:
     """The ``kind`` key of a ``[resources.<name>]`` table: one of the kinds registered by now."""
     return _Key("kind", "choice", "-", REQUIRED, "kind of resource", choices=tuple(KINDS))
 
 
-def _kind_keys(name: str) -> tuple[_Key, ...]:
+def kind_keys(name: str) -> tuple[_Key, ...]:
     """The keys of a ``[resources.<name>]`` table of the registered kind ``name``, as the kind declares them."""
     cls = KINDS[name]
     return (_kind_key(), *(_Key(k.name, k.type, k.unit, REQUIRED if k.required else _spec_default(cls, k.name), k.doc,
@@ -357,11 +357,11 @@ def load_fleet(path: str | Path, methods: Sequence[str] = METHODS) -> FleetSpec:
     FleetError
         The file is not valid TOML, or it has mistakes (all of them are listed).
     """
-    return _load(path, methods)[0]
+    return _load(path, methods)
 
 
-def _load(path: str | Path, methods: Sequence[str] = METHODS) -> tuple[FleetSpec, str]:
-    """The spec and the fleet's description from a file (see :func:`load_fleet`)."""
+def _load(path: str | Path, methods: Sequence[str] = METHODS) -> FleetSpec:
+    """The spec from a file (see :func:`load_fleet`)."""
     source = str(path)
     with open(path, "rb") as fh:
         raw = fh.read()
@@ -405,11 +405,11 @@ def parse_fleet(data: Mapping[str, Any], source: str = "<memory>", methods: Sequ
     ``source`` names the origin in messages; ``methods`` as in :func:`load_fleet`. Raises :class:`FleetError`
     listing every mistake found; never another exception for any content of ``data``.
     """
-    return _parse(data, source, methods)[0]
+    return _parse(data, source, methods)
 
 
-def _parse(data: Any, source: str, methods: Sequence[str] = METHODS) -> tuple[FleetSpec, str]:
-    """The spec and the fleet's description; raises FleetError."""
+def _parse(data: Any, source: str, methods: Sequence[str] = METHODS) -> FleetSpec:
+    """The spec; raises FleetError."""
     col = _Collector(source)
     if not isinstance(data, Mapping):
         col.add("", None, "a table of tables (fleet, resources, agents, ...)", describe(data))
@@ -464,7 +464,7 @@ def _parse(data: Any, source: str, methods: Sequence[str] = METHODS) -> tuple[Fl
         source=source,
         description=str(description),
     )
-    return spec, description
+    return spec
 
 
 def _parse_resources(col: _Collector, table: dict[str, Any] | None) -> dict[str, Any]:
@@ -488,7 +488,7 @@ def _parse_resources(col: _Collector, table: dict[str, Any] | None) -> dict[str,
         # (references to it from agents are checked as to the built-in kind it derives from, as _resource_ref does)
         out[name] = _Broken(name, next((c.kind for c in KINDS[kind].__mro__
                                         if c in (ExclusiveResource, CapacityResource)), None))  # fmt: skip
-        keys = _kind_keys(kind)
+        keys = kind_keys(kind)
         conv = _check_table(col, path, t, keys)
         if any(k.name in t and k.name not in conv for k in keys) or any(
             k.default is REQUIRED and k.name not in t for k in keys

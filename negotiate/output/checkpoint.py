@@ -321,10 +321,10 @@ class _Decoder:
         return flat[offset : offset + size].reshape(shape, order=order).copy(order="K")
 
     def _method(self, node: dict[str, Any]) -> Method:
-        from negotiate.coordination.methods import _METHODS
+        from negotiate.coordination.methods import method_class, method_names
 
         name = node["$m"]
-        cls = _METHODS.get(name) if type(name) is str else None
+        cls = method_class(name) if type(name) is str and name in method_names() else None
         if cls is None:
             raise ValueError(
                 f"the trial in progress uses the coordination method {name!r}, which is not loaded "

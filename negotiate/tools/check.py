@@ -27,7 +27,7 @@ import numpy as np
 from negotiate.coordination.methods import method_names
 from negotiate.errors import FleetError, Problem
 from negotiate.fleet.build import BuiltAgent, build_report
-from negotiate.fleet.parse import _load, _parse
+from negotiate.fleet.parse import load_fleet, parse_fleet
 from negotiate.fleet.spec import CapacityResource, FleetSpec
 
 __all__ = [
@@ -179,22 +179,22 @@ def check_fleet(path: str | Path, build: bool = True) -> CheckResult:
     it is a problem in the result. Custom models named by import path are imported and run when building.
     """
     try:
-        spec, description = _load(path, method_names())
+        spec = load_fleet(path, method_names())
     except FleetError as exc:
         return CheckResult(source=str(path), spec=None, problems=exc.problems)
-    return _check_spec(spec, description, build)
+    return _check_spec(spec, build)
 
 
 def check_data(data: Mapping[str, Any], source: str = "<memory>", build: bool = True) -> CheckResult:
     """Like :func:`check_fleet` for an already-decoded fleet dictionary."""
     try:
-        spec, description = _parse(data, source, method_names())
+        spec = parse_fleet(data, source, method_names())
     except FleetError as exc:
         return CheckResult(source=source, spec=None, problems=exc.problems)
-    return _check_spec(spec, description, build)
+    return _check_spec(spec, build)
 
 
-def _check_spec(spec: FleetSpec, description: str, build: bool) -> CheckResult:
+def _check_spec(spec: FleetSpec, build: bool) -> CheckResult:
     problems: list[Problem] = []
     built: list[BuiltAgent] = []
     if build:
@@ -228,7 +228,7 @@ def _check_spec(spec: FleetSpec, description: str, build: bool) -> CheckResult:
     return CheckResult(
         source=spec.source,
         spec=spec,
-        description=description,
+        description=spec.description,
         agents=tuple(rows),
         resources=tuple(resources),
         graph=graph,
