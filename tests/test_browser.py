@@ -74,7 +74,8 @@ def test_report_renders_in_chromium(tmp_path: Path) -> None:
     assert body is not None, dom[:500]
     attrs = dict(re.findall(r'([\w-]+)="([^"]*)"', body.group(1)))
     n_images = html.count("<img ")
-    assert n_images == 2 + 1 + 1 + len(run.agents)  # slots x2, grid shares, convergence, one per agent
+    # slots x2, the bridge's time-space diagram, grid shares, convergence, one per agent
+    assert n_images == 2 + 1 + 1 + 1 + len(run.agents)
     assert attrs.get("data-images") == str(n_images), attrs
     assert attrs.get("data-images-loaded") == str(n_images), "some images did not load: " + str(attrs)
     tables = dict(t.split(":") for t in attrs["data-tables"].split(","))

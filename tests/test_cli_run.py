@@ -4,6 +4,7 @@ cannot be used)."""
 
 from __future__ import annotations
 
+import functools
 import json
 import os
 import subprocess
@@ -14,7 +15,8 @@ import pytest
 from fleets import ONE_TRACTOR, TWO_TRUCKS
 
 from negotiate.cli import main
-from negotiate.run import LOCK_FILE, claim_run_folder
+from negotiate.fleet.parse import load_fleet
+from negotiate.run import LOCK_FILE, RunResult, claim_run_folder, run_fleet
 
 EXAMPLES = Path(__file__).parents[1] / "examples"
 
@@ -193,13 +195,17 @@ class TestRun:
         assert "cannot import coordination method" in capsys.readouterr().err
 
 
+@functools.cache
+def verified_example(name: str) -> RunResult:
+    """The shipped example ``name`` run once with its own settings and the centralized check (shared with the
+    report tests)."""
+    return run_fleet(load_fleet(EXAMPLES / f"{name}.toml"), verify=True)
+
+
 @pytest.mark.parametrize("name", ["quarry_bridge", "machining_cell", "charging_depot"])
 def test_every_example_verifies_within_a_tenth_of_a_percent(name, tmp_path):
     """Each shipped example, run with its own settings and --verify, is within 0.1 % of the centralized cost."""
-    from negotiate.fleet.parse import load_fleet
-    from negotiate.run import run_fleet
-
-    run = run_fleet(load_fleet(EXAMPLES / f"{name}.toml"), verify=True)
+    run = verified_example(name)
     assert run.centralized is not None and run.centralized.success
     assert abs(run.gap) <= 1e-3, run.gap
 

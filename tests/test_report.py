@@ -274,8 +274,10 @@ class TestReport:
     def test_contents(self, run: RunResult, folder: Path) -> None:
         """One chart per resource, the convergence chart, one per agent; the tables, units and caution."""
         html = (folder / "report.html").read_text(encoding="utf-8")
-        # 2 exclusive + 1 capacity + convergence + 6 agents
-        assert len(_images(html)) == 2 + 1 + 1 + len(run.agents)
+        # 2 exclusive + 1 time-space diagram (bridge; the furnace has no vehicle users) + 1 capacity
+        # + convergence + 6 agents
+        assert len(_images(html)) == 2 + 1 + 1 + 1 + len(run.agents)
+        assert 'alt="time-space diagram of bridge"' in html and "time-space diagram of furnace" not in html
         for table in ("summary-table", "agents-table", "slot-prices", "prices-grid"):
             assert f'<table id="{table}"' in html, table
         assert html.count("<table") == 4
@@ -590,6 +592,10 @@ TOLERATED = {
     "trajectory with only a time column": lambda d: (d / "trajectories" / "lathe.csv").write_text("time_s\n0.0\n"),
     "trajectory with a header only": lambda d: (d / "trajectories" / "mill.csv").write_text("time_s,rate_kg_per_s\n"),
     "run.json without optional keys": lambda d: (d / "run.json").write_text('{"fleet": "tiny-mixed"}'),
+    "vehicle trajectory whose time goes back": lambda d: _edit_csv(d / "trajectories" / "truck-b.csv", 3, "time_s",
+                                                                   "-1.0"),
+    "vehicle trajectory that ends before its slot": lambda d: (d / "trajectories" / "truck-a.csv").write_text(
+        "time_s,position_m\n0.0,0.0\n1.0,10.0\n"),
 }  # fmt: skip
 
 
@@ -604,3 +610,125 @@ def test_odd_but_readable_folder_gives_a_report(case: str, folder: Path, tmp_pat
     html = (copy / "report.html").read_text(encoding="utf-8")
     if "only a time column" in case:
         assert "No trajectory for: lathe" in html
+    if case.startswith("vehicle trajectory"):  # that truck is left out of the bridge's time-space diagram
+        assert 'alt="time-space diagram of bridge"' in html and "Not drawn: 1 user without a position" in html
+
+
+# ---------------------------------------------------------------------------------------------------------
+# time-space diagram
+
+
+def _example_folder(name: str) -> Path:
+    """The shipped example's verified run (shared with test_cli_run) written into a temporary folder."""
+    from test_cli_run import verified_example
+
+    root = Path(tempfile.mkdtemp(prefix=f"negotiate-{name}-"))
+    atexit.register(shutil.rmtree, root, ignore_errors=True)
+    write_outputs(verified_example(name), root / "run")
+    return root / "run"
+
+
+@pytest.fixture(scope="module")
+def quarry_folder() -> Path:
+    return _example_folder("quarry_bridge")
+
+
+class TestSpaceTime:
+    """The time-space diagram per exclusive resource with vehicle users, read from the run folder alone."""
+
+    EXAMPLE = Path(__file__).parents[1] / "examples" / "quarry_bridge.toml"
+
+    def _zones(self) -> dict[str, tuple[float, float]]:
+        """Per truck, from the fleet file itself: where its front enters the bridge and where it has cleared it
+        (front at the zone's exit plus the vehicle's length: agents/params.py ZoneParams.exit)."""
+        import tomllib
+
+        fleet = tomllib.loads(self.EXAMPLE.read_text())
+        out = {}
+        for name, a in fleet["agents"].items():
+            length = a.get("length", fleet["defaults"]["vehicle"]["length"])
+            (z,) = [z for z in a["zones"] if z["resource"] == "bridge"]
+            out[name] = (z["entry"], z["exit"] + length)
+        return out
+
+    def test_lines_cross_the_band_at_the_schedule_times(self, quarry_folder: Path) -> None:
+        """Every truck's line reaches distance 0 at its enter time and the cleared distance at its leave time of
+        schedule.csv (read with the csv module), and the band's ends are the fleet file's zone positions.
+
+        The vehicle model puts nodes at every zone entry and exit, so linear interpolation is exact there up to
+        the 6 decimals (5e-7 s) of schedule.csv's times; 1e-6 s and, at <= 15 m/s, 2e-5 m are allowed."""
+        import csv
+
+        from negotiate.output.report import space_time_lines
+
+        with open(quarry_folder / "schedule.csv", newline="") as fh:
+            slots = {r["agent"]: (float(r["enter"]), float(r["leave"])) for r in csv.DictReader(fh)
+                     if r["resource"] == "bridge"}  # fmt: skip
+        zones = self._zones()
+        lines = space_time_lines(load_run(quarry_folder), "bridge")
+        assert sorted(x.agent for x in lines) == sorted(zones) == sorted(slots)
+        assert [x.enter for x in lines] == sorted(x.enter for x in lines)  # in order of entry
+        for x in lines:
+            enter, leave = slots[x.agent]
+            entry, cleared = zones[x.agent]
+            assert x.entry_m == pytest.approx(entry, abs=2e-5), x.agent
+            assert x.clear_m == pytest.approx(cleared - entry, abs=2e-5), x.agent
+            # where the drawn line meets the band's edges (inverse interpolation of the drawn points)
+            assert np.interp(0.0, x.distance_m, x.time_s) == pytest.approx(enter, abs=1e-6), x.agent
+            assert np.interp(cleared - entry, x.distance_m, x.time_s) == pytest.approx(leave, abs=1e-6), x.agent
+            # and the raw trajectory file, at the fleet file's positions
+            with open(quarry_folder / "trajectories" / f"{x.agent}.csv", newline="") as fh:
+                rows = list(csv.DictReader(fh))
+            t = np.array([float(r["time_s"]) for r in rows])
+            pos = np.array([float(r["position_m"]) for r in rows])
+            assert np.interp(entry, pos, t) == pytest.approx(enter, abs=1e-6), x.agent
+            assert np.interp(cleared, pos, t) == pytest.approx(leave, abs=1e-6), x.agent
+
+    def test_drawn_for_the_quarry_with_each_line_labelled(self, quarry_folder: Path) -> None:
+        """The report has the bridge's diagram; the figure shades the band 0..70 m (60 m deck + 10 m truck, from
+        the fleet file) and labels the lines 1..8 in the order of schedule.csv's enter times."""
+        from negotiate.output import plots
+        from negotiate.output.report import space_time_lines
+
+        html = (quarry_folder / "report.html").read_text(encoding="utf-8")
+        assert html.count('alt="time-space diagram of bridge"') == 1
+        assert "measured from where it enters bridge (0 m)" in html
+        assert CAUTION in html
+        files = load_run(quarry_folder)
+        fig = plots.space_time_chart("bridge", space_time_lines(files, "bridge"), 6.0)
+        ax = fig.axes[0]
+        order = [s.agent for s in sorted((s for s in files.schedule if s.resource == "bridge"), key=lambda s: s.enter)]
+        assert [t.get_text() for t in ax.texts] == [f"{i + 1} {a}" for i, a in enumerate(order)]
+        band = ax.patches[0].get_path().get_extents(ax.patches[0].get_transform() - ax.transData)
+        assert (band.y0, band.y1) == (pytest.approx(0.0, abs=1e-9), pytest.approx(70.0, abs=2e-5))
+        assert "zone entry (m)" in ax.get_ylabel() and "own route" in ax.get_ylabel()
+        assert ax.get_xlabel() == "time (s)"
+
+    def test_skipped_for_the_machining_cell(self) -> None:
+        """Machines have no position along a route: no resource of the machining cell gets a diagram."""
+        from negotiate.output.report import space_time_lines
+
+        folder = _example_folder("machining_cell")
+        files = load_run(folder)
+        assert files.exclusive() and all(not space_time_lines(files, r.resource) for r in files.exclusive())
+        assert "time-space diagram" not in (folder / "report.html").read_text(encoding="utf-8")
+
+    def test_folder_without_trajectories(self, folder: Path, tmp_path: Path) -> None:
+        """A folder whose agents have no trajectory files (as written when no model gives one) still loads and
+        gives a report, without a diagram."""
+        copy = tmp_path / "old"
+        shutil.copytree(folder, copy)
+        shutil.rmtree(copy / "trajectories")
+        import csv
+
+        with open(copy / "agents.csv", newline="") as fh:
+            rows = list(csv.DictReader(fh))
+        for r in rows:
+            r["trajectory_file"] = ""
+        with open(copy / "agents.csv", "w", newline="") as fh:
+            w = csv.DictWriter(fh, fieldnames=list(rows[0]))
+            w.writeheader()
+            w.writerows(rows)
+        assert not load_run(copy).trajectories
+        assert cli.main(["report", str(copy)]) == 0
+        assert "time-space diagram" not in (copy / "report.html").read_text(encoding="utf-8")

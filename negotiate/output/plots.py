@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import functools
 import io
+import math
 from collections.abc import Callable, Mapping, Sequence
 from typing import TYPE_CHECKING, Any
 
@@ -37,6 +38,7 @@ __all__ = [
     "convergence_chart",
     "png",
     "slot_chart",
+    "space_time_chart",
     "sweep_chart",
     "trajectory_chart",
 ]
@@ -267,6 +269,82 @@ def convergence_chart(history: Sequence[Any]) -> Figure:
     ax.set_title("stopping measure (log scale)")
     for ax in axes.ravel():
         ax.xaxis.get_major_locator().set_params(integer=True)
+    return fig
+
+
+MAX_NAMED_LINES = 16
+"""Time-space diagrams with more vehicles label each line with its place in the order only."""
+
+
+@_styled
+def space_time_chart(resource: str, lines: Sequence[Any], gap: float = 0.0) -> Figure:
+    """Time-space diagram of the vehicles sharing one exclusive resource: distance to the zone vs time.
+
+    ``lines`` have ``agent``, ``time_s`` and ``distance_m`` (arrays: the vehicle's position along its own
+    route minus its position when it enters the zone, so that every route meets the zone at 0), ``enter``
+    and ``leave`` (s, the slot) and ``clear_m`` (m, distance at ``leave``: the zone plus the vehicle's
+    length when the position is the vehicle's front). The zone's band, 0 to ``clear_m``, is shaded; each
+    line is labelled with its place in the order of entry and its agent; ``gap`` (s) is drawn after each
+    slot as a hatched stretch of the band.
+    """
+    rows = sorted(lines, key=lambda r: r.enter)
+    n = len(rows)
+    fig, axes = _figure(9.0, 4.6)
+    ax = axes[0, 0]
+    clear = np.array([r.clear_m for r in rows], dtype=float)
+    lo_c, hi_c = float(np.nanmin(clear)), float(np.nanmax(clear))
+    pad = max(2.5 * hi_c, 40.0)  # m shown before and after the zone: enough to see the approach and the queue
+    y0, y1 = -pad, hi_c + pad
+    longer = hi_c - lo_c > 1e-3 * max(hi_c, 1.0)  # vehicles of different lengths clear the zone at different distances
+    ax.axhspan(0.0, lo_c, color=PALETTE[5], alpha=0.22, linewidth=0)
+    if longer:  # vehicles of different lengths clear the zone at different distances
+        ax.axhspan(lo_c, hi_c, color=PALETTE[5], alpha=0.10, linewidth=0)
+    t_lo, t_hi = math.inf, -math.inf
+    label_names = n <= MAX_NAMED_LINES
+    for i, r in enumerate(rows):
+        c = PALETTE[i % 6]  # no yellow: a thin yellow line is hard to see on white
+        t = np.asarray(r.time_s, dtype=float)
+        d = np.asarray(r.distance_m, dtype=float)
+        ok = np.isfinite(t) & np.isfinite(d)
+        t, d = t[ok], d[ok]
+        near = (d >= y0) & (d <= y1)
+        if near.any():  # the stretch drawn, one node beyond on each side so that lines leave the frame
+            k = np.flatnonzero(near)
+            a, b = max(int(k[0]) - 1, 0), min(int(k[-1]) + 2, t.size)
+            t, d = t[a:b], d[a:b]
+        ax.plot(t, d, color=c, linewidth=1.6)
+        ax.plot([r.enter, r.leave], [0.0, r.clear_m], "o", color=c, markersize=4)
+        if gap > 0:
+            ax.fill_between([r.leave, r.leave + gap], 0.0, r.clear_m, facecolor="none", edgecolor="#777777",
+                            hatch="////", linewidth=0)  # fmt: skip
+        t_lo = min(t_lo, float(np.interp(y0, d, t)) if d[0] <= y0 else float(t[0]))
+        t_hi = max(t_hi, float(np.interp(y1, d, t)) if d[-1] >= y1 else float(t[-1]))
+        # the label sits on the approach, along the line (lines of one zone do not cross there unless they overtake)
+        d_lab = -0.5 * pad
+        if d.size >= 2 and d[0] <= d_lab:
+            t_lab = float(np.interp(d_lab, d, t))
+            j = int(np.clip(np.searchsorted(d, d_lab), 1, d.size - 1))
+            angle = math.degrees(math.atan2(d[j] - d[j - 1], t[j] - t[j - 1]))
+            text = f"{i + 1} {r.agent}" if label_names else f"{i + 1}"
+            ax.text(t_lab, d_lab, text, color=c, fontsize=8, fontweight="bold", ha="center", va="center",
+                    rotation=angle, rotation_mode="anchor", transform_rotates_text=True,
+                    bbox={"boxstyle": "round,pad=0.15", "facecolor": "white", "edgecolor": "none", "alpha": 0.85})
+    if math.isfinite(t_lo) and math.isfinite(t_hi) and t_hi > t_lo:
+        span = t_hi - t_lo
+        ax.set_xlim(t_lo - 0.02 * span, t_hi + 0.02 * span)
+    ax.set_ylim(y0, y1)
+    ax.set_xlabel("time (s)")
+    ax.set_ylabel("distance past the zone entry (m),\nalong each vehicle's own route")
+    ax.set_title(f"{resource}: time-space diagram, {n} vehicle{'s' * (n != 1)} in order of entry")
+    handles: list[Artist] = [
+        Patch(facecolor=PALETTE[5], alpha=0.35, label="zone, from entry until the vehicle has cleared it"),
+        Line2D([], [], color=INK, marker="o", linestyle="none", markersize=4, label="slot entry and exit"),
+    ]
+    if longer:
+        handles.append(Patch(facecolor=PALETTE[5], alpha=0.15, label="cleared later by longer vehicles"))
+    if gap > 0:
+        handles.append(Patch(facecolor="none", edgecolor="#777777", hatch="////", label=f"required gap {gap:g} s"))
+    fig.legend(handles=handles, loc="outside lower center", ncols=min(4, len(handles)))
     return fig
 
 

@@ -3,7 +3,8 @@
 :func:`write_report` reads a folder written by ``negotiate run`` (through :func:`negotiate.output.results.load_run`)
 and writes ``report.html`` next to the files: the run summary, a slot chart per exclusive resource and a
 share chart per capacity resource (each resource gets the chart its kind declares, headed by its kind's
-words), the table of agents (free-optimum cost, coordinated cost, certificate), the price tables (value
+words), a time-space diagram per exclusive resource used by vehicles (:func:`space_time_lines`), the
+table of agents (free-optimum cost, coordinated cost, certificate), the price tables (value
 gradients with units), the convergence history and each agent's trajectories with its slots marked. Images
 are PNG embedded as base64 data URIs and the style sheet is inline, so the file opens anywhere
 without fetching anything.
@@ -15,6 +16,7 @@ import base64
 import html
 import math
 from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -25,7 +27,7 @@ from negotiate.output import plots
 from negotiate.output.results import PriceRow, RunFiles, load_run
 from negotiate.resources import KINDS
 
-__all__ = ["CAUTION", "MAX_TRAJECTORIES", "render_report", "write_report"]
+__all__ = ["CAUTION", "MAX_TRAJECTORIES", "SpaceTimeLine", "render_report", "space_time_lines", "write_report"]
 
 SLOT_ROWS = 30
 """Users per slot chart (a longer queue is split into several charts)."""
@@ -203,6 +205,67 @@ def _f(v: object) -> float:
     return float("nan") if v is None else float(v)  # type: ignore[arg-type]
 
 
+@dataclass(frozen=True)
+class SpaceTimeLine:
+    """One vehicle's trajectory near an exclusive zone, as drawn in the time-space diagram.
+
+    ``time_s`` and ``distance_m`` are the trajectory's nodes, the distance being the position along the
+    vehicle's own route minus ``entry_m``, its position at the slot's ``enter`` time (s): every route meets
+    the zone at distance 0. ``clear_m`` is the distance at the slot's ``leave`` time (s), where the vehicle
+    has cleared the zone (for a front position: the zone's length plus the vehicle's).
+    """
+
+    agent: str
+    time_s: np.ndarray
+    distance_m: np.ndarray
+    enter: float
+    leave: float
+    entry_m: float
+    clear_m: float
+
+
+def space_time_lines(files: RunFiles, resource: str) -> list[SpaceTimeLine]:
+    """The lines of the time-space diagram of ``resource``, in order of entry; empty without vehicle users.
+
+    Built from the run folder alone: the slot times from ``schedule.csv``, the positions from each user's
+    ``trajectories/<agent>.csv`` (columns ``time_s`` and ``position_m``), linearly interpolated at the slot's
+    entry and exit times. Users without a position column (machines, chargers) or without a trajectory file
+    are left out, as is a trajectory whose times do not increase.
+    """
+    out = []
+    for s in sorted((s for s in files.schedule if s.resource == resource and s.chart == "slots"),
+                    key=lambda s: s.enter):  # fmt: skip
+        series = files.trajectories.get(s.agent) or {}
+        if "time_s" not in series or "position_m" not in series:
+            continue
+        t = np.asarray(series["time_s"], dtype=float)
+        x = np.asarray(series["position_m"], dtype=float)
+        ok = np.isfinite(t) & np.isfinite(x)
+        t, x = t[ok], x[ok]
+        if t.size < 2 or np.any(np.diff(t) <= 0) or not t[0] <= s.enter <= s.leave <= t[-1]:
+            continue
+        entry = float(np.interp(s.enter, t, x))
+        clear = float(np.interp(s.leave, t, x)) - entry
+        out.append(SpaceTimeLine(s.agent, t, x - entry, s.enter, s.leave, entry, clear))
+    return out
+
+
+def _space_time(f: RunFiles, resource: str, gap: float, users: int) -> str:
+    """The time-space diagram of one exclusive resource and its note; empty without vehicle users."""
+    lines = space_time_lines(f, resource)
+    if not lines:
+        return ""
+    fig = plots.space_time_chart(resource, lines, gap)
+    left = users - len(lines)
+    note = ("Time-space diagram: each vehicle's position along its own route, measured from where it enters "
+            f"{_e(resource)} (0 m), against time; the line's number is its place in the order of entry. The "
+            "band is the zone from entry until the vehicle has cleared it, read from the trajectories at the slot's "
+            "entry and exit times.")  # fmt: skip
+    if left:
+        note += f" Not drawn: {left} user{'s' * (left != 1)} without a position along a route."
+    return _img(plots.png(fig), f"time-space diagram of {resource}") + f'<p class="note">{note}</p>'
+
+
 def _schedule(f: RunFiles) -> str:
     out = ['<h2 id="schedule">Schedule</h2>']
     free: dict[str, dict[str, list[float]]] = {}
@@ -227,6 +290,7 @@ def _schedule(f: RunFiles) -> str:
         if len(groups) > MAX_SLOT_CHARTS:
             out.append(f'<p class="note">The first {MAX_SLOT_CHARTS * SLOT_ROWS} of {len(slots)} users are drawn; '
                        "every slot is in the price table and in prices.csv.</p>")  # fmt: skip
+        out.append(_space_time(f, r.resource, gap, len(slots)))
     for name in f.capacity_names():
         blocks = [b for b in f.resources if b.resource == name]
         shares = [s for s in f.schedule if s.resource == name and s.chart == "shares"]
