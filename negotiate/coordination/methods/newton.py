@@ -38,9 +38,13 @@ class ProjectedNewton(ProjectedGradient):
         self.newton_steps = 0
         self.t = 1.0
         self.newton_pending: tuple[np.ndarray, float] | None = None
+        self.newton_measure = float("inf")
 
     def hessian(self, ev: Evaluation) -> np.ndarray | None:
-        if any(r.hessian is None or r.flagged for r in ev.reports):
+        # A flagged agent whose probes found no second one-sided gradient has a unique gradient here, and its
+        # smooth certificate makes V_i twice differentiable around this point: its Hessian is valid (the guard
+        # flags a changed active set, i.e. a kink somewhere between two points, which the line search handles).
+        if any(r.hessian is None or len(r.gradients) > 1 for r in ev.reports):
             return None
         s, lay = self.s, self.feasible.layout
         B = np.zeros((lay.n, lay.n))
@@ -58,13 +62,23 @@ class ProjectedNewton(ProjectedGradient):
         if B is None:
             return None
         s = self.s
-        u = self.x.P / s
+        P = self.x.P
         gu = self.x.gradient * s
         fs = self.feasible
-        res = solve_qp(B, gu - B @ u, fs.A * s[None, :], np.full(fs.b.size, -np.inf), fs.b, fs.lower / s, fs.upper / s)
-        if not res.success or not fs.contains(res.z * s, tol=1e-7 * max(1.0, float(np.max(np.abs(fs.b), initial=1.0)))):
+        # The QP is posed in the scaled step d = (P+ - P) / s, not in the new point: near convergence the step
+        # is tiny next to the point, and in the point's coordinates the objective's constant part (of order
+        # u.B.u) swamps the decrease to be resolved, so the solver returned steps whose predicted decrease was
+        # negative and the method fell back to gradient steps.
+        res = solve_qp(
+            B, gu, fs.A * s[None, :], np.full(fs.b.size, -np.inf), fs.b - fs.A @ P, (fs.lower - P) / s, (fs.upper - P) / s
+        )  # fmt: skip
+        if not res.success:
             return None
-        d = res.z - u
+        d = res.z
+        Pn = np.clip(P + d * s, fs.lower, fs.upper)
+        if not fs.contains(Pn, tol=1e-7 * max(1.0, float(np.max(np.abs(fs.b), initial=1.0)))):
+            return None
+        d = (Pn - P) / s
         pred = -float(gu @ d + 0.5 * d @ B @ d)
         measure = pred / max(1.0, abs(self.x.total))
         if self.tolerance_reached(measure):
@@ -77,9 +91,10 @@ class ProjectedNewton(ProjectedGradient):
                 return Proposal(None, measure, True, "Newton predicted decrease below tolerance")
             return None
         self.t = 1.0
+        self.newton_measure = measure
         self.newton_pending = (d * s, float(self.x.gradient @ (d * s)))
         self.newton_steps += 1
-        return Proposal(self.x.P + d * s, measure, False, "Newton step")
+        return Proposal(Pn, measure, False, "Newton step")
 
     def propose(self, latest: Evaluation) -> Proposal:
         if self.x is None:
@@ -95,7 +110,8 @@ class ProjectedNewton(ProjectedGradient):
                 if self.t < 1e-6:
                     self.newton_pending = None  # give up on Newton here, take a gradient step
                     return self.step_from_current("Newton line search failed")
-                return Proposal(self.x.P + self.t * dP, float("nan"), False, "Newton backtracking")
+                # The measure is that of the current point, which backtracking does not move.
+                return Proposal(self.x.P + self.t * dP, self.newton_measure, False, "Newton backtracking")
         elif self.pending is not None:
             # a gradient-method step is outstanding: let the parent judge it first
             before = self.x
