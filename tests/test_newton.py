@@ -49,9 +49,15 @@ def slsqp_optimum() -> float:
     cons = [{"type": "ineq", "fun": lambda z, i=i: z[2 * i + 1] - z[2 * i] - DURATION} for i in range(n)]
     cons += [{"type": "ineq", "fun": lambda z, i=i: z[2 * i + 2] - z[2 * i + 1] - GAP} for i in range(n - 1)]
     z0 = np.ravel([[10.0 + 8.0 * i, 16.0 + 8.0 * i] for i in range(n)])
-    res = scipy.optimize.minimize(total, z0, jac=grad, method="SLSQP", constraints=cons, options={"ftol": 1e-12, "maxiter": 500})
+    opts = {"ftol": 1e-12, "maxiter": 500}
+    res = scipy.optimize.minimize(total, z0, jac=grad, method="SLSQP", constraints=cons, options=opts)
     assert res.success, res.message
     return float(res.fun)
+
+
+def dock_agents() -> list[AgentModel]:
+    pairs = zip(WANTS, STIFFNESS, strict=True)
+    return [buffered_slot_agent(f"b{k}", w, DURATION, s, "dock") for k, (w, s) in enumerate(pairs)]
 
 
 class TestActiveSetChanges:
@@ -61,7 +67,7 @@ class TestActiveSetChanges:
         either side, so Newton reaches the SLSQP optimum of the closed forms in a few rounds and never falls
         back to gradient steps (it took 5 rounds, 4 of them gradient steps, when a flag or a QP posed in the
         new point instead of the step sent it to the gradient method)."""
-        agents = [buffered_slot_agent(f"b{k}", w, DURATION, s, "dock") for k, (w, s) in enumerate(zip(WANTS, STIFFNESS))]
+        agents = dock_agents()
         res = coordinate(
             agents, [ExclusiveResource("dock", gap=GAP)],
             CoordinatorSettings(method="newton", max_rounds=50, tolerance=1e-10),
@@ -76,7 +82,7 @@ class TestActiveSetChanges:
     def test_an_agent_crossing_its_inner_bound_is_flagged_and_smooth(self):
         """The case above does exercise the change: some agent binds y <= want + 2 at the end (not at its free
         optimum), where every certificate is smooth."""
-        agents = [buffered_slot_agent(f"b{k}", w, DURATION, s, "dock") for k, (w, s) in enumerate(zip(WANTS, STIFFNESS))]
+        agents = dock_agents()
         res = coordinate(
             agents, [ExclusiveResource("dock", gap=GAP)],
             CoordinatorSettings(method="newton", max_rounds=50, tolerance=1e-10),

@@ -69,9 +69,8 @@ class ProjectedNewton(ProjectedGradient):
         # is tiny next to the point, and in the point's coordinates the objective's constant part (of order
         # u.B.u) swamps the decrease to be resolved, so the solver returned steps whose predicted decrease was
         # negative and the method fell back to gradient steps.
-        res = solve_qp(
-            B, gu, fs.A * s[None, :], np.full(fs.b.size, -np.inf), fs.b - fs.A @ P, (fs.lower - P) / s, (fs.upper - P) / s
-        )  # fmt: skip
+        lo, hi = (fs.lower - P) / s, (fs.upper - P) / s
+        res = solve_qp(B, gu, fs.A * s[None, :], np.full(fs.b.size, -np.inf), fs.b - fs.A @ P, lo, hi)
         if not res.success:
             return None
         d = res.z
