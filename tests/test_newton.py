@@ -113,4 +113,18 @@ class TestBacktracking:
         assert res.success, res.message
         assert any(h.note == "Newton backtracking" for h in res.history), [h.note for h in res.history]
         assert all(math.isfinite(h.measure) for h in res.history), [(h.note, h.measure) for h in res.history]
+
+    def test_newton_finishes_without_gradient_steps(self):
+        """Past the overshoot, Newton on V = sqrt(1 + x^2) maps x to -x^3 (by hand: x - V'/V'' = -x^3): a few
+        rounds reach |x| < 1e-12. Near the minimiser the Newton decrement x^2 / 2 falls below the tolerance
+        while the first-order measure |x| * window does not; the Newton step must still be taken there (a
+        gradient step from there backtracked for 27 rounds, 35 rounds in all)."""
+        res = coordinate(
+            [pseudo_huber_agent(20.0)], [CapacityResource("grid", (100.0,))],
+            CoordinatorSettings(method="newton", max_rounds=50, tolerance=1e-12), start=np.array([22.0]),
+        )  # fmt: skip
+        assert res.success, res.message
+        assert res.rounds <= 8, [h.note for h in res.history]
+        assert not any("gradient fallback" in h.note or h.note == "backtracking" for h in res.history)
+        np.testing.assert_allclose(res.P, [20.0], atol=1e-9)
         np.testing.assert_allclose(res.P, [20.0], atol=1e-5)  # V(t + 1e-5) - V(t) = 5e-11 < 1e-12 * |V| tolerance
