@@ -112,3 +112,31 @@ battery_capacity = 3.6e8
 initial_soc = 0.3
 target_soc = 0.6
 """
+
+
+def buffered_slot_agent(name: str, want_enter: float, duration: float, stiffness: float, resource: str) -> AgentModel:
+    """A one-slot agent that also plans a time ``y`` (s) it would like to be ready, pulled towards both its
+    wish and the slot's entry but never more than 2 s after the wish; cost (J)
+
+        stiffness * ((enter - want)^2 + 4 (y - enter)^2 + (y - want)^2 + 0.1 (leave - enter - duration)^2),
+
+    ``want - 50 <= y <= want + 2``. With ``enter = p_0`` and ``leave = p_1`` (equalities), ``y = (4 enter + want) / 5``
+    while that is at most ``want + 2``, i.e. ``enter <= want + 2.5``, and ``y = want + 2`` beyond: V is
+    piecewise quadratic, C^1 (the bound's multiplier is zero where it starts to bind) and smooth on either
+    side, with d2V/d enter2 = 2 stiffness (1 + 4/5) before and 2 stiffness (1 + 4) after. A delay past 2.5 s
+    changes the agent's strictly active set without any kink at the points it is solved at."""
+    x = ca.SX.sym("x", 3)  # enter, leave, y
+    p = ca.SX.sym("p", 2)
+    f = stiffness * (
+        (x[0] - want_enter) ** 2 + 4 * (x[2] - x[0]) ** 2 + (x[2] - want_enter) ** 2
+        + 0.1 * (x[1] - x[0] - duration) ** 2
+    )  # fmt: skip
+    prob = ParametricNLP(
+        {"x": x, "p": p, "f": f, "g": x[:2] - p}, lbg=0, ubg=0,
+        lbx=[-ca.inf, -ca.inf, want_enter - 50.0], ubx=[ca.inf, ca.inf, want_enter + 2.0], name=name,
+    )  # fmt: skip
+    params = (SlotParam(f"{resource}.enter", resource, "enter"), SlotParam(f"{resource}.leave", resource, "leave"))
+    reach = ReachableSet(
+        np.full(2, want_enter - 100.0), np.full(2, want_enter + 200.0), np.array([[1.0, -1.0]]), np.array([-duration])
+    )
+    return AgentModel(name, prob, params, reach, [want_enter, want_enter + duration])
