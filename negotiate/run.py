@@ -33,8 +33,8 @@ import numpy as np
 
 from negotiate.coordination.centralized import solve_centralized
 from negotiate.coordination.engine import CoordinationResult, EngineState, RoundRecord, coordinate
-from negotiate.coordination.methods import Method, method_class, method_names, option_problems, register_method
 from negotiate.coordination.master import search_master
+from negotiate.coordination.methods import Method, method_class, method_names, option_problems, register_method
 from negotiate.coordination.methods.base import Evaluation
 from negotiate.coordination.orders import OrderTrial, search_orders
 from negotiate.core.agent import AgentModel
