@@ -241,16 +241,16 @@ class OrderMaster:
             for row in second:  # coef.P <= rhs + M y
                 M = self.big_m(row)
                 put({**{j: c * s[j] for j, c in row[0].items()}, yk: -M}, -np.inf, row[1])
-        for users_r, r in ((u, r) for r, u in self.users.items()):
-            for a, b, c in itertools.combinations(users_r, 3):
-                # before(x, z) = y_xz (x listed first) or 1 - y_zx; a cycle a>b>c>a or a>c>b>a is refused
-                for cyc in ((a, b), (b, c), (c, a)), ((a, c), (c, b), (b, a)):
+        for r, users_r in self.users.items():
+            for t1, t2, t3 in itertools.combinations(users_r, 3):
+                # before(u, v) = y_uv (u listed first) or 1 - y_vu; a cycle 1>2>3>1 or 1>3>2>1 is refused
+                for cyc in ((t1, t2), (t2, t3), (t3, t1)), ((t1, t3), (t3, t2), (t2, t1)):
                     entries: dict[int, float] = {}
                     const = 0.0
-                    for x, z in cyc:
-                        key = (r, x, z) if (r, x, z) in self.pair_index else (r, z, x)
+                    for before, after in cyc:
+                        key = (r, before, after) if (r, before, after) in self.pair_index else (r, after, before)
                         j = n + m + self.pair_index[key]
-                        if key == (r, x, z):
+                        if key == (r, before, after):
                             entries[j] = entries.get(j, 0.0) + 1.0
                         else:
                             entries[j] = entries.get(j, 0.0) - 1.0
@@ -259,13 +259,13 @@ class OrderMaster:
         for i, cuts in enumerate(self.cuts):
             sl = self.layout.slice(i)
             idx = range(sl.start, sl.stop)
-            for p, v, g in cuts:  # theta_i - g.P_i >= v - g.p
-                put({**{j: -gj * s[j] for j, gj in zip(idx, g, strict=True)}, n + i: 1.0}, v - float(g @ p), np.inf)
+            for pk, vk, gk in cuts:  # theta_i - g.P_i >= V(p_k) - g.p_k
+                put({**{j: -gj * s[j] for j, gj in zip(idx, gk, strict=True)}, n + i: 1.0}, vk - float(gk @ pk), np.inf)
         for y0 in self.nogoods:  # sum_{y0=1} (1 - y) + sum_{y0=0} y >= 1
             put({n + m + k: (-1.0 if y0[k] else 1.0) for k in range(q)}, 1.0 - float(y0.sum()), np.inf)
 
-        c = np.zeros(nv)
-        c[n : n + m] = weights
+        cost = np.zeros(nv)
+        cost[n : n + m] = weights
         lb = np.concatenate([self.lower / s, self.floor, np.zeros(q)])
         ub = np.concatenate([self.upper / s, np.full(m, np.inf), np.ones(q)])
         integrality = np.concatenate([np.zeros(n + m), np.ones(q)])
@@ -276,7 +276,7 @@ class OrderMaster:
         if lo:
             A = coo_array((vals, (rows, cols)), shape=(len(lo), nv)).tocsr()
             constraints.append(LinearConstraint(A, np.array(lo), np.array(hi)))
-        res = milp(c, integrality=integrality, bounds=Bounds(lb, ub), constraints=constraints, options=options)
+        res = milp(cost, integrality=integrality, bounds=Bounds(lb, ub), constraints=constraints, options=options)
         status = {0: "optimal", 1: "stopped", 2: "infeasible", 3: "unbounded"}.get(res.status, "failed")
         if res.x is None:
             return MasterSolution(status, {}, np.zeros(n), math.inf, -math.inf, str(res.message))
