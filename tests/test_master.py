@@ -165,6 +165,50 @@ class TestSearchMaster:
         assert best.total < fcfs.total
         assert trials[0].orders == first and trials[-1].gap_kind == "certified"
 
+    def test_failed_coordination_gives_a_no_good_cut(self):
+        """When the coordination of the best order fails (a stand-in that reports an infinite total), that
+        order is excluded and never proposed again; the search ends at the best of the others, which a plain
+        enumeration of the four combinations (each coordinated) confirms."""
+        agents = [
+            slot_agent("soft", 0.0, 10.0, 0.01, ["r", "s"], earliest=0.0),
+            slot_agent("stiff", 2.0, 10.0, 10.0, ["r", "s"], earliest=2.0),
+        ]
+        resources = [ExclusiveResource("r", gap=1.0), ExclusiveResource("s", gap=1.0)]
+        run, seen = runner(agents, resources)
+        refused = {"r": ["stiff", "soft"], "s": ["stiff", "soft"]}
+
+        def failing(orders, start):
+            if orders == refused:
+                return float("inf"), np.zeros(8), None
+            return run(orders, start)
+
+        best, orders, trials = search_master(agents, resources, failing, evaluations=seen)
+        assert sum(t.orders == refused for t in trials) == 1
+        others = []
+        for o1, o2 in itertools.product(["soft", "stiff"], repeat=2):
+            cand = {r: [o, ({"soft", "stiff"} - {o}).pop()] for r, o in (("r", o1), ("s", o2))}
+            if cand != refused:
+                try:
+                    check_orders(agents, resources, cand)
+                except (DeadlockError, InfeasibleOrdersError):
+                    continue
+                others.append((run(cand, None)[0], cand))
+        total, want = min(others, key=lambda t: t[0])
+        assert orders == want
+        np.testing.assert_allclose(best.total, total, rtol=1e-6)
+        assert trials[-1].gap_kind == "heuristic" and "a coordination failed" in trials[-1].gap_reason
+
+    def test_other_rules_keep_their_trial_keys(self):
+        """The swap search's trials carry exactly the keys they had before the master came (no bound)."""
+        agents = [
+            slot_agent("soft", 0.0, 10.0, 0.01, ["r"], earliest=0.0),
+            slot_agent("stiff", 2.0, 10.0, 10.0, ["r"], earliest=2.0),
+        ]
+        resources = [ExclusiveResource("r", gap=1.0)]
+        run, _seen = runner(agents, resources)
+        _best, _orders, trials = search_orders(agents, resources, "swap", run)
+        assert all(set(t.to_dict()) == {"orders", "total_cost", "kept", "infeasible"} for t in trials)
+
     def test_nonconvex_agent_makes_the_gap_heuristic(self):
         """An agent whose cost is a concave quadratic (negative stiffness): its cuts over-estimate its values
         elsewhere, so the gap is reported as heuristic, naming the agent."""

@@ -44,9 +44,12 @@ master (it still guides the search), only the bound loses its certificate.
 
 from __future__ import annotations
 
+import contextlib
 import itertools
 import math
-from collections.abc import Callable, Sequence
+import os
+import sys
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -79,6 +82,27 @@ CONVEXITY_RTOL = 1e-6
 docstring)."""
 
 _Row = tuple[dict[int, float], float]  # sum coef[j] * P[j] <= rhs, over stacked indices j
+
+
+@contextlib.contextmanager
+def _quiet_stdout() -> Iterator[None]:
+    """Silence the process's standard output (file descriptor 1) for a while: HiGHS's MIP solver (1.x, as
+    SciPy ships it) prints debugging lines straight to it, whatever its options say. Standard error, where
+    the progress bar and the warnings go, is left alone."""
+    try:
+        sys.stdout.flush()
+        saved = os.dup(1)
+    except (OSError, ValueError):  # no descriptor 1 (a closed or replaced stdout): nothing to silence
+        yield
+        return
+    null = os.open(os.devnull, os.O_WRONLY)
+    try:
+        os.dup2(null, 1)
+        yield
+    finally:
+        os.dup2(saved, 1)
+        os.close(saved)
+        os.close(null)
 
 
 def _row_key(row: _Row) -> tuple[tuple[tuple[int, float], ...], float]:
@@ -276,7 +300,8 @@ class OrderMaster:
         if lo:
             A = coo_array((vals, (rows, cols)), shape=(len(lo), nv)).tocsr()
             constraints.append(LinearConstraint(A, np.array(lo), np.array(hi)))
-        res = milp(cost, integrality=integrality, bounds=Bounds(lb, ub), constraints=constraints, options=options)
+        with _quiet_stdout():
+            res = milp(cost, integrality=integrality, bounds=Bounds(lb, ub), constraints=constraints, options=options)
         status = {0: "optimal", 1: "stopped", 2: "infeasible", 3: "unbounded"}.get(res.status, "failed")
         if res.x is None:
             return MasterSolution(status, {}, np.zeros(n), math.inf, -math.inf, str(res.message))
@@ -333,6 +358,10 @@ class _Convexity:
                 f"agent {self.names[i]!r}: a value Hessian has the eigenvalue {eig[0]:.6g} < 0 (its value function "
                 "is not convex there)"
             )
+
+
+def _text(orders: dict[str, list[str]]) -> str:
+    return "; ".join(f"{r}: {' > '.join(v)}" for r, v in orders.items())
 
 
 def _key(orders: dict[str, list[str]]) -> tuple[tuple[str, tuple[str, ...]], ...]:
@@ -420,7 +449,7 @@ def search_master(
     trials = [OrderTrial({k: list(v) for k, v in orders.items()}, best_total, True)]
     if not np.isfinite(best_total):
         master.exclude(master.binaries(orders))
-        unsure = "the first order's coordination failed"
+        unsure = f"the first coordination failed (orders {_text(orders)}) and its orders were left out"
     tried = {_key(orders)}
     coordinations = 1
     last = 0  # the trial whose bound the next master solve gives
@@ -460,6 +489,8 @@ def search_master(
         take(result)
         if not np.isfinite(total):
             master.exclude(sol.y)
+            # its orders may admit a schedule the coordinator did not find: the bound no longer covers them
+            unsure = unsure or f"a coordination failed (orders {_text(cand)}) and its orders were left out"
         kept = total < best_total - 1e-9 * max(1.0, abs(best_total))
         trials.append(OrderTrial(cand, total, kept))
         last = len(trials) - 1
