@@ -320,31 +320,46 @@ class _Convexity:
 
     def __init__(self, names: Sequence[str]) -> None:
         self.names = list(names)
-        self.points: list[list[tuple[np.ndarray, float, list[np.ndarray]]]] = [[] for _ in names]
+        # per agent: points (K x n), values (K), cut gradients (C x n) and the point each cut was taken at (C)
+        self.P: list[np.ndarray | None] = [None for _ in names]
+        self.V: list[np.ndarray] = [np.zeros(0) for _ in names]
+        self.G: list[np.ndarray | None] = [None for _ in names]
+        self.at: list[np.ndarray] = [np.zeros(0, dtype=int) for _ in names]
         self.reason = ""
 
     def add(self, i: int, p: np.ndarray, value: float, gradients: list[np.ndarray]) -> None:
-        if self.reason:
-            self.points[i].append((p, value, gradients))
-            return
-        for k, (q, v, gs) in enumerate(self.points[i]):
-            for a, (pa, va, ga), (pb, vb) in ((0, (q, v, gs), (p, value)), (1, (p, value, gradients), (q, v))):
-                for g in ga:
-                    under = va + float(g @ (pb - pa))
-                    slack = CONVEXITY_RTOL * max(1.0, abs(va), abs(vb), float(np.abs(g) @ np.abs(pb - pa)))
-                    if under > vb + slack:
-                        where = "latest" if a == 1 else f"#{k + 1}"
-                        self.reason = (
-                            f"agent {self.names[i]!r}: the cut at its {where} evaluated point over-estimates its "
-                            f"value at another evaluated point by {under - vb:.6g} (its value function is not "
-                            "convex there, so its cuts are not lower bounds)"
-                        )
-                        break
-                if self.reason:
-                    break
-            if self.reason:
-                break
-        self.points[i].append((p, value, gradients))
+        p = np.asarray(p, float).ravel()
+        g_new = np.array([np.asarray(g, float).ravel() for g in gradients])
+        P, V, G, at = self.P[i], self.V[i], self.G[i], self.at[i]
+        if P is None or G is None:
+            P, V, G, at = p[None, :], np.array([value]), g_new, np.zeros(len(g_new), dtype=int)
+        else:
+            if not self.reason:
+                # the old cuts at the new point, then the new cuts at the old points
+                d = p[None, :] - P[at]
+                under = V[at] + np.sum(G * d, axis=1)
+                slack = CONVEXITY_RTOL * np.maximum.reduce(
+                    [np.ones(len(at)), np.abs(V[at]), np.full(len(at), abs(value)), np.sum(np.abs(G * d), axis=1)]
+                )
+                excess = under - value - slack
+                d2 = P[None, :, :] - p[None, None, :]  # (1, K, n)
+                under2 = value + np.einsum("gn,kn->gk", g_new, d2[0])
+                slack2 = CONVEXITY_RTOL * np.maximum.reduce(
+                    [np.ones(under2.shape), np.broadcast_to(np.abs(V)[None, :], under2.shape),
+                     np.full(under2.shape, abs(value)), np.abs(g_new) @ np.abs(d2[0]).T]
+                )  # fmt: skip
+                excess2 = under2 - V[None, :] - slack2
+                worst = max(float(np.max(excess, initial=-np.inf)), float(np.max(excess2, initial=-np.inf)))
+                if worst > 0:
+                    self.reason = (
+                        f"agent {self.names[i]!r}: a cut at one evaluated point over-estimates its value at "
+                        f"another evaluated point by more than {worst:.6g} (its value function is not convex "
+                        "there, so its cuts are not lower bounds)"
+                    )
+            k = len(V)
+            P, V = np.vstack([P, p[None, :]]), np.append(V, value)
+            G, at = np.vstack([G, g_new]), np.append(at, np.full(len(g_new), k, dtype=int))
+        self.P[i], self.V[i], self.G[i], self.at[i] = P, V, G, at
 
     def hessian(self, i: int, H: np.ndarray) -> None:
         if self.reason or H is None:
