@@ -261,6 +261,11 @@ def _run(args: argparse.Namespace) -> int:
         print(f"centralized: {ce.status} ({ce.message}), cost {_fmt(ce.total, 10)}, {ce.wall_time:.2f} s; "
               f"relative gap {'-' if gap is None else f'{gap:+.2e}'}")  # fmt: skip
     print("orders: " + "; ".join(f"{k}: {' > '.join(v)}" for k, v in c.orders.items()))
+    bounded = [t for t in result.order_trials if t.gap_kind]
+    if bounded:
+        t = bounded[-1]
+        print(f"order gap ({t.gap_kind}): best order's total >= {_fmt(t.bound, 10)}, gap {_fmt(t.gap, 4)}"
+              + (f" ({t.gap_reason})" if t.gap_reason else ""))  # fmt: skip
     folder = Path(out)
     top = sorted({p.relative_to(folder).parts[0] for p in result.files})
     print(f"wrote {len(result.files)} files to {folder}: "

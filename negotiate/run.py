@@ -32,8 +32,10 @@ from typing import Any
 import numpy as np
 
 from negotiate.coordination.centralized import solve_centralized
-from negotiate.coordination.engine import CoordinationResult, RoundRecord, coordinate
+from negotiate.coordination.engine import CoordinationResult, EngineState, RoundRecord, coordinate
+from negotiate.coordination.master import search_master
 from negotiate.coordination.methods import Method, method_class, method_names, option_problems, register_method
+from negotiate.coordination.methods.base import Evaluation
 from negotiate.coordination.orders import OrderTrial, search_orders
 from negotiate.core.agent import AgentModel
 from negotiate.core.files import write_atomic
@@ -392,6 +394,8 @@ def _search(
     """Choose the orders and coordinate each candidate (the order search), checkpointed through ``book``;
     ``stop`` non-empty (a signal came) ends the run with :class:`KeyboardInterrupt` after a round."""
     coordinated = 0  # order trials handed to the coordinator so far
+    master = settings.order == "master"
+    seen: list[Evaluation] = []  # every evaluation of every coordination: the order master's cuts
 
     def one(
         orders: dict[str, list[str]], start: np.ndarray | None
@@ -412,17 +416,30 @@ def _search(
                 if progress is not None:
                     progress(replace(rec, trial=trial))
 
+        saving = book.hook(k, orders) if book is not None else None
+        hook = saving
+        if master:
+
+            def collect(state: EngineState) -> None:
+                seen.append(state.latest)
+                if saving is not None:
+                    saving(state)
+
+            hook = collect
+
         r = coordinate(
             agents, spec.resources, settings, orders=orders, start=start, executor=executor, progress=tell,
-            checkpoint=book.hook(k, orders) if book is not None else None,
-            resume=book.engine_state(k, orders) if book is not None else None,
+            checkpoint=hook, resume=book.engine_state(k, orders) if book is not None else None,
         )  # fmt: skip
         total = r.total if r.evaluation.ok else float("inf")
         if book is not None:
             book.finish(k, orders, total, r)
         return total, r.P, r
 
-    best, _orders, trials = search_orders(agents, spec.resources, settings.order, one)
+    if master:
+        best, _orders, trials = search_master(agents, spec.resources, one, evaluations=seen)
+    else:
+        best, _orders, trials = search_orders(agents, spec.resources, settings.order, one)
     assert isinstance(best, CoordinationResult)
     return best, list(trials)
 

@@ -16,6 +16,7 @@ the search raises (:class:`~negotiate.errors.DeadlockError` or
 from __future__ import annotations
 
 import itertools
+import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
@@ -35,15 +36,30 @@ EXHAUSTIVE_LIMIT = 7
 @dataclass(frozen=True)
 class OrderTrial:
     """One order tried: the orders, the coordinated total (``inf`` if it failed or was infeasible), whether
-    it was kept, and for an order skipped without coordinating, why (a deadlock or an empty polyhedron)."""
+    it was kept, and for an order skipped without coordinating, why (a deadlock or an empty polyhedron).
+
+    The order master (:mod:`negotiate.coordination.master`) also fills in, after the trial's cuts entered:
+    ``bound``, its lower bound on the best total over all orders (cost units), ``gap``, the best total so
+    far minus that bound, and ``gap_kind``, ``"certified"`` or ``"heuristic"``, with ``gap_reason`` saying
+    why a gap is heuristic. The other rules leave them empty (``nan``, ``""``).
+    """
 
     orders: dict[str, list[str]]
     total: float
     kept: bool
     infeasible: str = ""
+    bound: float = math.nan
+    gap: float = math.nan
+    gap_kind: str = ""
+    gap_reason: str = ""
 
     def to_dict(self) -> dict[str, object]:
-        return {"orders": self.orders, "total_cost": self.total, "kept": self.kept, "infeasible": self.infeasible}
+        out: dict[str, object] = {
+            "orders": self.orders, "total_cost": self.total, "kept": self.kept, "infeasible": self.infeasible
+        }  # fmt: skip
+        if self.gap_kind:
+            out.update(bound=self.bound, gap=self.gap, gap_kind=self.gap_kind, gap_reason=self.gap_reason)
+        return out
 
 
 def search_orders(
@@ -65,6 +81,8 @@ def search_orders(
     DeadlockError, InfeasibleOrdersError
         When the first order (``start`` or first-come-first-served) admits no schedule.
     """
+    if rule == "master":
+        raise ValueError('order = "master" is run by negotiate.coordination.master.search_master')
     orders = {k: list(v) for k, v in (start or fcfs_orders(agents, resources)).items()}
     check_orders(agents, resources, orders)
     best_total, best_P, best = run(orders, None)

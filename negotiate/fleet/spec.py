@@ -35,9 +35,10 @@ __all__ = [
 METHODS = ("bundle", "gradient", "newton")
 """Names of the built-in coordination methods."""
 
-ORDER_RULES = ("fcfs", "swap", "exhaustive")
+ORDER_RULES = ("fcfs", "swap", "exhaustive", "master")
 """How the order of users on an exclusive resource is chosen: first-come-first-served by free optimum,
-that followed by improving neighbour swaps, or exhaustive search (small resources only)."""
+that followed by improving neighbour swaps, exhaustive search (small resources only), or the order master
+(a mixed-integer program over the agents' value cuts, with a bound on the best order's total)."""
 
 
 MAX_ROUNDS = Range(1, 10_000)
@@ -63,7 +64,7 @@ class CoordinatorSettings:
         Largest number of coordination rounds (one round = one solve of every agent).
     tolerance : float
         Stopping tolerance on the method's stopping measure, relative to ``max(1, |total cost|)``.
-    order : {"fcfs", "swap", "exhaustive"}
+    order : {"fcfs", "swap", "exhaustive", "master"}
         How the order of users of each exclusive resource is chosen.
     guard : bool
         Whether the nonsmooth guard is on (one-sided gradients where weakly active constraints are reported).
@@ -74,7 +75,7 @@ class CoordinatorSettings:
     method: str = "bundle"
     max_rounds: int = 60
     tolerance: float = 1e-6
-    order: Literal["fcfs", "swap", "exhaustive"] = "fcfs"
+    order: Literal["fcfs", "swap", "exhaustive", "master"] = "fcfs"
     guard: bool = True
     options: dict[str, Any] = field(default_factory=dict)
 

@@ -192,6 +192,11 @@ def _summary(f: RunFiles) -> str:
         ]  # fmt: skip
     else:
         rows.append(("centralized optimum", "not computed (run with --verify)"))
+    if "order_gap_kind" in s:
+        reason = s.get("order_gap_reason") or ""
+        rows.append(("order gap", f"{_e(s.get('order_gap_kind'))}: best order's total ≥ "
+                                  f"{_cost(_f(s.get('order_bound')))}, gap {_cost(_f(s.get('order_gap')))}"
+                                  + (f" ({_e(reason)})" if reason else "")))  # fmt: skip
     for res, order in (s.get("orders") or {}).items():
         shown = " → ".join(_e(a) for a in order[:12])
         if len(order) > 12:

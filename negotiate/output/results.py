@@ -301,6 +301,14 @@ class RunResult:
             "phase_times_s": dict(self.phase_times),
             "flagged_last_round": list(c.evaluation.flagged),
         }
+        bounded = [t for t in self.order_trials if t.gap_kind]
+        if bounded:  # the order master's bound on the best order's total and the gap to it
+            last = bounded[-1]
+            out["order_bound"] = last.bound
+            out["order_gap"] = last.gap
+            out["order_relative_gap"] = last.gap / max(1.0, abs(c.total))
+            out["order_gap_kind"] = last.gap_kind
+            out["order_gap_reason"] = last.gap_reason
         if self.centralized is not None:
             out["centralized_cost"] = self.centralized.total
             out["centralized_status"] = str(self.centralized.status)
@@ -397,7 +405,8 @@ _SUMMARY_KEYS: dict[str, str] = {
     "centralized_status": "str", "rounds": "int", "agent_solves": "int", "order_trials": "int",
     "total_cost": "num", "free_total_cost": "num", "wall_time_s": "num", "centralized_cost": "num",
     "centralized_wall_time_s": "num", "relative_gap": "num", "settings": "object", "orders": "orders",
-    "flagged_last_round": "names",
+    "flagged_last_round": "names", "order_bound": "num", "order_gap": "num", "order_relative_gap": "num",
+    "order_gap_kind": "str", "order_gap_reason": "str",
 }  # fmt: skip
 _KIND_TEXT = {
     "str": "a string", "int": "an integer", "num": "a number or null", "object": "an object",

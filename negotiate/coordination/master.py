@@ -1,0 +1,514 @@
+"""The order master: orders on exclusive resources chosen by a mixed-integer linear program over value cuts.
+
+For fixed orders the coordinator finds the best schedule; the master chooses the orders. It is a
+mixed-integer linear program (HiGHS through :func:`scipy.optimize.milp`) in the stacked parameters ``P``,
+one epigraph variable ``theta_i`` per agent and one binary ``y_uv`` per pair of users ``u, v`` of an
+exclusive resource (1: ``u`` goes first):
+
+* the rows of the coupling polyhedron that hold for every order: the agents' reachable sets, ``enter <=
+  leave`` on every slot, the rows of the resources without an order (capacity) and the rows of an ordered
+  resource that do not depend on the order (a dwell zone's minimum stay);
+* for each pair the disjunction of the resource's rows for ``u`` before ``v`` and for ``v`` before ``u``
+  (for an exclusive resource ``leave_u + gap <= enter_v`` or ``leave_v + gap <= enter_u``), each switched
+  off by a big-M that is the row's largest violation over the reachable boxes (the tightest constant that
+  switches the row off for every reachable point);
+* no cycle among three users of one resource (``y_ab + y_bc + y_ca <= 2``), so that the binaries always
+  spell an order; a cycle across resources along the agents' routes (a deadlock) has no schedule, since
+  each agent's own rows (its route sequence, ``enter <= leave``) and the order rows then contradict, and
+  :func:`~negotiate.resources.coupling.check_orders` confirms every proposal before it is coordinated;
+* for each agent an outer model of its value function from the cuts the coordination collected:
+  ``theta_i >= V_i(p_k) + g . (p_i - p_k)`` for every evaluated point ``p_k`` whose solve converged, with
+  the plain gradient and the nonsmooth guard's one-sided gradients (a failed solve gives no cut), and
+  ``theta_i >= V_i(free optimum)`` (the free optimum minimises ``V_i`` over the reachable set).
+
+Its objective is ``sum_i w_i theta_i``. The loop (generalized Benders decomposition, Geoffrion 1972; the
+logic-based form, Hooker and Ottosson 2003): solve the master, read the orders from its binaries, check them
+(:func:`~negotiate.resources.coupling.check_orders`; an order that admits no schedule, or whose
+coordination fails, is excluded by a no-good cut on its binaries), coordinate with those orders fixed (warm-
+started from the best schedule so far, as the neighbour-swap search does), add the new cuts, and again,
+until the master's lower bound meets the best total within the tolerance, the master repeats an order
+already coordinated, or the budget of coordinations is spent.
+
+The bound and its honesty
+-------------------------
+The master's bound (HiGHS's dual bound of the MILP) is a lower bound on the best total over all orders only
+where every cut under-estimates its agent's value function everywhere, which holds when each ``V_i`` is
+convex in its parameters. That is checked where it can be: every cut must under-estimate the values at all
+other evaluated points of its agent (a necessary condition of convexity), and every value Hessian that the
+coordination computed must have no eigenvalue below ``-CONVEXITY_RTOL`` times its largest magnitude. The
+gap (best total minus bound) is reported as ``"certified"`` when every check passes and as ``"heuristic"``
+otherwise, with the first failing check as the reason. A passed check is evidence, not proof: convexity
+between the evaluated points is not seen. Nothing is downshifted: a cut that fails the check stays in the
+master (it still guides the search), only the bound loses its certificate.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import itertools
+import math
+import os
+import sys
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass, field, replace
+from typing import Any
+
+import numpy as np
+from scipy.optimize import Bounds, LinearConstraint, milp
+from scipy.sparse import coo_array
+
+from negotiate.coordination.methods.base import Evaluation
+from negotiate.coordination.orders import OrderTrial
+from negotiate.core.agent import AgentModel
+from negotiate.errors import DeadlockError, InfeasibleOrdersError
+from negotiate.fleet.spec import Resource
+from negotiate.resources.coupling import Layout, build_feasible_set, check_orders, fcfs_orders
+
+__all__ = [
+    "CONVEXITY_RTOL",
+    "GAP_TOLERANCE",
+    "MASTER_BUDGET",
+    "MasterSolution",
+    "OrderMaster",
+    "search_master",
+]
+
+MASTER_BUDGET = 30
+"""Largest number of coordinations (order trials handed to the coordinator) the master loop spends."""
+GAP_TOLERANCE = 1e-4
+"""The loop stops when best total - bound <= GAP_TOLERANCE * max(1, |best total|)."""
+CONVEXITY_RTOL = 1e-6
+"""Relative slack of the convexity checks (the agents' solves are converged to about 1e-8; see the module
+docstring)."""
+
+_Row = tuple[dict[int, float], float]  # sum coef[j] * P[j] <= rhs, over stacked indices j
+
+
+@contextlib.contextmanager
+def _quiet_stdout() -> Iterator[None]:
+    """Silence the process's standard output (file descriptor 1) for a while: HiGHS's MIP solver (1.x, as
+    SciPy ships it) prints debugging lines straight to it, whatever its options say. Standard error, where
+    the progress bar and the warnings go, is left alone."""
+    try:
+        sys.stdout.flush()
+        saved = os.dup(1)
+    except (OSError, ValueError):  # no descriptor 1 (a closed or replaced stdout): nothing to silence
+        yield
+        return
+    null = os.open(os.devnull, os.O_WRONLY)
+    try:
+        os.dup2(null, 1)
+        yield
+    finally:
+        os.dup2(saved, 1)
+        os.close(saved)
+        os.close(null)
+
+
+def _row_key(row: _Row) -> tuple[tuple[tuple[int, float], ...], float]:
+    return tuple(sorted(row[0].items())), row[1]
+
+
+@dataclass(frozen=True)
+class MasterSolution:
+    """One solve of the master: its status (``"optimal"``, ``"infeasible"``, ``"unbounded"``, ``"stopped"``),
+    the orders its binaries spell, its stacked parameters ``P`` (s, or the resource's unit), its objective
+    and its dual bound (cost units; ``-inf`` when there is none), and HiGHS's message."""
+
+    status: str
+    orders: dict[str, list[str]]
+    P: np.ndarray
+    objective: float
+    bound: float
+    message: str
+    y: np.ndarray = field(repr=False, default_factory=lambda: np.zeros(0))
+
+
+class OrderMaster:
+    """The mixed-integer master over ``agents`` sharing ``resources`` (see the module docstring).
+
+    Raises
+    ------
+    ValueError
+        When a parameter on an ordered resource has an infinite reachable bound (no big-M exists).
+    """
+
+    def __init__(self, agents: Sequence[AgentModel], resources: Sequence[Resource]) -> None:
+        self.agents = list(agents)
+        self.resources = list(resources)
+        self.layout = Layout.of(self.agents)
+        unordered = [r for r in self.resources if not r.needs_order]
+        base = build_feasible_set(self.agents, unordered, {})
+        self.lower, self.upper = base.lower, base.upper
+        self.scale = base.scale
+        self.fixed_A, self.fixed_b = base.A, base.b
+        fixed_rows: list[_Row] = []
+        # pairs[k] = (resource, u, v, rows if u first, rows if v first)
+        self.pairs: list[tuple[str, str, str, list[_Row], list[_Row]]] = []
+        self.users: dict[str, list[str]] = {}
+        for res in self.resources:
+            if not res.needs_order:
+                continue
+            users = res.users(self.agents)
+            self.users[res.name] = users
+            both = [self._rows(res, users), self._rows(res, users[::-1])]
+            common = {_row_key(r) for r in both[0]} & {_row_key(r) for r in both[1]}
+            fixed_rows += [r for r in both[0] if _row_key(r) in common]
+            for u, v in itertools.combinations(users, 2):
+                first = [r for r in self._rows(res, [u, v]) if _row_key(r) not in common]
+                second = [r for r in self._rows(res, [v, u]) if _row_key(r) not in common]
+                self.pairs.append((res.name, u, v, first, second))
+        self.fixed_rows = fixed_rows
+        self.pair_index = {(r, u, v): k for k, (r, u, v, _, _) in enumerate(self.pairs)}
+        for _, u, v, first, second in self.pairs:
+            for coef, _rhs in first + second:
+                bad = [j for j in coef if not (np.isfinite(self.lower[j]) and np.isfinite(self.upper[j]))]
+                if bad:
+                    j = bad[0]
+                    what = self.layout.params[j] if self.layout.params else f"parameter {j}"
+                    raise ValueError(
+                        f"the order master needs finite reachable windows: {what} (users {u}, {v}) has the window "
+                        f"[{self.lower[j]}, {self.upper[j]}] s"
+                    )
+        self.cuts: list[list[tuple[np.ndarray, float, np.ndarray]]] = [[] for _ in self.agents]
+        self.floor = np.full(len(self.agents), -np.inf)
+        self.nogoods: list[np.ndarray] = []
+
+    def _rows(self, res: Resource, order: Sequence[str]) -> list[_Row]:
+        out = []
+        for c in res.coupling_rows(self.agents, order):
+            coef: dict[int, float] = {}
+            for (i, k), v in c.coef.items():
+                j = self.layout.offsets[i] + k
+                coef[j] = coef.get(j, 0.0) + float(v)
+            out.append((coef, float(c.rhs)))
+        return out
+
+    def big_m(self, row: _Row) -> float:
+        """The row's largest violation over the reachable boxes (0 when the box never violates it)."""
+        coef, rhs = row
+        top = sum(max(c * self.lower[j], c * self.upper[j]) for j, c in coef.items())
+        return max(0.0, top - rhs)
+
+    # -- cuts -------------------------------------------------------------------------------------------------
+    def add_cut(self, i: int, p: np.ndarray, value: float, gradient: np.ndarray) -> bool:
+        """Add ``theta_i >= value + gradient . (p_i - p)``; ``False`` when the same cut is already there."""
+        p, g = np.asarray(p, float).ravel(), np.asarray(gradient, float).ravel()
+        if not (np.isfinite(value) and np.all(np.isfinite(p)) and np.all(np.isfinite(g))):
+            return False
+        for q, v, h in self.cuts[i]:
+            if v == value and np.array_equal(q, p) and np.array_equal(h, g):
+                return False
+        self.cuts[i].append((p.copy(), float(value), g.copy()))
+        return True
+
+    def add_floor(self, i: int, value: float) -> None:
+        """``theta_i >= value`` (the agent's value at its free optimum, the least over its reachable set)."""
+        if np.isfinite(value):
+            self.floor[i] = max(self.floor[i], float(value))
+
+    def exclude(self, y: np.ndarray) -> None:
+        """A no-good cut: the binaries ``y`` (one order combination) are never proposed again."""
+        self.nogoods.append(np.round(np.asarray(y, float)).astype(int))
+
+    def binaries(self, orders: dict[str, list[str]]) -> np.ndarray:
+        """The binaries that spell ``orders``."""
+        y = np.zeros(len(self.pairs))
+        for k, (r, u, v, _, _) in enumerate(self.pairs):
+            seq = orders[r]
+            y[k] = 1.0 if seq.index(u) < seq.index(v) else 0.0
+        return y
+
+    def _orders(self, y: np.ndarray) -> dict[str, list[str]]:
+        out = {}
+        for r, users in self.users.items():
+            ahead = {u: 0 for u in users}  # how many users go before u
+            for u, v in itertools.combinations(users, 2):
+                if y[self.pair_index[(r, u, v)]] > 0.5:
+                    ahead[v] += 1
+                else:
+                    ahead[u] += 1
+            out[r] = sorted(users, key=lambda u: (ahead[u], users.index(u)))
+        return out
+
+    # -- the MILP ---------------------------------------------------------------------------------------------
+    def solve(self, weights: np.ndarray, *, rel_gap: float = 1e-9, time_limit: float | None = None) -> MasterSolution:
+        """Solve the master for the agents' ``weights`` (dimensionless)."""
+        n, m, q = self.layout.n, len(self.agents), len(self.pairs)
+        s = self.scale
+        nv = n + m + q
+        rows: list[int] = []
+        cols: list[int] = []
+        vals: list[float] = []
+        lo: list[float] = []
+        hi: list[float] = []
+
+        def put(entries: dict[int, float], lb: float, ub: float) -> None:
+            k = len(lo)
+            for j, v in entries.items():
+                if v != 0.0:
+                    rows.append(k)
+                    cols.append(j)
+                    vals.append(v)
+            lo.append(lb)
+            hi.append(ub)
+
+        for a_row, b in zip(self.fixed_A, self.fixed_b, strict=True):
+            put({int(j): float(a_row[j] * s[j]) for j in np.flatnonzero(a_row)}, -np.inf, float(b))
+        for coef, rhs in self.fixed_rows:
+            put({j: c * s[j] for j, c in coef.items()}, -np.inf, rhs)
+        for k, (_, _, _, first, second) in enumerate(self.pairs):
+            yk = n + m + k
+            for row in first:  # coef.P <= rhs + M (1 - y)
+                M = self.big_m(row)
+                put({**{j: c * s[j] for j, c in row[0].items()}, yk: M}, -np.inf, row[1] + M)
+            for row in second:  # coef.P <= rhs + M y
+                M = self.big_m(row)
+                put({**{j: c * s[j] for j, c in row[0].items()}, yk: -M}, -np.inf, row[1])
+        for r, users_r in self.users.items():
+            for t1, t2, t3 in itertools.combinations(users_r, 3):
+                # before(u, v) = y_uv (u listed first) or 1 - y_vu; a cycle 1>2>3>1 or 1>3>2>1 is refused
+                for cyc in ((t1, t2), (t2, t3), (t3, t1)), ((t1, t3), (t3, t2), (t2, t1)):
+                    entries: dict[int, float] = {}
+                    const = 0.0
+                    for before, after in cyc:
+                        key = (r, before, after) if (r, before, after) in self.pair_index else (r, after, before)
+                        j = n + m + self.pair_index[key]
+                        if key == (r, before, after):
+                            entries[j] = entries.get(j, 0.0) + 1.0
+                        else:
+                            entries[j] = entries.get(j, 0.0) - 1.0
+                            const += 1.0
+                    put(entries, -np.inf, 2.0 - const)
+        for i, cuts in enumerate(self.cuts):
+            sl = self.layout.slice(i)
+            idx = range(sl.start, sl.stop)
+            for pk, vk, gk in cuts:  # theta_i - g.P_i >= V(p_k) - g.p_k
+                put({**{j: -gj * s[j] for j, gj in zip(idx, gk, strict=True)}, n + i: 1.0}, vk - float(gk @ pk), np.inf)
+        for y0 in self.nogoods:  # sum_{y0=1} (1 - y) + sum_{y0=0} y >= 1
+            put({n + m + k: (-1.0 if y0[k] else 1.0) for k in range(q)}, 1.0 - float(y0.sum()), np.inf)
+
+        cost = np.zeros(nv)
+        cost[n : n + m] = weights
+        lb = np.concatenate([self.lower / s, self.floor, np.zeros(q)])
+        ub = np.concatenate([self.upper / s, np.full(m, np.inf), np.ones(q)])
+        integrality = np.concatenate([np.zeros(n + m), np.ones(q)])
+        options: dict[str, Any] = {"mip_rel_gap": rel_gap}
+        if time_limit is not None:
+            options["time_limit"] = time_limit
+        constraints = []
+        if lo:
+            A = coo_array((vals, (rows, cols)), shape=(len(lo), nv)).tocsr()
+            constraints.append(LinearConstraint(A, np.array(lo), np.array(hi)))
+        with _quiet_stdout():
+            res = milp(cost, integrality=integrality, bounds=Bounds(lb, ub), constraints=constraints, options=options)
+        status = {0: "optimal", 1: "stopped", 2: "infeasible", 3: "unbounded"}.get(res.status, "failed")
+        if res.x is None:
+            return MasterSolution(status, {}, np.zeros(n), math.inf, -math.inf, str(res.message))
+        x = np.asarray(res.x)
+        y = np.round(x[n + m :])
+        bound = getattr(res, "mip_dual_bound", None)
+        bound = float(res.fun) if bound is None or not np.isfinite(bound) else float(bound)
+        if status == "optimal":
+            bound = min(bound, float(res.fun))
+        return MasterSolution(status, self._orders(y), x[:n] * s, float(res.fun), bound, str(res.message), y)
+
+
+# -- convexity checks ---------------------------------------------------------------------------------------
+class _Convexity:
+    """Keeps, per agent, the evaluated points and whether every cut under-estimates every other value."""
+
+    def __init__(self, names: Sequence[str]) -> None:
+        self.names = list(names)
+        # per agent: points (K x n), values (K), cut gradients (C x n) and the point each cut was taken at (C)
+        self.P: list[np.ndarray | None] = [None for _ in names]
+        self.V: list[np.ndarray] = [np.zeros(0) for _ in names]
+        self.G: list[np.ndarray | None] = [None for _ in names]
+        self.at: list[np.ndarray] = [np.zeros(0, dtype=int) for _ in names]
+        self.reason = ""
+
+    def add(self, i: int, p: np.ndarray, value: float, gradients: list[np.ndarray]) -> None:
+        p = np.asarray(p, float).ravel()
+        g_new = np.array([np.asarray(g, float).ravel() for g in gradients])
+        P, V, G, at = self.P[i], self.V[i], self.G[i], self.at[i]
+        if P is None or G is None:
+            P, V, G, at = p[None, :], np.array([value]), g_new, np.zeros(len(g_new), dtype=int)
+        else:
+            if not self.reason:
+                # the old cuts at the new point, then the new cuts at the old points
+                d = p[None, :] - P[at]
+                under = V[at] + np.sum(G * d, axis=1)
+                slack = CONVEXITY_RTOL * np.maximum.reduce(
+                    [np.ones(len(at)), np.abs(V[at]), np.full(len(at), abs(value)), np.sum(np.abs(G * d), axis=1)]
+                )
+                excess = under - value - slack
+                d2 = P[None, :, :] - p[None, None, :]  # (1, K, n)
+                under2 = value + np.einsum("gn,kn->gk", g_new, d2[0])
+                slack2 = CONVEXITY_RTOL * np.maximum.reduce(
+                    [np.ones(under2.shape), np.broadcast_to(np.abs(V)[None, :], under2.shape),
+                     np.full(under2.shape, abs(value)), np.abs(g_new) @ np.abs(d2[0]).T]
+                )  # fmt: skip
+                excess2 = under2 - V[None, :] - slack2
+                worst = max(float(np.max(excess, initial=-np.inf)), float(np.max(excess2, initial=-np.inf)))
+                if worst > 0:
+                    self.reason = (
+                        f"agent {self.names[i]!r}: a cut at one evaluated point over-estimates its value at "
+                        f"another evaluated point by more than {worst:.6g} (its value function is not convex "
+                        "there, so its cuts are not lower bounds)"
+                    )
+            k = len(V)
+            P, V = np.vstack([P, p[None, :]]), np.append(V, value)
+            G, at = np.vstack([G, g_new]), np.append(at, np.full(len(g_new), k, dtype=int))
+        self.P[i], self.V[i], self.G[i], self.at[i] = P, V, G, at
+
+    def hessian(self, i: int, H: np.ndarray) -> None:
+        if self.reason or H is None:
+            return
+        H = np.asarray(H, float)
+        if H.size == 0 or not np.all(np.isfinite(H)):
+            return
+        eig = np.linalg.eigvalsh(0.5 * (H + H.T))
+        if eig[0] < -CONVEXITY_RTOL * max(1.0, float(np.max(np.abs(eig)))):
+            self.reason = (
+                f"agent {self.names[i]!r}: a value Hessian has the eigenvalue {eig[0]:.6g} < 0 (its value function "
+                "is not convex there)"
+            )
+
+
+def _text(orders: dict[str, list[str]]) -> str:
+    return "; ".join(f"{r}: {' > '.join(v)}" for r, v in orders.items())
+
+
+def _key(orders: dict[str, list[str]]) -> tuple[tuple[str, tuple[str, ...]], ...]:
+    return tuple(sorted((r, tuple(v)) for r, v in orders.items()))
+
+
+def search_master(
+    agents: Sequence[AgentModel],
+    resources: Sequence[Resource],
+    run: Callable[[dict[str, list[str]], np.ndarray | None], tuple[float, np.ndarray, object]],
+    *,
+    evaluations: list[Evaluation] | None = None,
+    start: dict[str, list[str]] | None = None,
+    budget: int = MASTER_BUDGET,
+    tolerance: float = GAP_TOLERANCE,
+    time_limit: float | None = None,
+) -> tuple[object, dict[str, list[str]], list[OrderTrial]]:
+    """Choose orders with the order master (see the module docstring).
+
+    Parameters
+    ----------
+    agents, resources
+        The fleet.
+    run : callable
+        ``run(orders, start_P) -> (total, P, result)`` coordinates for fixed orders (as for
+        :func:`~negotiate.coordination.orders.search_orders`); ``result.evaluation``, when present, gives cuts.
+    evaluations : list of Evaluation, optional
+        A list that ``run`` appends every evaluation of its coordination to; the master takes the cuts of all
+        of them (without it, only the final evaluation of each coordination gives cuts).
+    start : dict, optional
+        The first orders (first-come-first-served when omitted).
+    budget : int
+        Largest number of coordinations.
+    tolerance : float
+        Relative gap at which the loop stops (relative to ``max(1, |best total|)``).
+    time_limit : float, optional
+        HiGHS's time limit per master solve, s.
+
+    Returns
+    -------
+    best, orders, trials
+        The best coordination result, its orders and every trial, each with the master's bound and gap after
+        its cuts entered (see :class:`~negotiate.coordination.orders.OrderTrial`).
+
+    Raises
+    ------
+    DeadlockError, InfeasibleOrdersError
+        When the first order admits no schedule.
+    """
+    master = OrderMaster(agents, resources)
+    weights = np.array([a.weight for a in agents], dtype=float)
+    convex = _Convexity([a.name for a in agents])
+    seen = 0
+    unsure = ""  # a reason besides convexity why the bound is heuristic
+
+    def take(result: object) -> None:
+        nonlocal seen
+        evs: list[Evaluation] = []
+        if evaluations is not None:
+            evs, seen = list(evaluations[seen:]), len(evaluations)
+        final = getattr(result, "evaluation", None)
+        if isinstance(final, Evaluation):
+            evs.append(final)
+        for ev in evs:
+            for i, rep in enumerate(ev.reports):
+                grads = rep.gradients  # empty when the solve failed: no cut from it
+                if not grads:
+                    continue
+                new = [master.add_cut(i, rep.p, rep.value, g) for g in grads]
+                if any(new):
+                    convex.add(i, np.asarray(rep.p, float).copy(), float(rep.value), grads)
+                if rep.hessian is not None:
+                    convex.hessian(i, rep.hessian)
+
+    for i, a in enumerate(agents):
+        if a.start is not None and a.start.success and a.start.gradient is not None:
+            master.add_floor(i, a.start.value)
+            if master.add_cut(i, a.free_optimum, a.start.value, a.start.gradient):
+                convex.add(i, a.free_optimum.copy(), float(a.start.value), [a.start.gradient])
+
+    orders = {k: list(v) for k, v in (start or fcfs_orders(agents, resources)).items()}
+    check_orders(agents, resources, orders)
+    best_total, best_P, best = run(orders, None)
+    take(best)
+    trials = [OrderTrial({k: list(v) for k, v in orders.items()}, best_total, True)]
+    if not np.isfinite(best_total):
+        master.exclude(master.binaries(orders))
+        unsure = f"the first coordination failed (orders {_text(orders)}) and its orders were left out"
+    tried = {_key(orders)}
+    coordinations = 1
+    last = 0  # the trial whose bound the next master solve gives
+    for _ in range(50 * max(1, budget)):  # no-good cuts may need several master solves per coordination
+        sol = master.solve(weights, rel_gap=min(1e-6, 0.1 * tolerance), time_limit=time_limit)
+        bound = sol.bound if sol.status in ("optimal", "stopped") else -math.inf
+        gap = best_total - bound
+        reason = unsure or convex.reason
+        if sol.status != "optimal":
+            reason = reason or f"the master was not solved to optimality ({sol.status}: {sol.message})"
+        kind = "heuristic" if reason or not np.isfinite(gap) else "certified"
+        trials[last] = replace(trials[last], bound=bound, gap=gap, gap_kind=kind, gap_reason=reason)
+        if sol.status not in ("optimal", "stopped") or not sol.orders:
+            break
+        if gap <= tolerance * max(1.0, abs(best_total)):
+            break
+        if _key(sol.orders) in tried:
+            note = "the master proposes an order already coordinated"
+            trials[last] = replace(trials[last], gap_kind="heuristic", gap_reason=reason or note)
+            break
+        if coordinations >= budget:
+            note = f"the budget of {budget} coordinations is spent"
+            if not reason:
+                trials[last] = replace(trials[last], gap_reason=note)
+            break
+        cand = sol.orders
+        tried.add(_key(cand))
+        try:
+            check_orders(agents, resources, cand)
+        except (DeadlockError, InfeasibleOrdersError) as exc:
+            master.exclude(sol.y)
+            trials.append(OrderTrial(cand, math.inf, False, str(exc)))
+            last = len(trials) - 1
+            continue
+        total, P, result = run(cand, best_P)
+        coordinations += 1
+        take(result)
+        if not np.isfinite(total):
+            master.exclude(sol.y)
+            # its orders may admit a schedule the coordinator did not find: the bound no longer covers them
+            unsure = unsure or f"a coordination failed (orders {_text(cand)}) and its orders were left out"
+        kept = total < best_total - 1e-9 * max(1.0, abs(best_total))
+        trials.append(OrderTrial(cand, total, kept))
+        last = len(trials) - 1
+        if kept:
+            best_total, best_P, best, orders = total, P, result, cand
+    return best, orders, trials

@@ -1,0 +1,295 @@
+"""The order master (negotiate.coordination.master) against enumeration of every order combination.
+
+Reference: for the slot agents of tests/fleets.py every value function is the closed-form convex quadratic
+V(p) = s * sum_j [(enter_j - want_j)^2 + 0.1 (leave_j - enter_j - duration)^2] on a polyhedron written out
+here by hand (the reachable box, the stays, the route sequence, the gap rows of the order), so the best
+schedule of each fixed order is a convex QP that SciPy's SLSQP solves on its own; the best over all orders
+is the least of those. The generalized Benders loop (Geoffrion 1972) must end at that order with a bound
+within its tolerance of it, the bound below the total since every cut of a convex function lies below it.
+"""
+
+from __future__ import annotations
+
+import itertools
+import json
+
+import numpy as np
+import pytest
+from fleets import slot_agent
+from scipy.optimize import minimize
+
+from negotiate.coordination.engine import coordinate
+from negotiate.coordination.master import GAP_TOLERANCE, OrderMaster, search_master
+from negotiate.coordination.orders import search_orders
+from negotiate.errors import DeadlockError, InfeasibleOrdersError
+from negotiate.fleet.spec import CoordinatorSettings, FleetSpec
+from negotiate.resources import ExclusiveResource
+from negotiate.resources.coupling import check_orders
+from negotiate.run import run_fleet
+
+TIGHT = CoordinatorSettings(method="bundle", tolerance=1e-10, max_rounds=300)
+
+
+def runner(agents, resources, settings=TIGHT):
+    """``run`` for the searches, keeping every evaluation of every coordination (the master's cuts)."""
+    seen = []
+
+    def run(orders, start):
+        keep = seen.append
+        r = coordinate(agents, resources, settings, orders=orders, start=start, checkpoint=lambda s: keep(s.latest))
+        return (r.total if r.evaluation.ok else float("inf")), r.P, r
+
+    return run, seen
+
+
+SPECS: dict[str, tuple[float, float, float, list[str]]] = {}
+"""Wish (s), stay (s), stiffness and route of each agent of the last random fleet, for the QP below."""
+
+
+def random_fleet(seed):
+    """Three slot agents on three exclusive resources, random wishes, stays, stiffness and routes (invented)."""
+    rng = np.random.default_rng(seed)
+    names = ["r1", "r2", "r3"]
+    agents = []
+    for k in range(3):
+        route = list(rng.permutation(names)[: rng.integers(2, 4)])
+        want, dur, stiff = float(rng.uniform(0, 20)), float(rng.uniform(4, 10)), float(rng.uniform(0.1, 5))
+        agents.append(slot_agent(f"a{k}", want, dur, stiff, route))
+        SPECS[f"a{k}"] = (want, dur, stiff, route)
+    return agents, [ExclusiveResource(n, gap=2.0) for n in names]
+
+
+def fixed_order_qp(agents, gap, orders):
+    """Best total for fixed orders: the convex QP written out by hand (a weighted least-squares cost
+    ||W (R x - t)||^2 under rows G x >= h), solved by SciPy's SLSQP with exact derivatives."""
+    index, x0, bounds = {}, [], []
+    for a in agents:
+        want, dur, _stiff, route = SPECS[a.name]
+        for j, r in enumerate(route):
+            index[(a.name, r)] = len(x0)
+            x0 += [want + j * dur, want + (j + 1) * dur]
+            bounds += [(want - 100.0, want + 200.0)] * 2
+    n = len(x0)
+    R, t, w, G, h = [], [], [], [], []
+
+    def term(coef, target, weight):
+        row = np.zeros(n)
+        for k, c in coef.items():
+            row[k] = c
+        R.append(row), t.append(target), w.append(weight)
+
+    def ge(coef, rhs):  # sum coef x >= rhs
+        row = np.zeros(n)
+        for k, c in coef.items():
+            row[k] = c
+        G.append(row), h.append(rhs)
+
+    for a in agents:
+        want, dur, stiff, route = SPECS[a.name]
+        for j, r in enumerate(route):
+            k = index[(a.name, r)]
+            term({k: 1.0}, want + j * dur, stiff)  # stiffness (enter - wanted)^2
+            term({k + 1: 1.0, k: -1.0}, dur, 0.1 * stiff)  # 0.1 stiffness (leave - enter - duration)^2
+            ge({k + 1: 1.0, k: -1.0}, dur)  # stay at least the duration
+            if j + 1 < len(route):
+                ge({index[(a.name, route[j + 1])]: 1.0, k + 1: -1.0}, 0.0)  # the next slot after this one
+    for r, users in orders.items():
+        for u, v in zip(users, users[1:], strict=False):
+            ge({index[(v, r)]: 1.0, index[(u, r)] + 1: -1.0}, gap)  # u leaves + gap <= v enters
+    R, t, w, G, h = np.array(R), np.array(t), np.array(w), np.array(G), np.array(h)
+    x = np.array(x0)
+    for ftol in (1e-6, 1e-12):  # a rough solve gives the cost's size, then SLSQP's absolute ftol is relative
+        scale = 1.0 / max(1.0, float(w @ (R @ x - t) ** 2)) if ftol < 1e-6 else 1e-3
+        ws = w * scale
+        res = minimize(
+            lambda x, ws=ws: float(ws @ (R @ x - t) ** 2), x, jac=lambda x, ws=ws: 2.0 * R.T @ (ws * (R @ x - t)),
+            method="SLSQP", bounds=bounds,
+            constraints=[{"type": "ineq", "fun": lambda x: G @ x - h, "jac": lambda x: G}],
+            options={"ftol": ftol, "maxiter": 2000},
+        )  # fmt: skip
+        assert res.success, res.message
+        x = res.x
+    return float(res.fun) / scale
+
+
+def enumerate_orders(agents, resources):
+    """(best total, orders) of every order combination that admits a schedule, best first."""
+    users = {r.name: r.users(agents) for r in resources}
+    out = []
+    for combo in itertools.product(*(itertools.permutations(users[r.name]) for r in resources)):
+        orders = {r.name: list(c) for r, c in zip(resources, combo, strict=True)}
+        try:
+            check_orders(agents, resources, orders)
+        except (DeadlockError, InfeasibleOrdersError):
+            continue
+        out.append((fixed_order_qp(agents, resources[0].gap, orders), orders))
+    return sorted(out, key=lambda t: t[0])
+
+
+class TestSearchMaster:
+    @pytest.mark.parametrize("seed", [0, 2])
+    def test_equals_the_enumerated_best(self, seed):
+        """On two random fleets the master's orders and total are the best of every order combination, and its
+        certified gap lies in [0, tolerance]."""
+        agents, resources = random_fleet(seed)
+        ranked = enumerate_orders(agents, resources)
+        (best_total, best_orders), (second, _) = ranked[0], ranked[1]
+        # the best order is unique by a wide margin, so comparing orders is meaningful
+        assert second > best_total * (1 + 1e-3)
+        run, seen = runner(agents, resources)
+        best, orders, trials = search_master(agents, resources, run, evaluations=seen)
+        assert orders == best_orders
+        # coordination (tolerance 1e-10) and SLSQP (ftol 1e-13) each reach the QP's optimum to ~1e-8
+        np.testing.assert_allclose(best.total, best_total, rtol=1e-6)
+        last = trials[-1]
+        assert last.gap_kind == "certified", last.gap_reason
+        assert 0.0 <= last.gap <= GAP_TOLERANCE * max(1.0, abs(best.total))
+        assert last.bound <= best_total * (1 + 1e-9)  # a lower bound of the enumerated best
+        assert len(trials) < len(ranked)  # fewer coordinations than enumeration
+
+    def test_finds_a_better_order_than_first_come(self):
+        """A soft early agent and a stiff late one on two bridges: first come first served puts the soft one
+        first; the master finds the stiff one first. By hand: the stiff one keeps its wishes (2 s, 12 s), the soft
+        one waits until 13 s and 23 s, paying 0.01 * (13^2 + 13^2)."""
+        agents = [
+            slot_agent("soft", 0.0, 10.0, 0.01, ["r", "s"], earliest=0.0),
+            slot_agent("stiff", 2.0, 10.0, 10.0, ["r", "s"], earliest=2.0),
+        ]
+        resources = [ExclusiveResource("r", gap=1.0), ExclusiveResource("s", gap=1.0)]
+        run, seen = runner(agents, resources)
+        fcfs, first, _ = search_orders(agents, resources, "fcfs", run)
+        best, orders, trials = search_master(agents, resources, run, evaluations=seen)
+        assert first == {"r": ["soft", "stiff"], "s": ["soft", "stiff"]}
+        assert orders == {"r": ["stiff", "soft"], "s": ["stiff", "soft"]}
+        np.testing.assert_allclose(best.total, 0.01 * 2 * 13.0**2, rtol=1e-6)
+        assert best.total < fcfs.total
+        assert trials[0].orders == first and trials[-1].gap_kind == "certified"
+
+    def test_failed_coordination_gives_a_no_good_cut(self):
+        """When the coordination of the best order fails (a stand-in that reports an infinite total), that
+        order is excluded and never proposed again; the search ends at the best of the others, which a plain
+        enumeration of the four combinations (each coordinated) confirms."""
+        agents = [
+            slot_agent("soft", 0.0, 10.0, 0.01, ["r", "s"], earliest=0.0),
+            slot_agent("stiff", 2.0, 10.0, 10.0, ["r", "s"], earliest=2.0),
+        ]
+        resources = [ExclusiveResource("r", gap=1.0), ExclusiveResource("s", gap=1.0)]
+        run, seen = runner(agents, resources)
+        refused = {"r": ["stiff", "soft"], "s": ["stiff", "soft"]}
+
+        def failing(orders, start):
+            if orders == refused:
+                return float("inf"), np.zeros(8), None
+            return run(orders, start)
+
+        best, orders, trials = search_master(agents, resources, failing, evaluations=seen)
+        assert sum(t.orders == refused for t in trials) == 1
+        others = []
+        for o1, o2 in itertools.product(["soft", "stiff"], repeat=2):
+            cand = {r: [o, ({"soft", "stiff"} - {o}).pop()] for r, o in (("r", o1), ("s", o2))}
+            if cand != refused:
+                try:
+                    check_orders(agents, resources, cand)
+                except (DeadlockError, InfeasibleOrdersError):
+                    continue
+                others.append((run(cand, None)[0], cand))
+        total, want = min(others, key=lambda t: t[0])
+        assert orders == want
+        np.testing.assert_allclose(best.total, total, rtol=1e-6)
+        assert trials[-1].gap_kind == "heuristic" and "a coordination failed" in trials[-1].gap_reason
+
+    def test_other_rules_keep_their_trial_keys(self):
+        """The swap search's trials carry exactly the keys they had before the master came (no bound)."""
+        agents = [
+            slot_agent("soft", 0.0, 10.0, 0.01, ["r"], earliest=0.0),
+            slot_agent("stiff", 2.0, 10.0, 10.0, ["r"], earliest=2.0),
+        ]
+        resources = [ExclusiveResource("r", gap=1.0)]
+        run, _seen = runner(agents, resources)
+        _best, _orders, trials = search_orders(agents, resources, "swap", run)
+        assert all(set(t.to_dict()) == {"orders", "total_cost", "kept", "infeasible"} for t in trials)
+
+    def test_nonconvex_agent_makes_the_gap_heuristic(self):
+        """An agent whose cost is a concave quadratic (negative stiffness): its cuts over-estimate its values
+        elsewhere, so the gap is reported as heuristic, naming the agent."""
+        agents = [
+            slot_agent("bump", 0.0, 10.0, -0.01, ["r"], earliest=0.0),
+            slot_agent("plain", 2.0, 10.0, 1.0, ["r"], earliest=2.0),
+        ]
+        resources = [ExclusiveResource("r", gap=1.0)]
+        run, seen = runner(agents, resources, CoordinatorSettings(method="bundle", max_rounds=60))
+        _best, _orders, trials = search_master(agents, resources, run, evaluations=seen)
+        last = trials[-1]
+        assert last.gap_kind == "heuristic"
+        assert "'bump'" in last.gap_reason and "not convex" in last.gap_reason
+
+
+def crossing():
+    """A goes r1 then r2, B goes r2 then r1 (a crossing of two routes)."""
+    agents = [
+        slot_agent("A", 0.0, 5.0, 1.0, ["r1", "r2"]),
+        slot_agent("B", 3.0, 5.0, 1.0, ["r2", "r1"]),
+    ]
+    return agents, [ExclusiveResource("r1", gap=1.0), ExclusiveResource("r2", gap=1.0)]
+
+
+class TestOrderMaster:
+    def test_deadlock_is_infeasible_in_the_master(self):
+        """r1: B before A and r2: A before B close the cycle A.r1 -> A.r2 -> B.r2 -> B.r1 -> A.r1 (the
+        precedence graph's cycle, which check_orders names); with the other three combinations excluded the
+        master has no solution, so its rows alone exclude the deadlock."""
+        agents, resources = crossing()
+        dead = {"r1": ["B", "A"], "r2": ["A", "B"]}
+        with pytest.raises(DeadlockError):
+            check_orders(agents, resources, dead)
+        master = OrderMaster(agents, resources)
+        for i in range(len(agents)):
+            master.add_floor(i, 0.0)
+        for o1, o2 in itertools.product(["AB", "BA"], repeat=2):
+            orders = {"r1": list(o1), "r2": list(o2)}
+            if orders != dead:
+                master.exclude(master.binaries(orders))
+        assert master.solve(np.ones(2)).status == "infeasible"
+
+    def test_master_with_one_combination_left_proposes_it(self):
+        """With every combination but one excluded the master proposes that one (the binaries spell it)."""
+        agents, resources = crossing()
+        master = OrderMaster(agents, resources)
+        for i in range(2):
+            master.add_floor(i, 0.0)
+        keep = {"r1": ["B", "A"], "r2": ["B", "A"]}
+        for o1, o2 in itertools.product(["AB", "BA"], repeat=2):
+            orders = {"r1": list(o1), "r2": list(o2)}
+            if orders != keep:
+                master.exclude(master.binaries(orders))
+        sol = master.solve(np.ones(2))
+        assert sol.status == "optimal" and sol.orders == keep
+
+    def test_big_m_is_the_largest_violation_over_the_boxes(self):
+        """leave_A + 1 <= enter_B: A's leave reaches at most 200 s (its box: wish 0 + 200 s), B's enter at least
+        3 - 100 = -97 s (slot_agent's box), so the largest violation is 200 + 1 + 97 = 298 s (by hand)."""
+        agents, resources = crossing()
+        master = OrderMaster(agents, resources)
+        res, u, v, first, _second = master.pairs[0]
+        assert (res, u, v) == ("r1", "A", "B") and len(first) == 1
+        assert master.big_m(first[0]) == pytest.approx(298.0, abs=1e-12)
+
+
+class TestRunFleet:
+    def test_run_json_shows_the_order_gap(self, tmp_path):
+        """order = "master" through run_fleet: run.json gets the bound, the gap and its kind; the other keys
+        are those of any run."""
+        agents = [
+            slot_agent("soft", 0.0, 10.0, 0.01, ["r"], earliest=0.0),
+            slot_agent("stiff", 2.0, 10.0, 10.0, ["r"], earliest=2.0),
+        ]
+        resources = (ExclusiveResource("r", gap=1.0),)
+        spec = FleetSpec("two", resources, (), CoordinatorSettings(order="master", tolerance=1e-10))
+        result = run_fleet(spec, agents, out=tmp_path / "run")
+        data = json.loads((tmp_path / "run" / "run.json").read_text())
+        assert data["orders"] == {"r": ["stiff", "soft"]}
+        assert data["order_gap_kind"] == "certified"
+        assert data["order_bound"] <= data["total_cost"] and data["order_gap"] >= 0
+        np.testing.assert_allclose(result.total, 0.01 * 13.0**2, rtol=1e-6)  # by hand (see above)
+        keys = {"orders", "total_cost", "kept", "infeasible", "bound", "gap", "gap_kind"}
+        assert keys <= set(data["order_search"][0])
