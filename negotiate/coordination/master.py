@@ -58,7 +58,7 @@ from scipy.optimize import Bounds, LinearConstraint, milp
 from scipy.sparse import coo_array
 
 from negotiate.coordination.methods.base import Evaluation
-from negotiate.coordination.orders import OrderTrial
+from negotiate.coordination.orders import Incumbent, OrderTrial, order_key
 from negotiate.core.agent import AgentModel
 from negotiate.errors import DeadlockError, InfeasibleOrdersError
 from negotiate.fleet.spec import Resource
@@ -70,11 +70,14 @@ __all__ = [
     "MASTER_BUDGET",
     "MasterSolution",
     "OrderMaster",
+    "SWAP_PASSES",
     "search_master",
 ]
 
 MASTER_BUDGET = 30
 """Largest number of coordinations (order trials handed to the coordinator) the master loop spends."""
+SWAP_PASSES = 3
+"""Largest number of passes of adjacent swaps over the master's best order (as the ``swap`` rule's default)."""
 GAP_TOLERANCE = 1e-4
 """The loop stops when best total - bound <= GAP_TOLERANCE * max(1, |best total|)."""
 CONVEXITY_RTOL = 1e-6
@@ -105,7 +108,7 @@ def _quiet_stdout() -> Iterator[None]:
         os.close(null)
 
 
-def _row_key(row: _Row) -> tuple[tuple[tuple[int, float], ...], float]:
+def _roworder_key(row: _Row) -> tuple[tuple[tuple[int, float], ...], float]:
     return tuple(sorted(row[0].items())), row[1]
 
 
@@ -152,11 +155,11 @@ class OrderMaster:
             users = res.users(self.agents)
             self.users[res.name] = users
             both = [self._rows(res, users), self._rows(res, users[::-1])]
-            common = {_row_key(r) for r in both[0]} & {_row_key(r) for r in both[1]}
-            fixed_rows += [r for r in both[0] if _row_key(r) in common]
+            common = {_roworder_key(r) for r in both[0]} & {_roworder_key(r) for r in both[1]}
+            fixed_rows += [r for r in both[0] if _roworder_key(r) in common]
             for u, v in itertools.combinations(users, 2):
-                first = [r for r in self._rows(res, [u, v]) if _row_key(r) not in common]
-                second = [r for r in self._rows(res, [v, u]) if _row_key(r) not in common]
+                first = [r for r in self._rows(res, [u, v]) if _roworder_key(r) not in common]
+                second = [r for r in self._rows(res, [v, u]) if _roworder_key(r) not in common]
                 self.pairs.append((res.name, u, v, first, second))
         self.fixed_rows = fixed_rows
         self.pair_index = {(r, u, v): k for k, (r, u, v, _, _) in enumerate(self.pairs)}
@@ -379,10 +382,6 @@ def _text(orders: dict[str, list[str]]) -> str:
     return "; ".join(f"{r}: {' > '.join(v)}" for r, v in orders.items())
 
 
-def _key(orders: dict[str, list[str]]) -> tuple[tuple[str, tuple[str, ...]], ...]:
-    return tuple(sorted((r, tuple(v)) for r, v in orders.items()))
-
-
 def search_master(
     agents: Sequence[AgentModel],
     resources: Sequence[Resource],
@@ -393,6 +392,7 @@ def search_master(
     budget: int = MASTER_BUDGET,
     tolerance: float = GAP_TOLERANCE,
     time_limit: float | None = None,
+    swap_passes: int = SWAP_PASSES,
 ) -> tuple[object, dict[str, list[str]], list[OrderTrial]]:
     """Choose orders with the order master (see the module docstring).
 
@@ -414,6 +414,9 @@ def search_master(
         Relative gap at which the loop stops (relative to ``max(1, |best total|)``).
     time_limit : float, optional
         HiGHS's time limit per master solve, s.
+    swap_passes : int
+        Largest number of passes of adjacent swaps over the best order after the loop (0: none); no pass is
+        made when the loop ended with a certified gap within ``tolerance``.
 
     Returns
     -------
@@ -461,11 +464,11 @@ def search_master(
     check_orders(agents, resources, orders)
     best_total, best_P, best = run(orders, None)
     take(best)
-    trials = [OrderTrial({k: list(v) for k, v in orders.items()}, best_total, True)]
+    trials = [OrderTrial({k: list(v) for k, v in orders.items()}, best_total, True, stage="master")]
     if not np.isfinite(best_total):
         master.exclude(master.binaries(orders))
         unsure = f"the first coordination failed (orders {_text(orders)}) and its orders were left out"
-    tried = {_key(orders)}
+    tried = {order_key(orders)}
     coordinations = 1
     last = 0  # the trial whose bound the next master solve gives
     for _ in range(50 * max(1, budget)):  # no-good cuts may need several master solves per coordination
@@ -481,7 +484,7 @@ def search_master(
             break
         if gap <= tolerance * max(1.0, abs(best_total)):
             break
-        if _key(sol.orders) in tried:
+        if order_key(sol.orders) in tried:
             note = "the master proposes an order already coordinated"
             trials[last] = replace(trials[last], gap_kind="heuristic", gap_reason=reason or note)
             break
@@ -491,12 +494,12 @@ def search_master(
                 trials[last] = replace(trials[last], gap_reason=note)
             break
         cand = sol.orders
-        tried.add(_key(cand))
+        tried.add(order_key(cand))
         try:
             check_orders(agents, resources, cand)
         except (DeadlockError, InfeasibleOrdersError) as exc:
             master.exclude(sol.y)
-            trials.append(OrderTrial(cand, math.inf, False, str(exc)))
+            trials.append(OrderTrial(cand, math.inf, False, str(exc), stage="master"))
             last = len(trials) - 1
             continue
         total, P, result = run(cand, best_P)
@@ -507,8 +510,27 @@ def search_master(
             # its orders may admit a schedule the coordinator did not find: the bound no longer covers them
             unsure = unsure or f"a coordination failed (orders {_text(cand)}) and its orders were left out"
         kept = total < best_total - 1e-9 * max(1.0, abs(best_total))
-        trials.append(OrderTrial(cand, total, kept))
+        trials.append(OrderTrial(cand, total, kept, stage="master"))
         last = len(trials) - 1
         if kept:
             best_total, best_P, best, orders = total, P, result, cand
-    return best, orders, trials
+
+    # adjacent swaps of the best order, each a warm fixed-order coordination whose cuts enter the master too
+    end = trials[last]
+    if swap_passes <= 0 or (end.gap_kind == "certified" and end.gap <= tolerance * max(1.0, abs(best_total))):
+        return best, orders, trials
+    first = len(trials)
+    refine = Incumbent(
+        agents, resources, run, orders, best_total, best_P, best, trials, tried=tried, stage="swap", on_result=take
+    )  # fmt: skip
+    refine.swaps(swap_passes)
+    # the master's bound covers every order whatever the swaps found; a better incumbent only shrinks the gap,
+    # and a swap's cuts that reveal a non-convex value function take the certificate away
+    running = best_total
+    for k in range(first, len(trials)):
+        running = trials[k].total if trials[k].kept else running
+        reason = end.gap_reason if end.gap_kind == "heuristic" else convex.reason or end.gap_reason
+        gap = running - end.bound
+        kind = "heuristic" if end.gap_kind == "heuristic" or convex.reason or not np.isfinite(gap) else "certified"
+        trials[k] = replace(trials[k], bound=end.bound, gap=gap, gap_kind=kind, gap_reason=reason)
+    return refine.best, refine.orders, trials

@@ -27,7 +27,7 @@ from negotiate.errors import DeadlockError, InfeasibleOrdersError
 from negotiate.fleet.spec import Resource
 from negotiate.resources.coupling import check_orders, fcfs_orders
 
-__all__ = ["EXHAUSTIVE_LIMIT", "OrderTrial", "search_orders"]
+__all__ = ["EXHAUSTIVE_LIMIT", "Incumbent", "OrderTrial", "order_key", "search_orders"]
 
 EXHAUSTIVE_LIMIT = 7
 """Largest number of users of one resource for which every order is tried (7! = 5040 orders)."""
@@ -41,7 +41,9 @@ class OrderTrial:
     The order master (:mod:`negotiate.coordination.master`) also fills in, after the trial's cuts entered:
     ``bound``, its lower bound on the best total over all orders (cost units), ``gap``, the best total so
     far minus that bound, and ``gap_kind``, ``"certified"`` or ``"heuristic"``, with ``gap_reason`` saying
-    why a gap is heuristic. The other rules leave them empty (``nan``, ``""``).
+    why a gap is heuristic, and ``stage``, ``"master"`` for an order the master proposed (or the first one)
+    and ``"swap"`` for one of the adjacent swaps that refine the master's best order. The other rules leave
+    them empty (``nan``, ``""``).
     """
 
     orders: dict[str, list[str]]
@@ -52,6 +54,7 @@ class OrderTrial:
     gap: float = math.nan
     gap_kind: str = ""
     gap_reason: str = ""
+    stage: str = ""
 
     def to_dict(self) -> dict[str, object]:
         out: dict[str, object] = {
@@ -59,7 +62,98 @@ class OrderTrial:
         }  # fmt: skip
         if self.gap_kind:
             out.update(bound=self.bound, gap=self.gap, gap_kind=self.gap_kind, gap_reason=self.gap_reason)
+        if self.stage:
+            out["stage"] = self.stage
         return out
+
+
+def order_key(orders: dict[str, list[str]]) -> tuple[tuple[str, tuple[str, ...]], ...]:
+    """A hashable key of ``orders`` (the same orders give the same key whatever the resources' sequence)."""
+    return tuple(sorted((r, tuple(v)) for r, v in orders.items()))
+
+
+class Incumbent:
+    """The best orders so far and the trials that led there: the neighbour-swap step that the ``swap`` rule
+    and the order master's refinement share.
+
+    Parameters
+    ----------
+    agents, resources
+        The fleet.
+    run : callable
+        ``run(orders, start_P) -> (total, P, result)`` coordinates for fixed orders.
+    orders, total, P, best
+        The best orders so far, their coordinated total (cost units), stacked parameters and result.
+    trials : list of OrderTrial
+        The search's trials; every candidate is appended to it.
+    tried : set, optional
+        Keys (:func:`order_key`) of orders already coordinated: a candidate among them is not coordinated again
+        and adds no trial (without it every candidate is coordinated). New candidates join it.
+    stage : str
+        The :attr:`OrderTrial.stage` of the trials this search appends.
+    on_result : callable, optional
+        Called with every coordination's result (the order master takes its cuts from it).
+    """
+
+    def __init__(
+        self,
+        agents: Sequence[AgentModel],
+        resources: Sequence[Resource],
+        run: Callable[[dict[str, list[str]], np.ndarray | None], tuple[float, np.ndarray, object]],
+        orders: dict[str, list[str]],
+        total: float,
+        P: np.ndarray,
+        best: object,
+        trials: list[OrderTrial],
+        *,
+        tried: set[tuple[tuple[str, tuple[str, ...]], ...]] | None = None,
+        stage: str = "",
+        on_result: Callable[[object], None] | None = None,
+    ) -> None:
+        self.agents, self.resources, self.run = agents, resources, run
+        self.orders, self.total, self.P, self.best = orders, total, P, best
+        self.trials, self.tried, self.stage, self.on_result = trials, tried, stage, on_result
+        self.coordinations = 0  # candidates handed to ``run`` by this search
+
+    def attempt(self, candidate: dict[str, list[str]]) -> bool:
+        """Check ``candidate`` (skipped as an infeasible trial when it admits no schedule), coordinate it warm-
+        started from the best schedule so far and keep it when it lowers the total; True when kept."""
+        if self.tried is not None:
+            key = order_key(candidate)
+            if key in self.tried:
+                return False
+            self.tried.add(key)
+        try:
+            check_orders(self.agents, self.resources, candidate)
+        except (DeadlockError, InfeasibleOrdersError) as exc:
+            self.trials.append(OrderTrial(candidate, float("inf"), False, str(exc), stage=self.stage))
+            return False
+        total, P, result = self.run(candidate, self.P)
+        self.coordinations += 1
+        if self.on_result is not None:
+            self.on_result(result)
+        kept = total < self.total - 1e-9 * max(1.0, abs(self.total))
+        self.trials.append(OrderTrial(candidate, total, kept, stage=self.stage))
+        if kept:
+            self.total, self.P, self.best, self.orders = total, P, result, candidate
+        return kept
+
+    def swaps(self, max_passes: int) -> None:
+        """Exchange neighbours in the order of each exclusive resource, one candidate at a time (each through
+        :meth:`attempt`), until a pass over all neighbours brings no improvement or ``max_passes`` are done."""
+        exclusive = [r.name for r in self.resources if r.needs_order]  # resources whose users take turns
+        for _ in range(max_passes):
+            improved = False
+            for name in exclusive:
+                k = 0
+                while k < len(self.orders[name]) - 1:
+                    cand = {r: list(v) for r, v in self.orders.items()}
+                    seq = cand[name]
+                    seq[k], seq[k + 1] = seq[k + 1], seq[k]
+                    improved |= self.attempt(cand)
+                    k += 1
+            if not improved:
+                break
 
 
 def search_orders(
@@ -89,50 +183,24 @@ def search_orders(
     trials = [OrderTrial({k: list(v) for k, v in orders.items()}, best_total, True)]
     if rule == "fcfs":
         return best, orders, trials
-    exclusive = [r.name for r in resources if r.needs_order]  # resources whose users take turns
-
-    def attempt(candidate: dict[str, list[str]]) -> bool:
-        nonlocal best_total, best_P, best, orders
-        try:
-            check_orders(agents, resources, candidate)
-        except (DeadlockError, InfeasibleOrdersError) as exc:
-            trials.append(OrderTrial(candidate, float("inf"), False, str(exc)))
-            return False
-        total, P, result = run(candidate, best_P)
-        kept = total < best_total - 1e-9 * max(1.0, abs(best_total))
-        trials.append(OrderTrial(candidate, total, kept))
-        if kept:
-            best_total, best_P, best, orders = total, P, result, candidate
-        return kept
-
+    search = Incumbent(agents, resources, run, orders, best_total, best_P, best, trials)
     if rule == "swap":
-        for _ in range(max_passes):
-            improved = False
-            for name in exclusive:
-                k = 0
-                while k < len(orders[name]) - 1:
-                    cand = {r: list(v) for r, v in orders.items()}
-                    seq = cand[name]
-                    seq[k], seq[k + 1] = seq[k + 1], seq[k]
-                    improved |= attempt(cand)
-                    k += 1
-            if not improved:
-                break
+        search.swaps(max_passes)
     elif rule == "exhaustive":
-        for name in exclusive:
-            users = list(orders[name])
+        for name in (r.name for r in resources if r.needs_order):
+            users = list(search.orders[name])
             if len(users) > EXHAUSTIVE_LIMIT:
                 raise ValueError(
                     f"exhaustive order search is limited to {EXHAUSTIVE_LIMIT} users per resource; "
                     f'resource {name!r} has {len(users)} (use order = "swap")'
                 )
-            current = tuple(orders[name])
+            current = tuple(search.orders[name])
             for perm in itertools.permutations(users):
                 if perm == current:
                     continue
-                cand = {r: list(v) for r, v in orders.items()}
+                cand = {r: list(v) for r, v in search.orders.items()}
                 cand[name] = list(perm)
-                attempt(cand)
+                search.attempt(cand)
     else:
         raise ValueError(f"unknown order rule {rule!r}; expected 'fcfs', 'swap' or 'exhaustive'")
-    return best, orders, trials
+    return search.best, search.orders, trials
