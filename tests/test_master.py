@@ -10,6 +10,7 @@ within its tolerance of it, the bound below the total since every cut of a conve
 
 from __future__ import annotations
 
+import functools
 import itertools
 import json
 
@@ -18,9 +19,10 @@ import pytest
 from fleets import slot_agent
 from scipy.optimize import minimize
 
+import negotiate.run
 from negotiate.coordination.engine import coordinate
 from negotiate.coordination.master import GAP_TOLERANCE, OrderMaster, search_master
-from negotiate.coordination.orders import search_orders
+from negotiate.coordination.orders import order_key, search_orders
 from negotiate.errors import DeadlockError, InfeasibleOrdersError
 from negotiate.fleet.spec import CoordinatorSettings, FleetSpec
 from negotiate.resources import ExclusiveResource
@@ -293,3 +295,67 @@ class TestRunFleet:
         np.testing.assert_allclose(result.total, 0.01 * 13.0**2, rtol=1e-6)  # by hand (see above)
         keys = {"orders", "total_cost", "kept", "infeasible", "bound", "gap", "gap_kind"}
         assert keys <= set(data["order_search"][0])
+
+
+class TestSwapRefinement:
+    @pytest.mark.parametrize("seed", [8, 20])
+    def test_swaps_after_a_short_master_reach_the_enumerated_best(self, seed):
+        """With a budget of two coordinations (first come first served and one proposal of the master) the loop
+        stops short; adjacent swaps of its best order, each a warm fixed-order coordination, then reach the best
+        of every order combination (enumerated by the hand-written QP), with fewer coordinations than that
+        enumeration. The bound stays the master's, the gap shrinks to the new total minus it."""
+        agents, resources = random_fleet(seed)
+        ranked = enumerate_orders(agents, resources)
+        (best_total, best_orders), (second, _) = ranked[0], ranked[1]
+        assert second > best_total * (1 + 1e-3)  # a unique best order, so comparing orders is meaningful
+        run, seen = runner(agents, resources)
+        best, orders, trials = search_master(agents, resources, run, evaluations=seen, budget=2)
+        stages = [t.stage for t in trials]
+        assert stages[:2] == ["master", "master"] and set(stages[2:]) == {"swap"}
+        master_best = min(t.total for t in trials if t.stage == "master")
+        assert master_best > best_total * (1 + 1e-3)  # the master alone stopped short of the best order
+        assert any(t.kept for t in trials if t.stage == "swap")  # a swap improved on it
+        assert orders == best_orders
+        np.testing.assert_allclose(best.total, best_total, rtol=1e-6)  # both solves reach the QP's optimum to ~1e-8
+        coordinated = [order_key(t.orders) for t in trials if not t.infeasible]
+        assert len(set(coordinated)) == len(coordinated)  # no order coordinated twice
+        assert len(coordinated) < len(ranked)  # fewer coordinations than enumeration
+        bound = trials[1].bound  # the master's bound after its last coordination
+        assert bound <= best_total * (1 + 1e-9)  # a lower bound of the enumerated best
+        last = trials[-1]
+        assert last.bound == bound and last.gap_kind == "certified", last.gap_reason
+        np.testing.assert_allclose(last.gap, best.total - bound, rtol=1e-12)
+        assert last.gap < trials[1].gap
+        assert last.to_dict()["stage"] == "swap"
+
+    def test_no_swaps_after_a_certified_master(self):
+        """When the loop ends with a certified gap within its tolerance no swap is tried (it could gain less
+        than the tolerance); swap_passes = 0 turns the refinement off after a loop that stopped short."""
+        agents = [
+            slot_agent("soft", 0.0, 10.0, 0.01, ["r", "s"], earliest=0.0),
+            slot_agent("stiff", 2.0, 10.0, 10.0, ["r", "s"], earliest=2.0),
+        ]
+        resources = [ExclusiveResource("r", gap=1.0), ExclusiveResource("s", gap=1.0)]
+        run, seen = runner(agents, resources)
+        _best, _orders, trials = search_master(agents, resources, run, evaluations=seen)
+        assert trials[-1].gap_kind == "certified" and all(t.stage == "master" for t in trials)
+        agents, resources = random_fleet(8)
+        run, seen = runner(agents, resources)
+        _best, _orders, trials = search_master(agents, resources, run, evaluations=seen, budget=2, swap_passes=0)
+        assert [t.stage for t in trials] == ["master", "master"]
+
+    def test_run_json_lists_the_swaps(self, tmp_path, monkeypatch):
+        """Through run_fleet (the master's budget cut to two coordinations) run.json's order_search lists the
+        swap trials with their stage, and the reported gap is the last trial's: total minus the master's bound."""
+        agents, resources = random_fleet(8)
+        best_total = enumerate_orders(agents, resources)[0][0]
+        monkeypatch.setattr(negotiate.run, "search_master", functools.partial(search_master, budget=2))
+        spec = FleetSpec("eight", tuple(resources), (), CoordinatorSettings(order="master", tolerance=1e-10))
+        result = run_fleet(spec, agents, out=tmp_path / "run")
+        data = json.loads((tmp_path / "run" / "run.json").read_text())
+        stages = [t["stage"] for t in data["order_search"]]
+        assert stages[:2] == ["master", "master"] and set(stages[2:]) == {"swap"}
+        np.testing.assert_allclose(result.total, best_total, rtol=1e-6)  # the enumerated best (see above)
+        last = data["order_search"][-1]
+        assert data["order_gap"] == last["gap"] and data["order_bound"] == data["order_search"][1]["bound"]
+        np.testing.assert_allclose(data["order_gap"], data["total_cost"] - data["order_bound"], rtol=1e-12)
