@@ -29,6 +29,12 @@ started from the best schedule so far, as the neighbour-swap search does), add t
 until the master's lower bound meets the best total within the tolerance, the master repeats an order
 already coordinated, or the budget of coordinations is spent.
 
+When the loop stops short of a certified gap within the tolerance, adjacent swaps refine the best order (the
+step of the ``swap`` rule, :class:`~negotiate.coordination.orders.Incumbent`; each candidate checked, then
+coordinated warm with its orders fixed, an order already coordinated skipped). Their cuts enter the master and
+the convexity checks too; the bound stays the master's (it covers every order), so a better total only shrinks
+the gap, and a swap's cuts that show a non-convex value function make it heuristic.
+
 The bound and its honesty
 -------------------------
 The master's bound (HiGHS's dual bound of the MILP) is a lower bound on the best total over all orders only
