@@ -73,6 +73,7 @@ class ProximalBundle(Method):
     def start(self, first: Evaluation) -> None:
         self.s = self.feasible.scale
         self.m = self.options["serious"]
+        self.m_tilde = 0.5
         self.gamma_rel = self.options["downshift"]
         self.max_cuts = self.options["max_cuts"]
         self.keep_cuts = self.options["keep_cuts"]
@@ -145,6 +146,17 @@ class ProximalBundle(Method):
             G.append(g_j)
             a.append(-max(e, gamma * d2))
         return np.array(G).reshape(-1, c_i.size), np.array(a)
+
+    def model_at(self, P: np.ndarray) -> float:
+        """Weighted value of the cutting-plane model (cuts shifted around the current centre) at ``P``."""
+        assert self.center is not None and self.mu is not None
+        c = self.center
+        model = 0.0
+        for i in range(len(self.lay.names)):
+            sl = self.lay.slice(i)
+            G, a = self.shifted(i, c.P[sl], c.reports[i].value, self.gamma_rel * self.mu)
+            model += c.weights[i] * (c.reports[i].value + float(np.max(a + G @ (P[sl] - c.P[sl]))))
+        return model
 
     def master(self) -> tuple[np.ndarray | None, float, str]:
         assert self.center is not None and self.mu is not None
@@ -226,6 +238,11 @@ class ProximalBundle(Method):
                 note = "serious"
             else:
                 if not latest.ok or latest.total > c.total:
+                    self.kappa *= 2.0
+                elif c.total - self.model_at(latest.P) >= self.m_tilde * self.delta:
+                    # The new cuts, downshifted around the centre, leave the model at the trial nearly where it
+                    # was: the same master would give the same trial again. Only a tighter proximity term moves
+                    # it (proximity control test of Noll, Prot & Apkarian 2008).
                     self.kappa *= 2.0
                 note = "null" if latest.ok else "null (agent failed)"
         return self.propose_from_center(note)
