@@ -32,7 +32,11 @@ need many rounds to learn on smooth pieces.
 Serious step when the trial total is at most ``total(c) - m * delta`` (``delta`` = predicted decrease, the
 centre's total minus the model's value at the trial), null step otherwise. The proximity factor ``kappa``
 is halved after a serious step that realised most of the prediction and doubled after a trial that
-increased the total or made an agent fail. Stopping measure: the larger of ``delta`` and
+increased the total or made an agent fail. It is also doubled after a null step whose new cuts, downshifted
+around the centre, still promise at least half the predicted decrease at that trial (the proximity control
+test of Noll, Prot & Apkarian 2008, "A proximity control algorithm to minimize nonsmooth and nonconvex
+functions", Pacific J. Optim. 4(3):571-604): the model did not learn there, and the same master would give
+the same trial again, round after round, until max-rounds. Stopping measure: the larger of ``delta`` and
 ``max(kappa, 1)^2 d.M.d / 2`` for the step ``d`` taken (what the step would promise without the extra
 damping, which does not vanish just because ``kappa`` grew), relative to ``max(1, |total(c)|)``. Before
 it stops, the method resets the metric to that of a plain first step from the centre and asks once more
