@@ -251,6 +251,23 @@ class ProximalBundle(Method):
                 note = "null" if latest.ok else "null (agent failed)"
         return self.propose_from_center(note)
 
+    def projected_gradient_norm(self, c: Evaluation) -> float:
+        """Length of the centre's projected gradient in scaled units (Calamai & More 1987, "Projected gradient
+        methods for linearly constrained problems", Math. Programming 39:93-116): ``|u_c - proj(u_c - t g)| / t``
+        for the step ``t`` of a first step (``first_step / |g|``). At a constrained point the plain gradient
+        keeps the prices of the binding rows, which no step along the coupling polyhedron can realise; a
+        metric scaled by it would promise too little and stop early."""
+        gu = c.gradient * self.s
+        norm = float(np.linalg.norm(gu))
+        if norm == 0.0:
+            return 0.0
+        t = self.first_step / norm
+        try:
+            Q = self.feasible.project(c.P - t * gu * self.s)
+        except RuntimeError:
+            return norm
+        return float(np.linalg.norm((c.P - Q) / self.s)) / t
+
     def propose_from_center(self, note: str) -> Proposal:
         """Solve the master around the current centre and return the trial (or stop)."""
         P, model, why = self.master()
@@ -271,7 +288,7 @@ class ProximalBundle(Method):
             # A learned metric can overstate the curvature (on kinked or flat pieces) and so promise too
             # little: before stopping, ask again with the plain metric of a first step from here.
             self.reset_since_serious = True
-            mu = max(float(np.linalg.norm(c.gradient * self.s)) / self.first_step, 1e-12)
+            mu = max(self.projected_gradient_norm(c) / self.first_step, 1e-12)
             self.M = [mu * np.eye(k) for k in self.lay.sizes]
             self.kappa = 1.0
             return self.propose_from_center("metric reset before stopping")
