@@ -209,6 +209,27 @@ class TestNonsmoothGuard:
         np.testing.assert_allclose(res.P, [1.0], atol=1e-9)
 
 
+    @pytest.mark.parametrize("seed", [0, 1])
+    def test_bundle_converges_on_generated_depots(self, seed):
+        """Four generated tractors on one grid connection: the bundle method stops on its tolerance (it used to
+        repeat the same trial, a slight decrease short of the serious-step test, until max-rounds) at the cost
+        of the centralized IPOPT solve for the same feasible set."""
+        import tomllib
+
+        from negotiate.fleet.build import build_agents
+        from negotiate.fleet.parse import parse_fleet
+        from negotiate.tools.generate import generate_fleet
+
+        spec = parse_fleet(tomllib.loads(generate_fleet("depot", 4, seed)))
+        agents = build_agents(spec)
+        res = coordinate(agents, spec.resources, replace(spec.coordinator, method="bundle"))
+        assert res.success, (res.status, res.rounds, res.message)
+        ref = solve_centralized(agents, res.evaluation.feasible)
+        assert ref.success, ref.message
+        # 1e-6 relative: the fleet's own stopping tolerance on the relative predicted decrease
+        assert abs(res.total - ref.total) <= 1e-6 * abs(ref.total), (res.total, ref.total)
+
+
 class TestOrders:
     def two_way_agents(self):
         return [slot_agent("A", 0.0, 10.0, 1.0, ["r1", "r2"]), slot_agent("B", 5.0, 10.0, 1.0, ["r2", "r1"])]

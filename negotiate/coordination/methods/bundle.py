@@ -32,7 +32,11 @@ need many rounds to learn on smooth pieces.
 Serious step when the trial total is at most ``total(c) - m * delta`` (``delta`` = predicted decrease, the
 centre's total minus the model's value at the trial), null step otherwise. The proximity factor ``kappa``
 is halved after a serious step that realised most of the prediction and doubled after a trial that
-increased the total or made an agent fail. Stopping measure: the larger of ``delta`` and
+increased the total or made an agent fail. It is also doubled after a null step whose new cuts, downshifted
+around the centre, still promise at least half the predicted decrease at that trial (the proximity control
+test of Noll, Prot & Apkarian 2008, "A proximity control algorithm to minimize nonsmooth and nonconvex
+functions", Pacific J. Optim. 4(3):571-604): the model did not learn there, and the same master would give
+the same trial again, round after round, until max-rounds. Stopping measure: the larger of ``delta`` and
 ``max(kappa, 1)^2 d.M.d / 2`` for the step ``d`` taken (what the step would promise without the extra
 damping, which does not vanish just because ``kappa`` grew), relative to ``max(1, |total(c)|)``. Before
 it stops, the method resets the metric to that of a plain first step from the centre and asks once more
@@ -73,6 +77,7 @@ class ProximalBundle(Method):
     def start(self, first: Evaluation) -> None:
         self.s = self.feasible.scale
         self.m = self.options["serious"]
+        self.m_tilde = 0.5
         self.gamma_rel = self.options["downshift"]
         self.max_cuts = self.options["max_cuts"]
         self.keep_cuts = self.options["keep_cuts"]
@@ -145,6 +150,17 @@ class ProximalBundle(Method):
             G.append(g_j)
             a.append(-max(e, gamma * d2))
         return np.array(G).reshape(-1, c_i.size), np.array(a)
+
+    def model_at(self, P: np.ndarray) -> float:
+        """Weighted value of the cutting-plane model (cuts shifted around the current centre) at ``P``."""
+        assert self.center is not None and self.mu is not None
+        c = self.center
+        model = 0.0
+        for i in range(len(self.lay.names)):
+            sl = self.lay.slice(i)
+            G, a = self.shifted(i, c.P[sl], c.reports[i].value, self.gamma_rel * self.mu)
+            model += c.weights[i] * (c.reports[i].value + float(np.max(a + G @ (P[sl] - c.P[sl]))))
+        return model
 
     def master(self) -> tuple[np.ndarray | None, float, str]:
         assert self.center is not None and self.mu is not None
@@ -227,8 +243,30 @@ class ProximalBundle(Method):
             else:
                 if not latest.ok or latest.total > c.total:
                     self.kappa *= 2.0
+                elif c.total - self.model_at(latest.P) >= self.m_tilde * self.delta:
+                    # The new cuts, downshifted around the centre, leave the model at the trial nearly where it
+                    # was: the same master would give the same trial again. Only a tighter proximity term moves
+                    # it (proximity control test of Noll, Prot & Apkarian 2008).
+                    self.kappa *= 2.0
                 note = "null" if latest.ok else "null (agent failed)"
         return self.propose_from_center(note)
+
+    def projected_gradient_norm(self, c: Evaluation) -> float:
+        """Length of the centre's projected gradient in scaled units (Calamai & More 1987, "Projected gradient
+        methods for linearly constrained problems", Math. Programming 39:93-116): ``|u_c - proj(u_c - t g)| / t``
+        for the step ``t`` of a first step (``first_step / |g|``). At a constrained point the plain gradient
+        keeps the prices of the binding rows, which no step along the coupling polyhedron can realise; a
+        metric scaled by it would promise too little and stop early."""
+        gu = c.gradient * self.s
+        norm = float(np.linalg.norm(gu))
+        if norm == 0.0:
+            return 0.0
+        t = self.first_step / norm
+        try:
+            Q = self.feasible.project(c.P - t * gu * self.s)
+        except RuntimeError:
+            return norm
+        return float(np.linalg.norm((c.P - Q) / self.s)) / t
 
     def propose_from_center(self, note: str) -> Proposal:
         """Solve the master around the current centre and return the trial (or stop)."""
@@ -250,7 +288,7 @@ class ProximalBundle(Method):
             # A learned metric can overstate the curvature (on kinked or flat pieces) and so promise too
             # little: before stopping, ask again with the plain metric of a first step from here.
             self.reset_since_serious = True
-            mu = max(float(np.linalg.norm(c.gradient * self.s)) / self.first_step, 1e-12)
+            mu = max(self.projected_gradient_norm(c) / self.first_step, 1e-12)
             self.M = [mu * np.eye(k) for k in self.lay.sizes]
             self.kappa = 1.0
             return self.propose_from_center("metric reset before stopping")
