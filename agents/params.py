@@ -80,8 +80,6 @@ def _f(default: Any, unit: str, doc: str, rng: Range | None = None, count: Range
     return field(default=default, metadata=meta)
 
 
-_check = check_field
-
 
 def _check_ranges(owner: str, obj: Any) -> None:
     """Every field against its metadata: ``range`` (a number, each entry of a list, ``None`` allowed where it
@@ -97,11 +95,11 @@ def _check_ranges(owner: str, obj: Any) -> None:
             continue
         if isinstance(value, tuple):
             for v in value:
-                _check(owner, f.name, v, v in rng, f"made of numbers {rng}")
+                check_field(owner, f.name, v, v in rng, f"made of numbers {rng}")
         elif isinstance(f.default, int) and not isinstance(f.default, bool):
-            _check(owner, f.name, value, isinstance(value, int) and value in rng, f"an integer {rng}")
+            check_field(owner, f.name, value, isinstance(value, int) and value in rng, f"an integer {rng}")
         else:
-            _check(owner, f.name, value, value in rng, str(rng))
+            check_field(owner, f.name, value, value in rng, str(rng))
 
 
 def field_table(cls: type) -> list[tuple[str, str, Any, str]]:
@@ -128,7 +126,7 @@ class ZoneParams:
     def __post_init__(self) -> None:
         owner = f"zone {self.resource!r}"
         _check_ranges(owner, self)
-        _check(owner, "exit", self.exit, self.exit > self.entry, f"> entry = {self.entry}")
+        check_field(owner, "exit", self.exit, self.exit > self.entry, f"> entry = {self.entry}")
 
 
 @dataclass(frozen=True)
@@ -168,26 +166,26 @@ class VehicleParams:
         owner = "vehicle"
         object.__setattr__(self, "zones", tuple(self.zones))
         _check_ranges(owner, self)
-        _check(owner, "min_speed", self.min_speed, self.min_speed < self.speed_limit,
+        check_field(owner, "min_speed", self.min_speed, self.min_speed < self.speed_limit,
                f"< speed_limit = {self.speed_limit}")
-        _check(owner, "initial_speed", self.initial_speed,
+        check_field(owner, "initial_speed", self.initial_speed,
                self.min_speed <= self.initial_speed <= self.speed_limit,
                f"within [min_speed, speed_limit] = [{self.min_speed}, {self.speed_limit}]")
-        _check(owner, "desired_arrival", self.desired_arrival, self.desired_arrival >= self.departure,
+        check_field(owner, "desired_arrival", self.desired_arrival, self.desired_arrival >= self.departure,
                f">= departure = {self.departure}")
-        _check(owner, "latest_arrival", self.latest_arrival,
+        check_field(owner, "latest_arrival", self.latest_arrival,
                self.latest_arrival > self.departure + self.route_length / self.speed_limit,
                "later than departure + route_length / speed_limit")
         previous_exit = 0.0
         for zone in self.zones:
             if not isinstance(zone, ZoneParams):
                 raise FieldError(owner, "zones", "a list of ZoneParams", f"a {type(zone).__name__} in it")
-            _check(f"zone {zone.resource!r}", "entry", zone.entry, zone.entry >= previous_exit,
+            check_field(f"zone {zone.resource!r}", "entry", zone.entry, zone.entry >= previous_exit,
                    f">= the previous zone's exit ({previous_exit} m); zones must be in route order")
-            _check(f"zone {zone.resource!r}", "exit", zone.exit, zone.exit + self.length <= self.route_length,
+            check_field(f"zone {zone.resource!r}", "exit", zone.exit, zone.exit + self.length <= self.route_length,
                    f"<= route_length - length = {self.route_length - self.length}")
             if zone.speed_limit is not None:
-                _check(f"zone {zone.resource!r}", "speed_limit", zone.speed_limit,
+                check_field(f"zone {zone.resource!r}", "speed_limit", zone.speed_limit,
                        zone.speed_limit > self.min_speed, f"> min_speed = {self.min_speed}")
             previous_exit = zone.exit
         names = [z.resource for z in self.zones]
@@ -252,7 +250,7 @@ class MachineParams:
         owner = "machine"
         object.__setattr__(self, "stations", tuple(self.stations))
         _check_ranges(owner, self)
-        _check(owner, "peak_end", self.peak_end, self.peak_end >= self.peak_start,
+        check_field(owner, "peak_end", self.peak_end, self.peak_end >= self.peak_start,
                f">= peak_start = {self.peak_start}")
         for st in self.stations:
             if not isinstance(st, StationParams):
@@ -261,7 +259,7 @@ class MachineParams:
         if len(set(names)) != len(names):
             raise FieldError(owner, "stations", "stations of distinct resources", f"resources {names}")
         earliest = self.release + self.work / self.max_rate + sum(s.transfer + s.duration for s in self.stations)
-        _check(owner, "horizon", self.horizon, self.horizon > earliest,
+        check_field(owner, "horizon", self.horizon, self.horizon > earliest,
                f"> earliest possible completion {earliest} s")
 
 

@@ -49,8 +49,6 @@ WEIGHT = Range(0.0, 1e6, lo_open=True)
 """Allowed weight of an agent's cost in the fleet total (dimensionless)."""
 
 
-_check = check_field
-
 
 @dataclass(frozen=True)
 class CoordinatorSettings:
@@ -81,8 +79,8 @@ class CoordinatorSettings:
 
     def __post_init__(self) -> None:
         rounds_ok = isinstance(self.max_rounds, int) and self.max_rounds in MAX_ROUNDS
-        _check("coordinator", "max_rounds", self.max_rounds, rounds_ok, f"an integer {MAX_ROUNDS}")
-        _check("coordinator", "tolerance", self.tolerance, self.tolerance in TOLERANCE, str(TOLERANCE))
+        check_field("coordinator", "max_rounds", self.max_rounds, rounds_ok, f"an integer {MAX_ROUNDS}")
+        check_field("coordinator", "tolerance", self.tolerance, self.tolerance in TOLERANCE, str(TOLERANCE))
         if self.order not in ORDER_RULES:
             raise FieldError("coordinator", "order", f"one of {list(ORDER_RULES)}", repr(self.order))
 

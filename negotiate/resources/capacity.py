@@ -21,8 +21,6 @@ __all__ = ["BLOCK_LIMIT", "CapacityResource"]
 BLOCK_LIMIT = Range(0.0, 1e12)
 """Allowed limit of a capacity block, in the resource's unit (W for power: up to 1 TW)."""
 
-_check = check_field
-
 
 @register_kind
 @dataclass(frozen=True)
@@ -72,9 +70,9 @@ class CapacityResource(ResourceKind):
         if not 1 <= len(self.limits) <= MAX_BLOCKS:
             raise FieldError(owner, "limits", f"a list of 1 to {MAX_BLOCKS} entries", f"{len(self.limits)} entries")
         bad = [v for v in self.limits if v not in BLOCK_LIMIT]
-        _check(owner, "limits", bad[0] if bad else None, not bad, f"made of numbers {BLOCK_LIMIT}")
-        _check(owner, "start", self.start, self.start in TIME, str(TIME))
-        _check(owner, "block_length", self.block_length, self.block_length in DURATION, str(DURATION))
+        check_field(owner, "limits", bad[0] if bad else None, not bad, f"made of numbers {BLOCK_LIMIT}")
+        check_field(owner, "start", self.start, self.start in TIME, str(TIME))
+        check_field(owner, "block_length", self.block_length, self.block_length in DURATION, str(DURATION))
 
     @property
     def blocks(self) -> int:

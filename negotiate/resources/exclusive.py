@@ -21,8 +21,6 @@ __all__ = ["GAP", "ExclusiveResource"]
 GAP = Range(0.0, DURATION.hi)
 """Allowed gap (headway, changeover) of an exclusive resource, s."""
 
-_check = check_field
-
 
 @register_kind
 @dataclass(frozen=True)
@@ -54,7 +52,7 @@ class ExclusiveResource(ResourceKind):
     gap: float = 0.0
 
     def __post_init__(self) -> None:
-        _check(f"resource {self.name!r}", "gap", self.gap, self.gap in GAP, str(GAP))
+        check_field(f"resource {self.name!r}", "gap", self.gap, self.gap in GAP, str(GAP))
 
     def coupling_rows(self, agents: Sequence[AgentModel], order: Sequence[str]) -> list[CouplingRow]:
         by_name = {a.name: i for i, a in enumerate(agents)}
