@@ -34,24 +34,32 @@ from. Equalities have no weak activity, so the value function is smooth wherever
 nothing is lost at the fleet level: the coordinator chooses the slots anyway, and a vehicle that would use
 only part of a slot is represented by the smaller slot it actually occupies.
 
-Reachable set. For each zone the builder solves auxiliary problems ``min d . (t(entry), t(exit))`` over
-directions ``d`` around the circle (without any coupling, with the arrival deadline): their solutions are
-points on the boundary of the set of reachable (enter, leave) pairs (earliest entry, latest entry, shortest
-and longest dwell, ...). The convex hull of those points, shrunk by a small margin towards the vehicle's own
-preferred times, gives rows ``A p <= b``; for several zones, rows ``enter_{k+1} - leave_k`` within its
-smallest and largest value follow from two more auxiliary solves. Every vertex of the resulting polytope is
-then solved; if one fails, the polytope is shrunk further towards the preferred times. The set is an inner
-approximation in the sense that all its vertices are verified (and the reachable pairs are nearly convex).
+Elastic slots. The coupling equalities are elastic: ``t(entry_k) = enter_k + late - early`` with
+``late, early >= 0`` priced at ``slot_penalty`` (J/s) each in the cost, an exact L1 penalty (Nocedal & Wright, *Numerical
+Optimization*, 2nd ed., sec. 17.2, nonsmooth penalty functions; cited from memory). Where the vehicle can meet the proposed times and the multiplier of their row is below the
+penalty, the slacks are zero at the solution (both bounds strictly active), so value, gradient and
+certificate are exactly those of the plain equalities; where it cannot, the solve still converges, the value
+grows by the penalty times the miss and the gradient is the penalty itself, a large exact price that drives
+the coordinator back. :meth:`VehicleModel.slack` reads the miss from a solve (``late - early`` per
+parameter, s); the coordinator reports a schedule whose slacks are not zero as unreachable. The penalty is
+``10 x`` the largest of three marginal costs of the vehicle (traction power at the speed limit, the arrival
+term's slope over the whole window, the comfort term at full acceleration), so that every multiplier of a
+reachable slot the coordination is likely to meet stays below it.
+
+Kinematic window. The coordinator proposes slot times from a box and a few rows that contain every
+reachable time: with the drag neglected in the drive direction and taken at its largest in the braking
+direction, the trapezoidal dynamics bound the kinetic energy at each node from above (forward pass from the
+initial speed at full drive force, backward pass at full braking, the speed limits) and from below (full
+braking, ``min_speed``); the stage times ``2 ds / (v_i + v_{i+1})`` at those speeds bound the earliest and
+latest time at every node, the deadline bounds the latest time by ``latest_arrival`` minus the quickest rest
+of the route, and consecutive marks along the route (zone entries and exits, in route order) get rows
+``t_b - t_a`` within the quickest and the slowest time between them. This costs no solve; it is an outer
+bound (every reachable time lies inside, some times inside are not reachable), which the elastic slots make
+harmless: a proposal the vehicle cannot meet is priced, not failed.
 
 Free optimum. The vehicle alone (no coupling rows) chooses its trajectory; its times at the zone nodes are
-the free optimum. At that ``p`` the coupling equalities have zero multipliers and the NLP's solution is the
-same, so the certificate there is that of the unconstrained problem (strict second-order sufficiency from the
-convex comfort and arrival terms). If those times fell outside the verified polytope, the free optimum is the
-minimiser of the value over it, found by one joint solve over trajectory and parameters. That happens when
-the preferred times lie on the boundary of the reachable pairs, e.g. when a zone speed limit binds all
-through the zone so that the dwell is as short as it can be: there LICQ fails (every speed in the zone is at
-its bound and the dwell is fixed), and the minimiser over the shrunk polytope keeps the margin from that
-boundary, where the certificate is strict again.
+the free optimum and the global minimiser of the value (the slacks are zero there and the coupling
+multipliers vanish). Building a vehicle costs this one solve.
 """
 
 from __future__ import annotations
@@ -62,23 +70,14 @@ from typing import Any
 import casadi as ca
 import numpy as np
 
-from agents._common import (
-    NLPSpec,
-    chebyshev_center,
-    hull_rows,
-    joint_optimum,
-    polytope_vertices,
-    shrink_rows,
-    smooth_pos,
-    solve_aux,
-)
+from agents._common import NLPSpec, joint_optimum, smooth_pos, solve_aux
 from agents.params import STANDARD_GRAVITY, VehicleParams
 from negotiate.core.agent import AgentModel, ReachableSet, SlotParam
 
 __all__ = ["VehicleModel", "build_vehicle", "vehicle_grid"]
 
-_DIRECTIONS = 12  # support directions per zone for the reachable set
-_MARGIN = 0.03  # relative shrink of the reachable polytope towards the preferred times
+_PENALTY_FACTOR = 10.0  # slot penalty / the vehicle's largest marginal cost (see the module docstring)
+_MARGIN = 1e-3  # relative margin of the window's shortest times between marks (see the module docstring)
 
 
 def vehicle_grid(prm: VehicleParams) -> tuple[np.ndarray, list[tuple[int, int]]]:
@@ -176,39 +175,46 @@ class VehicleModel:
         self.p_names = []
         for z in prm.zones:
             self.p_names += [f"{z.resource}.enter", f"{z.resource}.leave"]
+        # Largest marginal costs, J/s: traction power at the speed limit, the arrival term's slope across the
+        # whole window, the comfort term at full acceleration.
+        power = m * prm.max_accel * prm.speed_limit / prm.efficiency
+        arrival = 2 * prm.arrival_weight * (prm.latest_arrival - prm.departure)
+        comfort = prm.comfort_weight * max(prm.max_accel, prm.max_brake) ** 2
+        self.slot_penalty = _PENALTY_FACTOR * max(power, arrival, comfort)
         self._cache: dict[str, Any] = {}
 
     # ----------------------------------------------------------------------------------------------------
     def spec(self) -> NLPSpec:
-        """The agent's parametric NLP: base constraints plus the coupling equalities (zone times == p)."""
+        """The agent's parametric NLP: base constraints plus the elastic coupling rows (zone times == p).
+
+        The variables are ``x`` followed by the slacks ``late`` and ``early`` (s, one of each per parameter);
+        the rows ``zone times - p - late + early == 0`` follow the base rows.
+        """
         n_p = len(self.p_names)
         p = ca.SX.sym("p", n_p)
-        g = ca.vertcat(self.g_base, self.zone_times_expr - p)
+        late = ca.SX.sym("late", n_p)
+        early = ca.SX.sym("early", n_p)
+        g = ca.vertcat(self.g_base, self.zone_times_expr - p - late + early)
+        f = self.cost + self.slot_penalty * (ca.sum1(late) + ca.sum1(early))
         return NLPSpec(
-            x=self.x, p=p, f=self.cost, g=g, lbx=self.lbx, ubx=self.ubx,
+            x=ca.vertcat(self.x, late, early), p=p, f=f, g=g,
+            lbx=np.r_[self.lbx, np.zeros(2 * n_p)], ubx=np.r_[self.ubx, np.full(2 * n_p, np.inf)],
             lbg=np.r_[self.lbg_base, np.zeros(n_p)], ubg=np.r_[self.ubg_base, np.zeros(n_p)],
-            x0=self.x0, x_names=list(self.x_names), g_names=self.g_base_names + list(self.p_names),
-            p_names=list(self.p_names),
+            x0=np.r_[self.x0, np.zeros(2 * n_p)],
+            x_names=list(self.x_names) + [f"late[{q}]" for q in self.p_names] + [f"early[{q}]" for q in self.p_names],
+            g_names=self.g_base_names + list(self.p_names), p_names=list(self.p_names),
         )
+
+    def slack(self, result: Any) -> np.ndarray:
+        """By how much a solve's own zone times miss its parameters, ``late - early`` per parameter (s)."""
+        x = np.asarray(result.x, dtype=float).ravel()
+        n_p, n = len(self.p_names), self.x.numel()
+        return x[n: n + n_p] - x[n + n_p: n + 2 * n_p]
 
     def solve_free(self) -> Any:
         """The vehicle alone: minimise the cost with no coupling rows (plain IPOPT)."""
         return solve_aux("free", self._cache, self.x, self.cost, self.g_base, self.lbx, self.ubx,
                          self.lbg_base, self.ubg_base, self.x0)
-
-    def solve_linear(self, weights: np.ndarray) -> Any:
-        """Minimise ``weights . (zone times)`` (s) under the vehicle's constraints, without coupling.
-
-        One solver serves every direction (the weights are its parameter); a small regulariser on the force
-        makes the solution unique.
-        """
-        if "linear" not in self._cache:
-            d = ca.SX.sym("d", self.zone_times_expr.numel())
-            obj = ca.dot(d, self.zone_times_expr) + 1e-4 * ca.sumsqr(self.x[self.n_stages:])
-            self._cache["linear"] = (d, obj)
-        d, obj = self._cache["linear"]
-        return solve_aux("linear_solver", self._cache, self.x, obj, self.g_base, self.lbx, self.ubx,
-                         self.lbg_base, self.ubg_base, self.x0, p=d, p_val=np.asarray(weights, dtype=float))
 
     def fastest_arrival(self) -> float:
         """Earliest possible arrival time at the route end, in s (auxiliary solve)."""
@@ -220,64 +226,67 @@ class VehicleModel:
         return float(self.times(res.x)[-1])
 
     # ----------------------------------------------------------------------------------------------------
-    def reachable(self, center: np.ndarray, spec: NLPSpec,
-                  x_start: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-        """Rows ``A p <= b`` of a verified inner approximation of the reachable zone times (see module doc).
+    def stage_time_bounds(self) -> tuple[np.ndarray, np.ndarray]:
+        """Shortest and longest time of each stage over every trajectory the constraints allow (s).
 
-        ``center`` are the preferred zone times (s), ``x_start`` an initial guess for the vertex solves.
+        From bounds on the kinetic energy per mass at the nodes (see the module docstring): ``hi`` by a
+        forward pass at full drive force without drag and a backward pass at full braking with the largest
+        drag, both under the speed limits; ``lo`` by a forward pass at full braking and a backward pass at
+        full drive force, both above ``min_speed``. Every feasible ``e`` lies between them node by node, so
+        the stage times ``2 ds / (v_i + v_{i+1})`` at those speeds bound the true ones.
         """
-        Z = len(self.zone_nodes)
-        n_p = 2 * Z
-        rows: list[np.ndarray] = []
-        rhs: list[float] = []
-        angles = 2 * np.pi * (np.arange(_DIRECTIONS) + 0.5) / _DIRECTIONS
-        for k in range(Z):
-            pts = []
-            for th in angles:
-                d = np.zeros(n_p)
-                d[2 * k: 2 * k + 2] = np.cos(th), np.sin(th)
-                res = self.solve_linear(d)
-                if res.success:
-                    zt = np.asarray(self.zone_times(res.x)).ravel()
-                    pts.append(zt[2 * k: 2 * k + 2])
-            if len(pts) < 3:
-                raise RuntimeError(f"vehicle: support solves for zone {self.p_names[2 * k]!r} failed")
-            A2, b2 = hull_rows(np.array(pts))
-            for row, bi in zip(A2, b2, strict=True):
-                full = np.zeros(n_p)
-                full[2 * k: 2 * k + 2] = row
-                rows.append(full)
-                rhs.append(bi)
-        for k in range(Z - 1):
-            full = np.zeros(n_p)
-            full[2 * k + 2], full[2 * k + 1] = 1.0, -1.0  # gap enter_{k+1} - leave_k
-            for sign in (1.0, -1.0):
-                res = self.solve_linear(sign * full)
-                if not res.success:
-                    raise RuntimeError(f"vehicle: gap solve between zones {k} and {k + 1} failed")
-                zt = np.asarray(self.zone_times(res.x)).ravel()
-                value = zt[2 * k + 2] - zt[2 * k + 1]
-                # value is the extreme of gap; row  -sign*gap <= -sign*value
-                rows.append(-sign * full)
-                rhs.append(-sign * value)
-        A = np.array(rows)
-        b = np.array(rhs)
-        # Shrink towards the preferred times when they lie inside the hull (then they stay inside), else
-        # towards the hull's Chebyshev centre.
-        anchor = center if bool(np.all(A @ center < b)) else chebyshev_center(A, b)[0]
-        factor = 1.0 - _MARGIN
-        for _ in range(6):
-            bs = shrink_rows(A, b, anchor, factor)
-            verts = polytope_vertices(A, bs, chebyshev_center(A, bs)[0])
-            if all(spec.solve_plain(v, x_start).success for v in verts):
-                return A, bs
-            factor *= 0.7
-        raise RuntimeError("vehicle: could not verify a reachable polytope for the zone times")
+        prm, ds = self.prm, self.ds
+        N = self.n_stages
+        e0 = 0.5 * prm.initial_speed**2
+        cap = np.r_[e0, 0.5 * self.v_max[1:] ** 2]
+        floor = np.r_[e0, np.full(N, 0.5 * prm.min_speed**2)]
+        drive = max(prm.max_accel - self.roll, 0.0)  # largest gain of e per metre, 1 (m/s^2)
+        brake = prm.max_brake + self.roll + self.aero * float(cap.max())  # largest loss of e per metre
+        hi, lo = cap.copy(), floor.copy()
+        for i in range(1, N + 1):
+            hi[i] = min(hi[i], hi[i - 1] + drive * ds[i - 1])
+            lo[i] = max(lo[i], lo[i - 1] - brake * ds[i - 1])
+        for i in range(N - 1, 0, -1):
+            hi[i] = min(hi[i], hi[i + 1] + brake * ds[i])
+            lo[i] = max(lo[i], lo[i + 1] - drive * ds[i])
+        v_hi, v_lo = np.sqrt(2 * hi), np.sqrt(2 * np.minimum(lo, hi))
+        return 2 * ds / (v_hi[:-1] + v_hi[1:]), 2 * ds / (v_lo[:-1] + v_lo[1:])
+
+    def window(self, margin: float = _MARGIN) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Box ``lower <= p <= upper`` and rows ``A p <= b`` containing every reachable zone time (s).
+
+        Bounds from :meth:`stage_time_bounds`: earliest and latest time at each zone node (the latest also
+        leaves the quickest rest of the route before ``latest_arrival``), and for consecutive marks along
+        the route the quickest and slowest time between them, the quickest raised by the relative
+        ``margin``. At the quickest time between two marks every speed between them can be at its limit,
+        where the coupling rows and the speed bounds are linearly dependent (LICQ fails, the value has a
+        kink); the margin keeps proposals off that edge. With ``margin = 0`` the set is a true outer bound.
+        """
+        prm = self.prm
+        quick, slow = self.stage_time_bounds()
+        t_early = prm.departure + np.r_[0.0, np.cumsum(quick)]
+        t_late = np.minimum(prm.departure + np.r_[0.0, np.cumsum(slow)],
+                            prm.latest_arrival - np.r_[np.cumsum(quick[::-1])[::-1], 0.0])
+        nodes = np.array([i for pair in self.zone_nodes for i in pair])
+        lower, upper = t_early[nodes], t_late[nodes]
+        order = np.argsort(nodes, kind="stable")
+        rows, rhs = [], []
+        for a, b in zip(order[:-1], order[1:], strict=True):
+            shortest = (1 + margin) * float(quick[nodes[a]: nodes[b]].sum())
+            longest = float(slow[nodes[a]: nodes[b]].sum())
+            row = np.zeros(nodes.size)
+            row[a], row[b] = 1.0, -1.0  # t_a - t_b <= -shortest
+            rows.append(row)
+            rhs.append(-shortest)
+            rows.append(-row)  # t_b - t_a <= longest
+            rhs.append(longest)
+        A = np.array(rows).reshape(len(rows), nodes.size)
+        return lower, upper, A, np.array(rhs)
 
     def trajectory(self, result: Any) -> Mapping[str, np.ndarray]:
         """Node time series of a solve: time, position, speed, force (zero-order hold per stage), energy."""
-        x = np.asarray(result.x, dtype=float).ravel()
         N = self.n_stages
+        x = np.asarray(result.x, dtype=float).ravel()[: 2 * N]  # without the slot slacks
         e = np.r_[0.5 * self.prm.initial_speed**2, x[:N]]
         a = x[N:]
         force = self.prm.total_mass * np.r_[a, a[-1]]
@@ -307,30 +316,26 @@ def build_vehicle(name: str, prm: VehicleParams | None = None, weight: float = 1
     Returns
     -------
     negotiate.core.agent.AgentModel
-        Parameters ``(<zone>.enter, <zone>.leave)`` per zone in s, the verified reachable polytope and the
-        free optimum described in the module docstring.
+        Parameters ``(<zone>.enter, <zone>.leave)`` per zone in s, elastic slots, the kinematic window as
+        its reachable set and the free optimum described in the module docstring.
     """
     prm = VehicleParams() if prm is None else prm
     model = VehicleModel(prm)
-    spec = model.spec()
     free = model.solve_free()
     if not free.success:
         raise RuntimeError(f"vehicle {name!r}: the unconstrained trip does not solve ({free.status})")
-    center = np.asarray(model.zone_times(free.x)).ravel()
-    A, b = model.reachable(center, spec)
-    verts = polytope_vertices(A, b, chebyshev_center(A, b)[0])
-    lower, upper = verts.min(axis=0), verts.max(axis=0)
-    if np.all(A @ center <= b):
-        p_free = center
-    else:
-        joint = joint_optimum(spec, A, b, center, free.x)
+    p_free = np.asarray(model.zone_times(free.x)).ravel()
+    lower, upper, A, b = model.window()
+    spec = model.spec()
+    if np.any(A @ p_free > b):
+        # The vehicle alone crosses a zone as fast as it may (its speed limit binds all through it): the free
+        # optimum is the minimiser of the value over the window, one joint solve over trajectory and times.
+        joint = joint_optimum(spec, A, b, p_free, np.r_[free.x, np.zeros(2 * p_free.size)])
         if not joint.success:
-            raise RuntimeError(f"vehicle {name!r}: free-optimum solve over the reachable set failed "
-                               f"({joint.status})")
-        # The joint solve meets the rows to solver accuracy; step a hair towards the centre so that the
-        # free optimum lies in the reported set exactly.
-        mid = chebyshev_center(A, b)[0]
-        p_free = np.clip(mid + (1 - 1e-7) * (joint.x[spec.x.numel():] - mid), lower, upper)
+            raise RuntimeError(f"vehicle {name!r}: free-optimum solve over the window failed ({joint.status})")
+        p_free = joint.x[spec.x.numel():]
+    # the joint solve meets the rows to solver accuracy (~1e-9 s): the window takes that rounding in
+    lower, upper, b = np.minimum(lower, p_free), np.maximum(upper, p_free), np.maximum(b, A @ p_free)
     params = []
     for z in prm.zones:
         params += [SlotParam(f"{z.resource}.enter", z.resource, "enter"),
@@ -338,6 +343,5 @@ def build_vehicle(name: str, prm: VehicleParams | None = None, weight: float = 1
     return AgentModel(
         name=name, problem=spec.to_problem(solver_options), params=tuple(params),
         reachable=ReachableSet(lower, upper, A, b), free_optimum=p_free, weight=weight,
-        trajectory=model.trajectory, model="vehicle",
+        trajectory=model.trajectory, model="vehicle", slack=model.slack,
     )
-

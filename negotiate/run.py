@@ -38,6 +38,7 @@ from negotiate.coordination.methods import Method, method_class, method_names, o
 from negotiate.coordination.methods.base import Evaluation
 from negotiate.coordination.orders import OrderTrial, search_orders
 from negotiate.core.agent import AgentModel
+from negotiate.core.status import CoordinationStatus
 from negotiate.core.files import write_atomic
 from negotiate.errors import FleetError, Problem, RunFolderError, describe
 from negotiate.execution.base import Executor
@@ -431,7 +432,7 @@ def _search(
             agents, spec.resources, settings, orders=orders, start=start, executor=executor, progress=tell,
             checkpoint=hook, resume=book.engine_state(k, orders) if book is not None else None,
         )  # fmt: skip
-        total = r.total if r.evaluation.ok else float("inf")
+        total = r.total if r.evaluation.ok and r.status is not CoordinationStatus.UNREACHABLE else float("inf")
         if book is not None:
             book.finish(k, orders, total, r)
         return total, r.P, r

@@ -6,6 +6,8 @@ import casadi as ca
 import numpy as np
 import pytest
 
+from agents._common import joint_optimum as real_joint
+from agents._common import solve_aux
 from agents.checks import central_difference, reachable_samples, reachable_vertices
 from agents.params import STANDARD_GRAVITY, VehicleParams, ZoneParams
 from agents.vehicle import VehicleModel, build_vehicle, vehicle_grid
@@ -93,7 +95,7 @@ class TestPhysics:
         """The state e is kinetic energy per mass: m e = m v^2 / 2 for the speeds reported."""
         res = truck.problem.solve(truck.free_optimum)
         tr = truck.trajectory(res)
-        N = (res.x.size) // 2
+        N = tr["time_s"].size - 1  # stages; x = (e[1..N], a[0..N-1], slot slacks)
         m = VehicleParams().total_mass
         ke_state = m * np.r_[0.5 * VehicleParams().initial_speed ** 2, res.x[:N]]
         np.testing.assert_allclose(ke_state, 0.5 * m * tr["speed_m_per_s"] ** 2, rtol=1e-12)
@@ -157,10 +159,10 @@ class TestCertificate:
         np.testing.assert_allclose(res.gradient, fd, rtol=1e-4, atol=10.0)
 
 
-class TestReachable:
+class TestWindow:
     @pytest.mark.parametrize("which", ["truck", "two_zone_truck"])
     def test_vertices_and_samples_solve(self, which, request):
-        """Every vertex and random points of the reachable set give converged solves."""
+        """Every vertex and random points of the window give converged solves (elastic slots)."""
         agent = request.getfixturevalue(which)
         points = np.vstack([reachable_vertices(agent.reachable), reachable_samples(agent.reachable, 5, seed=1)])
         for q in points:
@@ -168,7 +170,7 @@ class TestReachable:
             assert res.success, (q, res.message)
 
     def test_dwell_rows(self, truck):
-        """The set excludes dwells shorter than crossing at the speed limit (zone + length at 20 m/s)."""
+        """The window excludes dwells shorter than crossing at the speed limit (zone + length at 20 m/s)."""
         prm = VehicleParams()
         z = prm.zones[0]
         shortest = (z.exit + prm.length - z.entry) / prm.speed_limit  # kinematics: distance / top speed
@@ -177,11 +179,89 @@ class TestReachable:
         outside = truck.free_optimum + np.array([0.0, -(truck.free_optimum[1] - truck.free_optimum[0])])
         assert not truck.reachable.contains(outside)
 
-    def test_outside_point_fails(self, truck):
-        """Entering well before the earliest reachable time is infeasible for the NLP."""
-        p = np.array([truck.reachable.lower[0] - 10.0, truck.reachable.lower[1]])
+    @pytest.mark.parametrize("mark", [0, 1])
+    def test_earliest_times_without_resistance(self, mark):
+        """Without drag and rolling resistance the window's earliest entry and exit are the model's own
+        earliest times (an IPOPT solve minimising that time), to solver accuracy: the energy bound of the
+        forward pass is then attained by driving at full force up to the speed limit."""
+        prm = VehicleParams(rolling_coeff=0.0, drag_area=0.0, initial_speed=2.0, max_accel=0.8)
+        model = VehicleModel(prm)
+        lower = model.window()[0]
+        i = vehicle_grid(prm)[1][0][mark]
+        obj = model.t_nodes[i] + 1e-8 * ca.sumsqr(model.x[model.n_stages:])
+        res = solve_aux("earliest", {}, model.x, obj, model.g_base, model.lbx, model.ubx, model.lbg_base,
+                        model.ubg_base, model.x0)
+        assert res.success, res.status
+        assert float(model.times(res.x)[i]) == pytest.approx(lower[mark], rel=1e-6)
+
+    def test_window_contains_reachable_extremes(self, two_zone_truck):
+        """Every zone time of the quickest and the slowest trip (IPOPT solves with drag and resistance) lies in
+        the window without its margin: an outer bound, which the elastic slots make safe."""
+        prm = VehicleParams(
+            zones=(ZoneParams("bridge", 500.0, 600.0, speed_limit=12.0), ZoneParams("tunnel", 1200.0, 1400.0))
+        )
+        model = VehicleModel(prm)
+        lower, upper, A, b = model.window(margin=0.0)
+        for sign in (1.0, -1.0):
+            obj = sign * model.arrival + 1e-6 * ca.sumsqr(model.x[model.n_stages:])
+            res = solve_aux("extreme", {}, model.x, obj, model.g_base, model.lbx, model.ubx, model.lbg_base,
+                            model.ubg_base, model.x0)
+            assert res.success, res.status
+            q = np.asarray(model.zone_times(res.x)).ravel()
+            assert np.all(q >= lower - 1e-6) and np.all(q <= upper + 1e-6)
+            assert np.all(A @ q <= b + 1e-6)
+
+    def test_unreachable_point_is_priced(self, truck):
+        """Entering 10 s before the earliest time solves; the miss is the model's own entry time minus the
+        proposed one, and the gradient is the slot penalty (exact L1 penalty: Nocedal & Wright, 2nd ed.,
+        sec. 17.2, from memory)."""
+        model = VehicleModel(VehicleParams())
+        p = np.array([truck.reachable.lower[0] - 10.0, truck.free_optimum[1]])
         res = truck.problem.solve(p)
-        assert not res.success
+        assert res.success, res.message
+        i_en = vehicle_grid(VehicleParams())[1][0][0]
+        t_entry = float(model.times(res.x[: 2 * model.n_stages])[i_en])
+        miss = truck.slack(res)
+        assert miss[0] == pytest.approx(t_entry - p[0], abs=1e-7)
+        assert miss[0] > 10.0 - 1e-6
+        assert res.gradient[0] == pytest.approx(-model.slot_penalty, rel=1e-6)
+
+    def test_interior_value_is_the_plain_equality_problem(self, truck):
+        """Inside the reachable times the elastic NLP has the value of the plain problem with hard equality
+        rows t(entry) = enter, t(exit + length) = leave, solved here directly with CasADi's IPOPT."""
+        model = VehicleModel(VehicleParams())
+        p = truck.free_optimum + np.array([3.0, 6.0])
+        res = truck.problem.solve(p)
+        assert res.success
+        nlp = {"x": model.x, "f": model.cost, "g": ca.vertcat(model.g_base, model.zone_times_expr - p)}
+        solver = ca.nlpsol("plain", "ipopt", nlp, {"ipopt.print_level": 0, "print_time": False, "ipopt.tol": 1e-10})
+        sol = solver(x0=model.x0, lbx=model.lbx, ubx=model.ubx, lbg=np.r_[model.lbg_base, 0, 0],
+                     ubg=np.r_[model.ubg_base, 0, 0])
+        assert solver.stats()["success"]
+        assert res.value == pytest.approx(float(sol["f"]), rel=1e-8)
+        np.testing.assert_allclose(truck.slack(res), 0.0, atol=1e-8)
+        # the gradient is the multiplier of the coupling rows, the same in both problems (sign: dV/dp = -lam)
+        np.testing.assert_allclose(res.gradient, -np.asarray(sol["lam_g"]).ravel()[-2:], rtol=1e-5)
+
+    def test_build_makes_at_most_two_solves(self, monkeypatch):
+        """Building a three-zone vehicle costs at most two IPOPT solves (free trip, free optimum over the
+        window), whatever its zone count: no vertex or support solves."""
+        import agents.vehicle as vehicle
+
+        calls = []
+        real = vehicle.solve_aux
+
+        def counting(*args, **kwargs):
+            calls.append(args[0])
+            return real(*args, **kwargs)
+
+        monkeypatch.setattr(vehicle, "solve_aux", counting)
+        monkeypatch.setattr(vehicle, "joint_optimum", lambda *a, **k: calls.append("joint") or real_joint(*a, **k))
+        prm = VehicleParams(zones=(ZoneParams("a", 500.0, 506.0), ZoneParams("b", 506.0, 512.0),
+                                   ZoneParams("c", 560.0, 570.0, speed_limit=8.0)))
+        agent = vehicle.build_vehicle("three", prm)
+        assert len(calls) <= 2, calls
+        assert agent.reachable.contains(agent.free_optimum)
 
 
 class TestTrajectory:

@@ -181,11 +181,15 @@ class TestSchedule:
         assert res.schedule is False
         (problem,) = res.problems
         assert (problem.table, problem.key) == ("", None)
-        assert str(problem).startswith(
+        text = str(problem)
+        assert text.startswith(
             "fleet.toml: expected a fleet whose agents' reachable sets admit a schedule with "
             "first-come-first-served orders, found none: no schedule meets the orders gate: t1 > t2: these rules "
-            "conflict: gate: t1 leaves + gap <= t2 enters; "
+            "conflict: "
         )
+        # the conflict: the gap, t1's earliest entry and t2's latest entry (the windows' bounds)
+        assert "gate: t1 leaves + gap <= t2 enters" in text
+        assert "t1: gate.enter >= " in text and "t2: gate.enter <= " in text
 
 
 class TestCli:

@@ -145,9 +145,10 @@ class TestRun:
         assert (out / "schedule.csv").read_bytes() == before
 
     def test_infeasible_first_order_exits_1_naming_resource_and_agents(self, tmp_path, capsys):
-        """Gap 800 s: no order admits a schedule; exit 1 with a message, no traceback."""
+        """Gap 1000 s: no order admits a schedule (early leaves the bridge after 124 s at the soonest, late must
+        leave it by 950 s to meet its deadline); exit 1 with a message, no traceback."""
         path = tmp_path / "two.toml"
-        path.write_text(LONG_GAP_TRUCKS.replace("GAP", "800.0"))
+        path.write_text(LONG_GAP_TRUCKS.replace("GAP", "1000.0"))
         code = main(["run", str(path), "--out", str(tmp_path / "o"), "--quiet"])
         err = capsys.readouterr().err
         assert code == 1

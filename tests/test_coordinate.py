@@ -467,4 +467,5 @@ class TestCoordinationStatus:
         from negotiate.core.status import CoordinationStatus
 
         assert not CoordinationStatus.FAILED.usable and not CoordinationStatus.ERROR.usable
-        assert {str(s) for s in CoordinationStatus} == {"converged", "max-rounds", "failed", "error"}
+        assert {str(s) for s in CoordinationStatus} == {"converged", "max-rounds", "failed", "unreachable", "error"}
+        assert not CoordinationStatus.UNREACHABLE.usable

@@ -380,7 +380,9 @@ class TestPlannedDraw:
             h = t[i + 1] - t[i]
             assert h == s.leave - s.enter
             assert abs(s.draw - (energy[i + 1] - energy[i]) / (self.EFFICIENCY * h)) <= 1e-6, (s.agent, s.enter)
-            assert s.draw <= s.share + 1e-6  # P_k <= share_k, a constraint of the model
+            # P_k <= share_k, a constraint of the model, met to the solver's accuracy (1e-9 relative is far
+            # inside IPOPT's own constraint tolerance; the shares here are ~1e5 W)
+            assert s.draw <= s.share + 1e-9 * max(1.0, s.share)
         # the point of the column: some shares are granted and left (partly) unused
         assert any(s.share - s.draw > 1e3 for s in rows)
         assert all(math.isnan(s.draw) for s in files.schedule if s.resource != "grid")

@@ -57,7 +57,9 @@ __all__ = [
     "EngineState",
     "Oracle",
     "RoundRecord",
+    "SLACK_TOLERANCE",
     "coordinate",
+    "missed_slots",
 ]
 
 
@@ -93,8 +95,8 @@ class CoordinationResult:
     evaluation : Evaluation
         All agents' reports there.
     status : CoordinationStatus
-        ``converged``, ``max-rounds`` or ``failed`` (a string enum; ``status.usable`` says whether the
-        schedule is one where every agent converged).
+        ``converged``, ``max-rounds``, ``failed`` or ``unreachable`` (a string enum; ``status.usable`` says
+        whether the schedule is one where every agent converged and meets its parameters).
     message : str
         Why it stopped.
     rounds : int
@@ -218,6 +220,30 @@ class EngineState:
     elapsed: float
 
 
+SLACK_TOLERANCE = 1e-6
+"""Largest elastic slack that counts as met, relative to the parameter's window width (at least 1 unit)."""
+
+
+def missed_slots(agents: Sequence[AgentModel], ev: Evaluation) -> list[str]:
+    """Texts naming every parameter an elastic agent misses at ``ev`` by more than :data:`SLACK_TOLERANCE`.
+
+    ``"truck-03 reaches bridge.enter 0.41 s late"``; empty when every agent meets its parameters (or none is
+    elastic).
+    """
+    out = []
+    scale = ev.feasible.layout.split(ev.feasible.scale)
+    for a, rep, width in zip(agents, ev.reports, scale, strict=True):
+        if a.slack is None or not rep.ok:
+            continue
+        miss = np.asarray(a.slack(rep.result), dtype=float).ravel()
+        for q, m, w in zip(a.params, miss, width, strict=True):
+            if abs(m) > SLACK_TOLERANCE * max(1.0, float(w)):
+                word = "late" if m > 0 else "early"
+                out.append(f"{a.name} meets {q.name} {abs(m):.4g} {q.unit} {word}" if q.unit == "s"
+                           else f"{a.name} misses {q.name} by {m:+.4g} {q.unit}")
+    return out
+
+
 def coordinate(
     agents: Sequence[AgentModel],
     resources: Sequence[Resource],
@@ -330,6 +356,9 @@ def coordinate(
     if not inc.ok:
         status = CoordinationStatus.FAILED
         message = f"no evaluation where all agents converged (failed: {', '.join(inc.failed)})"
+    elif status is not CoordinationStatus.FAILED and (misses := missed_slots(agents, inc)):
+        status = CoordinationStatus.UNREACHABLE
+        message = "the schedule asks for times an agent cannot meet: " + "; ".join(misses)
     return CoordinationResult(
         P=inc.P,
         total=inc.total,

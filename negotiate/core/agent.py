@@ -2,8 +2,9 @@
 
 An agent is its own parametric NLP (a :class:`~negotiate.core.nlp.ParametricNLP`) plus the few facts the
 coordinator needs to talk to it without looking inside: what each shared parameter means (which resource,
-entry or exit time or capacity share, its unit), a polyhedral set of parameter values the agent can surely
-meet (its reachable set, so that no infeasible slot is ever proposed), the parameter values it would pick if
+entry or exit time or capacity share, its unit), a polyhedral set of parameter values the coordinator may
+propose (its reachable set: values the agent can surely meet, or, for an agent with elastic parameters, a
+window containing every value it can meet), the parameter values it would pick if
 it were alone (its free optimum), a weight, and a way to turn a solve into named trajectories for plots and
 CSV files. Built-in models live in the top-level ``agents`` package; a user-written model only has to return
 an :class:`AgentModel`.
@@ -53,10 +54,13 @@ class SlotParam:
 
 @dataclass(frozen=True)
 class ReachableSet:
-    """Parameter values the agent can surely meet: ``lower <= p <= upper`` and ``A @ p <= b``.
+    """Parameter values the coordinator may propose to the agent: ``lower <= p <= upper`` and ``A @ p <= b``.
 
-    It is an inner approximation of the set of ``p`` for which the agent's NLP is feasible, found by the
-    model builder (typically from auxiliary NLP solves: earliest entry, latest exit, shortest dwell).
+    For an agent whose NLP holds its parameters exactly it is an inner approximation of the set of ``p``
+    where the NLP is feasible (every point solves), found by the model builder (e.g. from auxiliary solves).
+    For an elastic agent (one with :attr:`AgentModel.slack`, whose NLP solves everywhere and prices a miss)
+    it may be an outer bound instead: a window that contains every value the agent can meet (e.g. earliest
+    and latest times from its kinematics).
     Times in s, shares in the resource's unit; ``A`` has one row per extra linear rule (``(0, n_p)`` when
     there is none).
     """
@@ -123,6 +127,12 @@ class AgentModel:
         resource the agent plans to use in that block at this solve (in the share's unit, W for power; at
         most the share); entries of slot times are ignored. A share is a right to draw, not a plan: an agent
         may leave part of it unused. Without it the files and the report show the shares only.
+    slack : callable, optional
+        ``slack(result) -> array`` with one entry per parameter: by how much the solve's own values miss the
+        parameters (in their units; zero where the agent meets them). Only for elastic agents, whose NLP
+        relaxes its coupling rows with penalised slacks (an exact penalty) so that it solves at every point
+        of the window; the coordinator reports a schedule where a slack is not zero as unreachable. Without
+        it the agent meets its parameters exactly at every converged solve.
     """
 
     name: str
@@ -135,6 +145,7 @@ class AgentModel:
     model: str = "custom"
     start: LocalResult | None = None
     draw: Callable[[LocalResult], np.ndarray] | None = None
+    slack: Callable[[LocalResult], np.ndarray] | None = None
 
     def __post_init__(self) -> None:
         self.params = tuple(self.params)

@@ -41,6 +41,10 @@ class CoordinationStatus(StrEnum):
     """The round limit came first: the best schedule found, every agent converged there, not certified."""
     FAILED = "failed"
     """No point where every agent converged (or the method produced none): no usable schedule."""
+    UNREACHABLE = "unreachable"
+    """Every agent converged, but an elastic agent misses the times it was given (its slack is not zero): the
+    schedule asks for something it cannot do, so it is not usable. With fixed orders this usually means the
+    orders admit no schedule."""
     ERROR = "error"
     """The method raised an exception (``negotiate compare`` reports it and goes on with the others)."""
 
