@@ -34,17 +34,17 @@ from. Equalities have no weak activity, so the value function is smooth wherever
 nothing is lost at the fleet level: the coordinator chooses the slots anyway, and a vehicle that would use
 only part of a slot is represented by the smaller slot it actually occupies.
 
-Elastic slots. The coupling equalities are elastic: ``t(entry_k) = enter_k + late - early`` with
-``late, early >= 0`` priced at ``slot_penalty`` (J/s) each in the cost, an exact L1 penalty (Nocedal & Wright, *Numerical
-Optimization*, 2nd ed., sec. 17.2, nonsmooth penalty functions; cited from memory). Where the vehicle can meet the proposed times and the multiplier of their row is below the
-penalty, the slacks are zero at the solution (both bounds strictly active), so value, gradient and
-certificate are exactly those of the plain equalities; where it cannot, the solve still converges, the value
-grows by the penalty times the miss and the gradient is the penalty itself, a large exact price that drives
-the coordinator back. :meth:`VehicleModel.slack` reads the miss from a solve (``late - early`` per
-parameter, s); the coordinator reports a schedule whose slacks are not zero as unreachable. The penalty is
-``10 x`` the largest of three marginal costs of the vehicle (traction power at the speed limit, the arrival
-term's slope over the whole window, the comfort term at full acceleration), so that every multiplier of a
-reachable slot the coordination is likely to meet stays below it.
+Elastic slots. The coupling equalities are elastic: ``t(entry_k) = enter_k + late - early`` with ``late, early
+>= 0`` priced at ``slot_penalty`` (J/s) each in the cost, an exact L1 penalty (Nocedal & Wright, *Numerical
+Optimization*, 2nd ed., sec. 17.2, nonsmooth penalty functions; cited from memory). Where the vehicle can meet
+the proposed times and the multiplier of their row is below the penalty, the slacks are zero at the solution
+(both bounds strictly active), so value, gradient and certificate are exactly those of the plain equalities;
+where it cannot, the solve still converges, the value grows by the penalty times the miss and the gradient is
+the penalty itself, a large exact price that drives the coordinator back. :meth:`VehicleModel.slack` reads the
+miss from a solve (``late - early`` per parameter, s); the coordinator reports a schedule whose slacks are not
+zero as unreachable. The penalty is ``10 x`` the largest of three marginal costs of the vehicle (traction
+power at the speed limit, the arrival term's slope over the whole window, the comfort term at full
+acceleration), so that every multiplier of a reachable slot the coordination is likely to meet stays below it.
 
 Kinematic window. The coordinator proposes slot times from a box and a few rows that contain every
 reachable time: with the drag neglected in the drive direction and taken at its largest in the braking

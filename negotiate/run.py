@@ -38,8 +38,8 @@ from negotiate.coordination.methods import Method, method_class, method_names, o
 from negotiate.coordination.methods.base import Evaluation
 from negotiate.coordination.orders import OrderTrial, search_orders
 from negotiate.core.agent import AgentModel
-from negotiate.core.status import CoordinationStatus
 from negotiate.core.files import write_atomic
+from negotiate.core.status import CoordinationStatus
 from negotiate.errors import FleetError, Problem, RunFolderError, describe
 from negotiate.execution.base import Executor
 from negotiate.execution.make import make_executor
