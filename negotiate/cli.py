@@ -13,6 +13,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import negotiate
+from negotiate.tools.generate import KINDS
 
 if TYPE_CHECKING:
     from negotiate.coordination.engine import RoundRecord
@@ -81,11 +82,11 @@ def build_parser() -> argparse.ArgumentParser:
         "generate",
         help="write an invented fleet of N agents to standard output",
         description="Write a fleet file (TOML) with N invented agents of one kind to standard output: haul "
-        "trucks at a single-lane bridge, machines through a furnace, or tractors charging from one grid "
-        "connection. Arrivals are spread out in proportion to N, so the fleet stays feasible as it grows. "
-        "The same kind, N and seed always give the same file.",
+        "trucks at a single-lane bridge, machines through a furnace, tractors charging from one grid "
+        "connection, or cars and heavy vehicles at a four-way crossing. Arrivals are spread out in proportion "
+        "to N, so the fleet stays feasible as it grows. The same kind, N and seed always give the same file.",
     )
-    generate.add_argument("--kind", required=True, choices=["bridge", "furnace", "depot"], help="kind of fleet")
+    generate.add_argument("--kind", required=True, choices=list(KINDS), help="kind of fleet")
     generate.add_argument("--agents", required=True, type=int, metavar="N", help="number of agents")
     generate.add_argument("--seed", type=int, default=0, metavar="S", help="seed of the invented numbers (default 0)")
 

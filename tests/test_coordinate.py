@@ -469,3 +469,44 @@ class TestCoordinationStatus:
         assert not CoordinationStatus.FAILED.usable and not CoordinationStatus.ERROR.usable
         assert {str(s) for s in CoordinationStatus} == {"converged", "max-rounds", "failed", "unreachable", "error"}
         assert not CoordinationStatus.UNREACHABLE.usable
+
+
+def _elastic_agent(name: str, penalty: float) -> AgentModel:
+    """One elastic agent, solved by hand: it can only draw ``x`` in [0, 1] W, is charged ``(share - 5)^2`` on
+    the share it is granted and ``penalty * |x - share|`` for missing it (plus ``1e-3 x^2``, which moves the
+    figures below by less than 1e-3).
+
+    ``V(share) = (share - 5)^2 + penalty * max(share - 1, 0)`` on [0, 10]: with ``penalty = 2`` its minimiser is
+    ``share = 4`` (``2 (4 - 5) + 2 = 0``), 3 W past what the agent can meet; with ``penalty = 100`` it is
+    ``share = 1``, met exactly (exact penalty: ``|V'| = 8 < 100`` there).
+    """
+    x, late, early = ca.SX.sym("x"), ca.SX.sym("late"), ca.SX.sym("early")
+    p = ca.SX.sym("p")
+    nlp = {"x": ca.vertcat(x, late, early), "p": p, "f": (p - 5) ** 2 + penalty * (late + early) + 1e-3 * x**2,
+           "g": x - p - late + early}
+    problem = ParametricNLP(nlp, lbx=[0.0, 0.0, 0.0], ubx=[1.0, np.inf, np.inf], lbg=[0.0], ubg=[0.0])
+    return AgentModel(
+        name=name, problem=problem, params=(SlotParam("grid.share[0]", "grid", "share", "W", 0),),
+        reachable=ReachableSet([0.0], [10.0]), free_optimum=[1.0],
+        slack=lambda res: np.array([res.x[1] - res.x[2]]),
+    )
+
+
+class TestElasticSlots:
+    def test_a_missed_slot_ends_unreachable_and_names_it(self):
+        """Penalty 2 < |V'| of the plain problem: the coordinated slot (4 s, the hand solution above) is one
+        the agent misses by 3 W; the status says so and the schedule is not usable."""
+        from negotiate.core.status import CoordinationStatus
+
+        res = coordinate([_elastic_agent("a", 2.0)], [], settings("bundle", tolerance=1e-9))
+        assert res.P[0] == pytest.approx(4.0, abs=1e-3)
+        assert res.status is CoordinationStatus.UNREACHABLE and not res.status.usable
+        assert "a misses grid.share[0] by -3 W" in res.message
+
+    def test_an_exact_penalty_meets_the_slot(self):
+        """Penalty 100 > |V'|: the slot is the one the agent can meet (1 s, hand solution), status converged."""
+        from negotiate.core.status import CoordinationStatus
+
+        res = coordinate([_elastic_agent("a", 100.0)], [], settings("bundle", tolerance=1e-9))
+        assert res.P[0] == pytest.approx(1.0, abs=1e-3)
+        assert res.status is CoordinationStatus.CONVERGED

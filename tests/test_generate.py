@@ -58,7 +58,8 @@ class TestGenerateFleet:
 
     def test_bad_arguments(self):
         """Unknown kinds, sizes and seeds are refused with a message naming the argument."""
-        with pytest.raises(ValueError, match=r"'kind' must be one of \['bridge', 'furnace', 'depot'\], got 'x'"):
+        kinds = r"\['bridge', 'furnace', 'depot', 'crossing'\]"
+        with pytest.raises(ValueError, match=r"'kind' must be one of " + kinds + r", got 'x'"):
             generate_fleet("x", 3)
         with pytest.raises(ValueError, match=r"'agents' must be an integer from 1 to 100000, got 0"):
             generate_fleet("bridge", 0)
@@ -107,6 +108,23 @@ class TestBridgeAtScale:
         ok, detail, problem = _schedule(spec, models)
         assert ok, detail
         assert problem is None
+
+
+class TestCrossing:
+    def test_routes(self):
+        """Straight runs hold two adjacent quadrants, left turns three; heavy vehicles go straight; each
+        quadrant is entered from the approach whose right-hand lane runs through it."""
+        _, spec = _spec("crossing", 40, seed=2)
+        counts = {len(a.params.zones) for a in spec.agents}
+        assert counts == {2, 3}
+        for a in spec.agents:
+            zones = a.params.zones
+            assert [z.entry for z in zones] == [144.0 + 6.0 * k for k in range(len(zones))]
+            assert all(z.exit == z.entry + 6.0 for z in zones)
+            if a.params.length > 10.0:
+                assert len(zones) == 2
+        firsts = {a.params.zones[0].resource: a.params.zones[1].resource for a in spec.agents}
+        assert firsts == {"se": "ne", "nw": "sw", "ne": "nw", "sw": "se"}  # right-hand traffic, straight on
 
 
 class TestCommandLine:

@@ -47,6 +47,7 @@ import numpy as np
 from negotiate.coordination.methods import AgentReport, Evaluation, Method, Proposal, method_class
 from negotiate.core.agent import AgentModel
 from negotiate.core.nlp import LocalResult
+from negotiate.core.qp import solve_qp
 from negotiate.core.status import CoordinationStatus
 from negotiate.execution.base import AgentOutcome, Executor, InProcessExecutor, evaluate_agent
 from negotiate.fleet.spec import CoordinatorSettings, Resource
@@ -244,6 +245,36 @@ def missed_slots(agents: Sequence[AgentModel], ev: Evaluation) -> list[str]:
     return out
 
 
+def rigid_start(agents: Sequence[AgentModel], feasible: FeasibleSet) -> np.ndarray:
+    """The first point: every agent's free optimum with all its slot times shifted by one common amount.
+
+    The shifts ``tau`` (s, one per agent) are the least-squares smallest that meet the coupling polyhedron:
+    ``min ||tau||^2`` s.t. ``A (F + E tau) <= b`` and the box, a QP. Shifting an agent's times together keeps
+    the durations between them (dwell, gaps between zones), which its kinematics fix much more tightly than
+    the times themselves, so the start is a point the agents can meet where a plain projection of the free
+    optima would squeeze or stretch those durations. Where no such shifts exist (or the agent has no slot
+    times) the free optima are projected onto the polyhedron as they are.
+    """
+    F = feasible.layout.stack([a.free_optimum for a in agents])
+    E = np.zeros((F.size, len(agents)))
+    for i, a in enumerate(agents):
+        sl = feasible.layout.slice(i)
+        for j, q in enumerate(a.params):
+            if q.kind in ("enter", "leave"):
+                E[sl.start + j, i] = 1.0
+    used = E.any(axis=0)
+    if not used.any():
+        return feasible.project(F)
+    E = E[:, used]
+    lo = np.array([np.max((feasible.lower - F)[E[:, k] > 0]) for k in range(E.shape[1])])
+    hi = np.array([np.min((feasible.upper - F)[E[:, k] > 0]) for k in range(E.shape[1])])
+    res = solve_qp(np.eye(E.shape[1]), np.zeros(E.shape[1]), feasible.A @ E, np.full(feasible.b.size, -np.inf),
+                   feasible.b - feasible.A @ F, lo, hi)  # fmt: skip
+    if not res.success or not np.all(lo <= hi):
+        return feasible.project(F)
+    return feasible.project(F + E @ res.z)
+
+
 def coordinate(
     agents: Sequence[AgentModel],
     resources: Sequence[Resource],
@@ -297,8 +328,7 @@ def coordinate(
     history: list[RoundRecord] = []
     rounds, k0 = 0, 0
     if resume is None:
-        P0 = feasible.layout.stack([a.free_optimum for a in agents]) if start is None else np.asarray(start, float)
-        P0 = feasible.project(P0)
+        P0 = rigid_start(agents, feasible) if start is None else feasible.project(np.asarray(start, float))
         method = method_cls(feasible, settings)
         latest = oracle(P0)
         method.start(latest)

@@ -18,6 +18,12 @@ Kinds
 ``furnace``
     Machines whose batches pass one furnace and then one inspection station; a batch is released on
     average every 1500 s, while the furnace holds a batch for 600..1500 s plus a 300 s changeover.
+``crossing``
+    Cars and a few heavy vehicles (one in five) at a four-way crossing of two-lane roads, right-hand
+    traffic; cars drive straight or turn left, heavy vehicles drive straight. The 12 m x 12 m box is split
+    into four quadrants, each an exclusive conflict zone: a straight run crosses two adjacent quadrants (box
+    at 144..156 m of its 300 m route), a left turn three (144..162 m, the arc taken as 18 m). One vehicle
+    arrives on average every 3 s, while a quadrant is held about 1 s plus a 1 s gap.
 ``depot``
     Electric yard tractors charging from one grid connection over eight 900 s blocks; the connection's
     limits grow with ``N`` so that it can deliver 1.3 times what all tractors together need.
@@ -30,9 +36,9 @@ from __future__ import annotations
 
 import random
 
-__all__ = ["KINDS", "generate_fleet"]
+__all__ = ["KINDS", "crossing_header", "crossing_vehicle", "generate_fleet"]
 
-KINDS = ("bridge", "furnace", "depot")
+KINDS = ("bridge", "furnace", "depot", "crossing")
 """Kinds of generated fleets."""
 
 MAX_AGENTS = 100_000
@@ -186,6 +192,84 @@ def _furnace(n: int, rng: random.Random, width: int) -> list[str]:
     return lines
 
 
+# Quadrants of the box passed by each movement, right-hand traffic: an approach from the south (driving north)
+# uses the east half of the box, SE then NE; turning left it goes on to NW.
+_APPROACHES = {
+    "south": ("se", "ne", "nw"),
+    "north": ("nw", "sw", "se"),
+    "east": ("ne", "nw", "sw"),
+    "west": ("sw", "se", "ne"),
+}
+_BOX = 144.0  # m, route position where the box begins
+_QUADRANT = 6.0  # m of route per quadrant
+
+
+def crossing_vehicle(name: str, approach: str, left: bool, heavy: bool, departure: float) -> list[str]:
+    """Lines of one vehicle of a four-way crossing (see the module docstring), in fleet-file TOML."""
+    zones = _APPROACHES[approach][: 3 if left else 2]
+    lines = [f"[agents.{name}]", 'model = "vehicle"']
+    if heavy:
+        lines += ["mass = 12000.0", "payload = 6000.0", "length = 12.0", "drag_area = 6.0", "max_accel = 0.8",
+                  "max_brake = 2.0", "initial_speed = 10.0"]  # fmt: skip
+    trip = 300.0 / (10.0 if heavy else 12.0) + (4.0 if left else 0.0)
+    lines += [
+        f"departure = {_num(round(departure, 1))}",
+        f"desired_arrival = {_num(round(departure + trip, 1))}",
+        f"latest_arrival = {_num(round(departure + 120.0, 1))}",
+    ]
+    for k, quadrant in enumerate(zones):
+        lines += [
+            f"[[agents.{name}.zones]]",
+            f'resource = "{quadrant}"',
+            f"entry = {_num(_BOX + k * _QUADRANT)}",
+            f"exit = {_num(_BOX + (k + 1) * _QUADRANT)}",
+        ]
+    lines.append("")
+    return lines
+
+
+def crossing_header(max_rounds: int, order: str) -> list[str]:
+    """Resources, coordinator and vehicle defaults of a four-way crossing, in fleet-file TOML."""
+    lines = []
+    for quadrant in ("ne", "nw", "sw", "se"):
+        lines += [f"[resources.{quadrant}]", 'kind = "exclusive"',
+                  "gap = 1.0                     # s between one vehicle's rear leaving and the next entering", ""]
+    return lines + [
+        "[coordinator]",
+        'method = "bundle"',
+        f"max_rounds = {max_rounds}",
+        "tolerance = 1e-6",
+        f'order = "{order}"',
+        "",
+        "[defaults.vehicle]             # a car; heavy vehicles override mass, length, drag and forces",
+        "route_length = 300.0",
+        "stages = 30",
+        "mass = 1500.0",
+        "length = 4.5",
+        "drag_area = 0.7",
+        "speed_limit = 14.0",
+        "min_speed = 1.0",
+        "initial_speed = 12.0",
+        "max_accel = 2.0",
+        "max_brake = 3.0",
+        "rolling_coeff = 0.01",
+        "arrival_weight = 200.0",
+        "comfort_weight = 2000.0",
+        "",
+    ]
+
+
+def _crossing(n: int, rng: random.Random, width: int) -> list[str]:
+    lines = crossing_header(60, "fcfs")
+    t = 0.0
+    for k in range(n):
+        approach = rng.choice(tuple(_APPROACHES))
+        left, heavy = rng.random() < 0.3, rng.random() < 0.2
+        lines += crossing_vehicle(f"vehicle-{k + 1:0{width}d}", approach, left and not heavy, heavy, t)
+        t += rng.uniform(2.0, 4.0)
+    return lines
+
+
 _TARIFF = (1.0, 1.0, 1.4, 1.6, 1.2, 0.9, 0.8, 0.8)
 _SHAPE = (1.0, 1.0, 0.78, 0.67, 0.78, 1.0, 1.1, 1.1)  # the site's own peak lowers the limit in blocks 2..4
 
@@ -239,6 +323,7 @@ _WHAT = {
     "bridge": "Haul trucks, alternately loaded and empty, crossing one single-lane bridge from both ends.",
     "furnace": "Machines sending one batch each through one heat-treatment furnace, then one inspection station.",
     "depot": "Electric yard tractors charging from one grid connection over eight blocks of 900 s.",
+    "crossing": "Cars and heavy vehicles, straight or turning left, through the four quadrants of a crossing.",
 }
 
 
@@ -258,5 +343,5 @@ def generate_fleet(kind: str, agents: int, seed: int = 0) -> str:
         raise ValueError(f"'seed' must be an integer >= 0, got {seed!r}")
     rng = random.Random(seed)
     width = max(2, len(str(agents)))
-    body = {"bridge": _bridge, "furnace": _furnace, "depot": _depot}[kind](agents, rng, width)
+    body = {"bridge": _bridge, "furnace": _furnace, "depot": _depot, "crossing": _crossing}[kind](agents, rng, width)
     return "\n".join(_header(kind, agents, seed, _WHAT[kind]) + body).rstrip("\n") + "\n"
