@@ -70,13 +70,14 @@ from typing import Any
 import casadi as ca
 import numpy as np
 
-from agents._common import NLPSpec, joint_optimum, smooth_pos, solve_aux
+from agents._common import NLPSpec, hull_rows, joint_optimum, smooth_pos, solve_aux
 from agents.params import STANDARD_GRAVITY, VehicleParams
 from negotiate.core.agent import AgentModel, ReachableSet, SlotParam
 
 __all__ = ["VehicleModel", "build_vehicle", "vehicle_grid"]
 
 _PENALTY_FACTOR = 10.0  # slot penalty / the vehicle's largest marginal cost (see the module docstring)
+_SPEED_LEVELS = 12  # intervals of the speed at a mark for the hull of two consecutive durations
 _MARGIN = 1e-3  # relative margin of the window's shortest times between marks (see the module docstring)
 
 
@@ -226,60 +227,96 @@ class VehicleModel:
         return float(self.times(res.x)[-1])
 
     # ----------------------------------------------------------------------------------------------------
-    def stage_time_bounds(self) -> tuple[np.ndarray, np.ndarray]:
-        """Shortest and longest time of each stage over every trajectory the constraints allow (s).
+    def energy_bounds(self, pin: tuple[int, float, float] | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """Bounds ``lo <= e <= hi`` on the kinetic energy per mass at every node over every feasible trajectory
+        (J/kg); with ``pin = (node, e_low, e_high)`` over those whose energy at ``node`` lies in that interval.
 
-        From bounds on the kinetic energy per mass at the nodes (see the module docstring): ``hi`` by a
-        forward pass at full drive force without drag and a backward pass at full braking with the largest
-        drag, both under the speed limits; ``lo`` by a forward pass at full braking and a backward pass at
-        full drive force, both above ``min_speed``. Every feasible ``e`` lies between them node by node, so
-        the stage times ``2 ds / (v_i + v_{i+1})`` at those speeds bound the true ones.
+        ``hi`` by a forward pass at full drive force without drag and a backward pass at full braking with the
+        largest drag, both under the speed limits; ``lo`` by a forward pass at full braking and a backward pass
+        at full drive force, both above ``min_speed``. The trapezoidal dynamics change ``e`` over a stage by at
+        most these amounts, so every feasible ``e`` lies between the two, node by node (two passes suffice:
+        the backward pass cannot break what the forward pass established). Where ``lo > hi`` somewhere, no
+        trajectory exists (with that pin).
         """
         prm, ds = self.prm, self.ds
         N = self.n_stages
         e0 = 0.5 * prm.initial_speed**2
-        cap = np.r_[e0, 0.5 * self.v_max[1:] ** 2]
-        floor = np.r_[e0, np.full(N, 0.5 * prm.min_speed**2)]
-        drive = max(prm.max_accel - self.roll, 0.0)  # largest gain of e per metre, 1 (m/s^2)
-        brake = prm.max_brake + self.roll + self.aero * float(cap.max())  # largest loss of e per metre
-        hi, lo = cap.copy(), floor.copy()
+        hi = np.r_[e0, 0.5 * self.v_max[1:] ** 2]
+        lo = np.r_[e0, np.full(N, 0.5 * prm.min_speed**2)]
+        drive = max(prm.max_accel - self.roll, 0.0)  # largest gain of e per metre, m/s^2
+        brake = prm.max_brake + self.roll + self.aero * float(hi.max())  # largest loss of e per metre
+        if pin is not None:
+            node, e_low, e_high = pin
+            hi[node], lo[node] = min(hi[node], e_high), max(lo[node], e_low)
         for i in range(1, N + 1):
             hi[i] = min(hi[i], hi[i - 1] + drive * ds[i - 1])
             lo[i] = max(lo[i], lo[i - 1] - brake * ds[i - 1])
-        for i in range(N - 1, 0, -1):
+        for i in range(N - 1, -1, -1):
             hi[i] = min(hi[i], hi[i + 1] + brake * ds[i])
             lo[i] = max(lo[i], lo[i + 1] - drive * ds[i])
+        return lo, hi
+
+    def stage_times(self, lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Shortest and longest time of each stage (s) for node energies within ``[lo, hi]``: the stage time
+        ``2 ds / (v_i + v_{i+1})`` at the highest and at the lowest speeds."""
         v_hi, v_lo = np.sqrt(2 * hi), np.sqrt(2 * np.minimum(lo, hi))
-        return 2 * ds / (v_hi[:-1] + v_hi[1:]), 2 * ds / (v_lo[:-1] + v_lo[1:])
+        return 2 * self.ds / (v_hi[:-1] + v_hi[1:]), 2 * self.ds / (v_lo[:-1] + v_lo[1:])
 
     def window(self, margin: float = _MARGIN) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """Box ``lower <= p <= upper`` and rows ``A p <= b`` containing every reachable zone time (s).
 
-        Bounds from :meth:`stage_time_bounds`: earliest and latest time at each zone node (the latest also
-        leaves the quickest rest of the route before ``latest_arrival``), and for consecutive marks along
-        the route the quickest and slowest time between them, the quickest raised by the relative
-        ``margin``. At the quickest time between two marks every speed between them can be at its limit,
-        where the coupling rows and the speed bounds are linearly dependent (LICQ fails, the value has a
-        kink); the margin keeps proposals off that edge. With ``margin = 0`` the set is a true outer bound.
+        From :meth:`energy_bounds` and :meth:`stage_times`: the earliest and latest time at each zone node
+        (the latest also leaves the quickest rest of the route before ``latest_arrival``); for consecutive
+        marks along the route (entries and exits in route order) the quickest and slowest time between them,
+        the quickest raised by the relative ``margin``; and for two consecutive such durations the convex
+        hull of the pairs they can take together. That hull is the union over the speed at the mark between
+        them: for each of ``_SPEED_LEVELS`` intervals of that speed, the energy bounds pinned to the interval
+        give a rectangle of the two durations, and the hull of all rectangles holds every reachable pair. It
+        keeps what a box of durations loses: over a few metres the speed hardly changes, so a vehicle that is
+        slow through one zone is slow through the next. At the quickest time between two marks every speed
+        between them can be at its limit, where the coupling rows and the speed bounds are linearly dependent
+        (LICQ fails, the value has a kink); the margin keeps proposals off that edge. With ``margin = 0`` the
+        set is a true outer bound.
         """
         prm = self.prm
-        quick, slow = self.stage_time_bounds()
+        lo, hi = self.energy_bounds()
+        quick, slow = self.stage_times(lo, hi)
         t_early = prm.departure + np.r_[0.0, np.cumsum(quick)]
         t_late = np.minimum(prm.departure + np.r_[0.0, np.cumsum(slow)],
                             prm.latest_arrival - np.r_[np.cumsum(quick[::-1])[::-1], 0.0])
         nodes = np.array([i for pair in self.zone_nodes for i in pair])
         lower, upper = t_early[nodes], t_late[nodes]
         order = np.argsort(nodes, kind="stable")
-        rows, rhs = [], []
-        for a, b in zip(order[:-1], order[1:], strict=True):
-            shortest = (1 + margin) * float(quick[nodes[a]: nodes[b]].sum())
-            longest = float(slow[nodes[a]: nodes[b]].sum())
+        rows: list[np.ndarray] = []
+        rhs: list[float] = []
+
+        def duration_row(a: int, b: int) -> np.ndarray:  # t_b - t_a as a row on p
             row = np.zeros(nodes.size)
-            row[a], row[b] = 1.0, -1.0  # t_a - t_b <= -shortest
-            rows.append(row)
-            rhs.append(-shortest)
-            rows.append(-row)  # t_b - t_a <= longest
-            rhs.append(longest)
+            row[b], row[a] = 1.0, -1.0
+            return row
+
+        for a, b in zip(order[:-1], order[1:], strict=True):
+            row = duration_row(a, b)
+            rows += [-row, row]
+            rhs += [-(1 + margin) * float(quick[nodes[a]: nodes[b]].sum()), float(slow[nodes[a]: nodes[b]].sum())]
+        for a, b, c in zip(order[:-2], order[1:-1], order[2:], strict=True):
+            first, second = slice(nodes[a], nodes[b]), slice(nodes[b], nodes[c])
+            levels = np.linspace(lo[nodes[b]], hi[nodes[b]], _SPEED_LEVELS + 1)
+            pts = []
+            for e_low, e_high in zip(levels[:-1], levels[1:], strict=True):
+                lo_k, hi_k = self.energy_bounds((int(nodes[b]), float(e_low), float(e_high)))
+                if np.any(lo_k > hi_k * (1 + 1e-12)):
+                    continue  # no trajectory has its speed at the middle mark in this interval
+                q, s = self.stage_times(lo_k, hi_k)
+                for d1 in (q[first].sum(), s[first].sum()):
+                    for d2 in (q[second].sum(), s[second].sum()):
+                        pts.append((d1, d2))
+            if len(pts) < 3 or np.ptp(np.array(pts), axis=0).min() <= 0:
+                continue  # a degenerate pair (a duration of zero length): the duration rows above suffice
+            A2, b2 = hull_rows(np.array(pts))
+            for (w1, w2), bi in zip(A2, b2, strict=True):
+                rows.append(w1 * duration_row(a, b) + w2 * duration_row(b, c))
+                rhs.append(float(bi))
         A = np.array(rows).reshape(len(rows), nodes.size)
         return lower, upper, A, np.array(rhs)
 

@@ -21,7 +21,7 @@ from negotiate.fleet.parse import parse_fleet
 from negotiate.tools.check import CheckResult, check_data, check_fleet, conflict_graph
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
-NAMES = ["quarry_bridge", "machining_cell", "charging_depot"]
+NAMES = ["quarry_bridge", "machining_cell", "charging_depot", "four_way_crossing"]
 
 
 @pytest.fixture(scope="module")

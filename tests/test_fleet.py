@@ -71,7 +71,7 @@ def problems_of(data: dict, source: str = "fleet.toml") -> list[str]:
 
 
 class TestExamples:
-    @pytest.mark.parametrize("name", ["quarry_bridge", "machining_cell", "charging_depot"])
+    @pytest.mark.parametrize("name", ["quarry_bridge", "machining_cell", "charging_depot", "four_way_crossing"])
     def test_example_parses(self, name):
         """Each shipped example parses into a FleetSpec named in its [fleet] table."""
         spec = load_fleet(EXAMPLES / f"{name}.toml")
@@ -79,7 +79,7 @@ class TestExamples:
         assert spec.name == name.replace("_", "-")
         assert spec.source == str(EXAMPLES / f"{name}.toml")
 
-    @pytest.mark.parametrize("name", ["quarry_bridge", "machining_cell", "charging_depot"])
+    @pytest.mark.parametrize("name", ["quarry_bridge", "machining_cell", "charging_depot", "four_way_crossing"])
     def test_example_marked_invented(self, name):
         """Every example says in its header that it is invented."""
         head = (EXAMPLES / f"{name}.toml").read_text(encoding="utf-8").splitlines()[0]

@@ -48,7 +48,7 @@ from negotiate.coordination.methods import AgentReport, Evaluation, Method, Prop
 from negotiate.core.agent import AgentModel
 from negotiate.core.nlp import LocalResult
 from negotiate.core.qp import solve_qp
-from negotiate.core.status import CoordinationStatus
+from negotiate.core.status import CoordinationStatus, Status
 from negotiate.execution.base import AgentOutcome, Executor, InProcessExecutor, evaluate_agent
 from negotiate.fleet.spec import CoordinatorSettings, Resource
 from negotiate.resources.coupling import FeasibleSet, build_feasible_set, fcfs_orders
@@ -160,6 +160,7 @@ class Oracle:
         # The first round starts from each agent's solve at its free optimum, where the builder made one.
         self.last: list[LocalResult | None] = [a.start for a in self.agents]
         self.solves = 0
+        self.slide = True
 
     def _outcomes(self, parts: list[np.ndarray], warm: list[LocalResult | None]) -> list[AgentOutcome]:
         if isinstance(self.executor, Executor):
@@ -176,18 +177,33 @@ class Oracle:
         ]
 
     def __call__(self, P: np.ndarray) -> Evaluation:
+        ev = self.evaluate(P)
+        if not self.slide or ev.ok or any(not r.result.success for r in ev.reports):
+            return ev
+        # Some elastic agent cannot meet ``P`` (and every solve converged): evaluate instead the point next to
+        # what the agents met, as the restoration does (a point on the near side of the unreachable edge, so
+        # that a step towards the edge slides along it rather than only stepping back).
+        moved = self.evaluate(self.feasible.project(achieved(self.agents, ev), _held(self.agents, ev)))
+        return moved if moved.ok else ev
+
+    def evaluate(self, P: np.ndarray) -> Evaluation:
+        """Every agent's report at ``P`` (one solve each, plus the guard's probes)."""
         parts = self.feasible.layout.split(P)
         warm = [r if r is not None and r.success else None for r in self.last]
         outcomes = self._outcomes(parts, warm)
         reports = []
+        widths = self.feasible.layout.split(self.feasible.scale)
         for i, (a, out) in enumerate(zip(self.agents, outcomes, strict=True)):
             res, rep = out.result, out.guard
             self.solves += out.solves
-            reports.append(
-                AgentReport(
-                    a.name, parts[i], res.value, res.gradient, res.status, res.certificate, rep, res, out.hessian
-                )
+            report = AgentReport(
+                a.name, parts[i], res.value, res.gradient, res.status, res.certificate, rep, res, out.hessian
             )
+            if res.success and _misses(a, res, widths[i]):
+                # The agent cannot meet these values: its priced miss is not a value of the problem, and the
+                # methods treat the point as one where the agent failed (a hidden constraint: they step back).
+                report = replace(report, gradient=None, status=Status.INFEASIBLE, guard=None, hessian=None)
+            reports.append(report)
             if res.success:
                 self.last[i] = res
         return Evaluation(
@@ -225,6 +241,15 @@ SLACK_TOLERANCE = 1e-6
 """Largest elastic slack that counts as met, relative to the parameter's window width (at least 1 unit)."""
 
 
+def _misses(agent: AgentModel, result: LocalResult, width: np.ndarray) -> list[tuple[int, float]]:
+    """``(index, miss)`` for every parameter an elastic agent misses by more than :data:`SLACK_TOLERANCE`."""
+    if agent.slack is None:
+        return []
+    miss = np.asarray(agent.slack(result), dtype=float).ravel()
+    return [(j, float(m)) for j, (m, w) in enumerate(zip(miss, width, strict=True))
+            if abs(m) > SLACK_TOLERANCE * max(1.0, float(w))]  # fmt: skip
+
+
 def missed_slots(agents: Sequence[AgentModel], ev: Evaluation) -> list[str]:
     """Texts naming every parameter an elastic agent misses at ``ev`` by more than :data:`SLACK_TOLERANCE`.
 
@@ -234,14 +259,13 @@ def missed_slots(agents: Sequence[AgentModel], ev: Evaluation) -> list[str]:
     out = []
     scale = ev.feasible.layout.split(ev.feasible.scale)
     for a, rep, width in zip(agents, ev.reports, scale, strict=True):
-        if a.slack is None or not rep.ok:
+        if not rep.result.success:
             continue
-        miss = np.asarray(a.slack(rep.result), dtype=float).ravel()
-        for q, m, w in zip(a.params, miss, width, strict=True):
-            if abs(m) > SLACK_TOLERANCE * max(1.0, float(w)):
-                word = "late" if m > 0 else "early"
-                out.append(f"{a.name} meets {q.name} {abs(m):.4g} {q.unit} {word}" if q.unit == "s"
-                           else f"{a.name} misses {q.name} by {m:+.4g} {q.unit}")
+        for j, m in _misses(a, rep.result, width):
+            q = a.params[j]
+            word = "late" if m > 0 else "early"
+            out.append(f"{a.name} meets {q.name} {abs(m):.4g} {q.unit} {word}" if q.unit == "s"
+                       else f"{a.name} misses {q.name} by {m:+.4g} {q.unit}")
     return out
 
 
@@ -273,6 +297,56 @@ def rigid_start(agents: Sequence[AgentModel], feasible: FeasibleSet) -> np.ndarr
     if not res.success or not np.all(lo <= hi):
         return feasible.project(F)
     return feasible.project(F + E @ res.z)
+
+
+RESTORE_ROUNDS = 10
+"""Most rounds of the restoration at the start of a coordination (see :func:`restore`)."""
+
+
+def achieved(agents: Sequence[AgentModel], ev: Evaluation) -> np.ndarray:
+    """The stacked values the agents' solves at ``ev`` actually meet: ``P`` plus every elastic slack."""
+    parts = []
+    for a, rep in zip(agents, ev.reports, strict=True):
+        miss = a.slack(rep.result) if a.slack is not None and rep.result.success else np.zeros(rep.p.size)
+        parts.append(np.asarray(rep.p, dtype=float) + np.asarray(miss, dtype=float))
+    return np.concatenate(parts) if parts else np.zeros(0)
+
+
+def restore(agents: Sequence[AgentModel], feasible: FeasibleSet, oracle: Oracle, ev: Evaluation) -> Evaluation:
+    """A start every elastic agent can meet, by alternating projections from ``ev``.
+
+    An elastic agent's window may hold values it cannot meet (:attr:`~negotiate.core.agent.AgentModel.slack`),
+    and the methods treat such a point as one where the agent failed. While some agent misses its values,
+    each round takes the values the agents' solves actually met (a point each of them can reach) and
+    projects it onto the coupling polyhedron, as in von Neumann's alternating projections between two
+    convex sets (Bauschke & Borwein, SIAM Review 38 (1996) 367-426), for at most :data:`RESTORE_ROUNDS`
+    rounds; the projection holds every agent that has missed so far near what it met (weight 1e4 in the
+    projection's metric), so that the others make room, which is what a tight schedule needs (plain
+    alternating projections zig-zag slowly between two sets that nearly touch). Returns the first evaluation
+    without a miss, else the last one. A fleet without elastic agents costs nothing here.
+
+    During the coordination the :class:`Oracle` does the same once for every trial point an agent misses
+    (one projection of what the agents met, one more round of solves), so that a step towards the edge of
+    what the agents can reach slides along it instead of only stepping back.
+    """
+    held = np.ones(feasible.n)
+    for _ in range(RESTORE_ROUNDS):
+        if not missed_slots(agents, ev) or any(not r.result.success for r in ev.reports):
+            break
+        held = np.maximum(held, _held(agents, ev))  # once held, held for the rest of the restoration
+        ev = oracle.evaluate(feasible.project(achieved(agents, ev), held))
+    return ev
+
+
+def _held(agents: Sequence[AgentModel], ev: Evaluation) -> np.ndarray:
+    """Projection weights: 1e4 on the parameters of every agent that misses its values at ``ev`` (held near
+    what it met), 1 elsewhere (those make room)."""
+    weight = np.ones(ev.feasible.n)
+    widths = ev.feasible.layout.split(ev.feasible.scale)
+    for i, (a, rep) in enumerate(zip(agents, ev.reports, strict=True)):
+        if rep.result.success and _misses(a, rep.result, widths[i]):
+            weight[ev.feasible.layout.slice(i)] = 1e4
+    return weight
 
 
 def coordinate(
@@ -330,7 +404,7 @@ def coordinate(
     if resume is None:
         P0 = rigid_start(agents, feasible) if start is None else feasible.project(np.asarray(start, float))
         method = method_cls(feasible, settings)
-        latest = oracle(P0)
+        latest = restore(agents, feasible, oracle, oracle(P0))
         method.start(latest)
     else:
         names = [a.name for a in agents]
@@ -383,12 +457,12 @@ def coordinate(
         rounds += 1
         save(k + 1)
     inc = method.incumbent if method.incumbent is not None else latest
-    if not inc.ok:
-        status = CoordinationStatus.FAILED
-        message = f"no evaluation where all agents converged (failed: {', '.join(inc.failed)})"
-    elif status is not CoordinationStatus.FAILED and (misses := missed_slots(agents, inc)):
+    if misses := missed_slots(agents, inc):
         status = CoordinationStatus.UNREACHABLE
         message = "the schedule asks for times an agent cannot meet: " + "; ".join(misses)
+    elif not inc.ok:
+        status = CoordinationStatus.FAILED
+        message = f"no evaluation where all agents converged (failed: {', '.join(inc.failed)})"
     return CoordinationResult(
         P=inc.P,
         total=inc.total,

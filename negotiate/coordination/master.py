@@ -68,7 +68,7 @@ from negotiate.coordination.orders import Incumbent, OrderTrial, order_key
 from negotiate.core.agent import AgentModel
 from negotiate.errors import DeadlockError, InfeasibleOrdersError
 from negotiate.fleet.spec import Resource
-from negotiate.resources.coupling import Layout, build_feasible_set, check_orders, fcfs_orders
+from negotiate.resources.coupling import Layout, build_feasible_set, check_orders, first_orders
 
 __all__ = [
     "CONVEXITY_RTOL",
@@ -466,7 +466,7 @@ def search_master(
             if master.add_cut(i, a.free_optimum, a.start.value, a.start.gradient):
                 convex.add(i, a.free_optimum.copy(), float(a.start.value), [a.start.gradient])
 
-    orders = {k: list(v) for k, v in (start or fcfs_orders(agents, resources)).items()}
+    orders = {k: list(v) for k, v in (start or first_orders(agents, resources)).items()}
     check_orders(agents, resources, orders)
     best_total, best_P, best = run(orders, None)
     take(best)

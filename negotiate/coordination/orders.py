@@ -25,7 +25,7 @@ import numpy as np
 from negotiate.core.agent import AgentModel
 from negotiate.errors import DeadlockError, InfeasibleOrdersError
 from negotiate.fleet.spec import Resource
-from negotiate.resources.coupling import check_orders, fcfs_orders
+from negotiate.resources.coupling import check_orders, first_orders
 
 __all__ = ["EXHAUSTIVE_LIMIT", "Incumbent", "OrderTrial", "order_key", "search_orders"]
 
@@ -173,11 +173,12 @@ def search_orders(
     Raises
     ------
     DeadlockError, InfeasibleOrdersError
-        When the first order (``start`` or first-come-first-served) admits no schedule.
+        When the first order (``start``, or first-come-first-served per resource, or else by one ranking of
+        all agents: :func:`~negotiate.resources.coupling.first_orders`) admits no schedule.
     """
     if rule == "master":
         raise ValueError('order = "master" is run by negotiate.coordination.master.search_master')
-    orders = {k: list(v) for k, v in (start or fcfs_orders(agents, resources)).items()}
+    orders = {k: list(v) for k, v in (start or first_orders(agents, resources)).items()}
     check_orders(agents, resources, orders)
     best_total, best_P, best = run(orders, None)
     trials = [OrderTrial({k: list(v) for k, v in orders.items()}, best_total, True)]

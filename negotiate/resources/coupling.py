@@ -47,7 +47,9 @@ __all__ = [
     "build_feasible_set",
     "check_orders",
     "fcfs_orders",
+    "first_orders",
     "precedence_graph",
+    "ranked_orders",
 ]
 
 
@@ -111,6 +113,47 @@ def fcfs_orders(agents: Sequence[AgentModel], resources: Sequence[Resource]) -> 
     """First-come-first-served orders: users of each resource that needs an order (an exclusive one), sorted
     by free-optimum entry time."""
     return {r.name: r.first_come_order(agents) for r in resources if r.needs_order}
+
+
+def ranked_orders(agents: Sequence[AgentModel], resources: Sequence[Resource]) -> dict[str, list[str]]:
+    """Orders from one ranking of all agents: by the earliest entry time of their free optimum on any resource
+    that needs an order (first come, first served at the first resource each agent reaches).
+
+    Every resource's users follow the same ranking, so no two agents swap places from one resource to the
+    next: no agent overtakes another inside a run of adjacent zones, and the orders form no cycle with the
+    routes. With one ordered resource per agent it is :func:`fcfs_orders`.
+    """
+    per_resource = fcfs_orders(agents, resources)
+    first: dict[str, float] = {}
+    for a in agents:
+        times = [a.free_optimum[k] for k, q in enumerate(a.params) if q.kind == "enter" and q.resource in per_resource]
+        if times:
+            first[a.name] = float(min(times))
+    return {r: sorted(users, key=lambda n: (first[n], n)) for r, users in per_resource.items()}
+
+
+def first_orders(agents: Sequence[AgentModel], resources: Sequence[Resource]) -> dict[str, list[str]]:
+    """The orders a search starts from: :func:`fcfs_orders` when some schedule meets them, else
+    :func:`ranked_orders` when those admit one.
+
+    Raises
+    ------
+    DeadlockError, InfeasibleOrdersError
+        The first-come-first-served orders' error, when neither admits a schedule.
+    """
+    orders = fcfs_orders(agents, resources)
+    try:
+        check_orders(agents, resources, orders)
+    except (DeadlockError, InfeasibleOrdersError) as exc:
+        ranked = ranked_orders(agents, resources)
+        if ranked == orders:
+            raise
+        try:
+            check_orders(agents, resources, ranked)
+        except (DeadlockError, InfeasibleOrdersError):
+            raise exc from None
+        return ranked
+    return orders
 
 
 def precedence_graph(agents: Sequence[AgentModel], orders: Mapping[str, Sequence[str]]) -> nx.DiGraph:
@@ -238,13 +281,16 @@ class FeasibleSet:
         i = int(np.searchsorted(np.asarray(self.layout.offsets), j, side="right")) - 1
         return f"{self.layout.names[i]}: parameter {j - self.layout.offsets[i]}"
 
-    def project(self, Y: np.ndarray) -> np.ndarray:
-        """Nearest point of the set to ``Y`` in the scaled norm ``||(P - Y) / scale||`` (a QP)."""
+    def project(self, Y: np.ndarray, weight: np.ndarray | None = None) -> np.ndarray:
+        """Nearest point of the set to ``Y`` in the scaled norm ``||(P - Y) / scale||`` (a QP), each squared
+        entry multiplied by ``weight`` when given (positive, one per parameter: a large weight holds that
+        parameter near its value in ``Y``)."""
         s = self.scale
         u = np.asarray(Y, dtype=float) / s
+        w = np.ones(self.n) if weight is None else np.asarray(weight, dtype=float)
         res = solve_qp(
-            np.eye(self.n),
-            -u,
+            np.diag(w),
+            -w * u,
             self.A * s[None, :],
             np.full(self.b.size, -np.inf),
             self.b,
@@ -256,7 +302,7 @@ class FeasibleSet:
             # well-scaled stand-in (exact when only box bounds bind).
             ub = np.clip(u, self.lower / s, self.upper / s)
             res = solve_qp(
-                np.eye(self.n), -ub, self.A * s[None, :], np.full(self.b.size, -np.inf), self.b, self.lower / s,
+                np.diag(w), -w * ub, self.A * s[None, :], np.full(self.b.size, -np.inf), self.b, self.lower / s,
                 self.upper / s,
             )  # fmt: skip
         if not res.success:

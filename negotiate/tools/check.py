@@ -255,15 +255,20 @@ def _option_problems(spec: FleetSpec) -> list[Problem]:
 
 
 def _schedule(spec: FleetSpec, agents: list[Any]) -> tuple[bool, str, Problem | None]:
-    """Whether the coupling polyhedron with first-come-first-served orders is non-empty (one LP)."""
-    from negotiate.resources.coupling import check_orders, fcfs_orders
+    """Whether the coupling polyhedron with the orders a run starts from is non-empty (one or two LPs): first
+    come, first served per resource, else one ranking of all agents
+    (:func:`~negotiate.resources.coupling.first_orders`)."""
+    from negotiate.resources.coupling import fcfs_orders, first_orders
 
     what = "a fleet whose agents' reachable sets admit a schedule with first-come-first-served orders"
     try:
-        check_orders(agents, spec.resources, fcfs_orders(agents, spec.resources))
+        orders = first_orders(agents, spec.resources)
     except ValueError as exc:  # DeadlockError and InfeasibleOrdersError are ValueErrors
         found = f"none: {exc}"
         return False, found, Problem(spec.source, "", None, what, found)
+    if orders != fcfs_orders(agents, spec.resources):
+        return True, ("a schedule exists with one first-come-first-served ranking of all agents (first come, "
+                      "first served on each resource alone admits none)"), None
     return True, "a schedule exists with first-come-first-served orders", None
 
 
