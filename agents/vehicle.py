@@ -14,8 +14,10 @@ discretised by the trapezoidal rule on each stage (``ds_i = s_{i+1} - s_i``)::
     e_{i+1} - e_i = ds_i (a_i - C_rr g - (rho C_dA / m) (e_i + e_{i+1}) / 2).
 
 Time follows from the average speed of a stage, ``t_{i+1} - t_i = 2 ds_i / (v_i + v_{i+1})``, which is exact
-for constant acceleration. Speeds stay within ``[min_speed, speed_limit]`` with ``min_speed > 0``, so every
-stage time is finite (the vehicle never stands still on the route). The cost, in J, is
+for constant acceleration; the node times ``t_1 .. t_N`` are variables tied by these rows (a sparse clock:
+written as running sums instead, every time would depend on every speed before it and building the
+derivatives would grow with the square of the stages). Speeds stay within ``[min_speed, speed_limit]``
+with ``min_speed > 0``, so every stage time is finite (the vehicle never stands still on the route). The cost, in J, is
 
     sum_i m ds_i pos(a_i) / efficiency                              traction energy
   + comfort_weight * sum_i ((e_{i+1} - e_i) / ds_i)^2 dt_i          time integral of (dv/dt)^2
@@ -126,16 +128,18 @@ class VehicleModel:
 
         e = ca.SX.sym("e", N)
         a = ca.SX.sym("a", N)
-        self.x = ca.vertcat(e, a)
+        tt = ca.SX.sym("t", N)
+        self.x = ca.vertcat(e, a, tt)
         e0 = 0.5 * prm.initial_speed**2
         E = [ca.SX(e0)] + [e[i] for i in range(N)]
         v = [ca.sqrt(2 * Ei) for Ei in E]
         dyn = [E[i + 1] - E[i] - ds[i] * (a[i] - self.roll - self.aero * 0.5 * (E[i] + E[i + 1]))
                for i in range(N)]
         dt = [2 * ds[i] / (v[i] + v[i + 1]) for i in range(N)]
-        t = [ca.SX(prm.departure)]
-        for i in range(N):
-            t.append(t[-1] + dt[i])
+        # The clock is a state with one row per stage (sparse), not a running sum of every stage time: the
+        # derivatives of a running sum are dense in the stages, which made building long routes quadratic.
+        t = [ca.SX(prm.departure)] + [tt[i] for i in range(N)]
+        clock = [t[i + 1] - t[i] - dt[i] for i in range(N)]
         self.t_nodes = ca.vertcat(*t)
         self.arrival = t[-1]
 
@@ -147,10 +151,10 @@ class VehicleModel:
         self.times = ca.Function("times", [self.x], [self.t_nodes])
 
         # Base constraints: dynamics (== 0) and the arrival deadline.
-        self.g_base = ca.vertcat(*dyn, self.arrival)
-        self.lbg_base = np.r_[np.zeros(N), -np.inf]
-        self.ubg_base = np.r_[np.zeros(N), prm.latest_arrival]
-        self.g_base_names = [f"dynamics[{i}]" for i in range(N)] + ["arrival"]
+        self.g_base = ca.vertcat(*dyn, *clock, self.arrival)
+        self.lbg_base = np.r_[np.zeros(2 * N), -np.inf]
+        self.ubg_base = np.r_[np.zeros(2 * N), prm.latest_arrival]
+        self.g_base_names = [f"dynamics[{i}]" for i in range(N)] + [f"clock[{i}]" for i in range(N)] + ["arrival"]
 
         # Bounds: speed band per node (zone limits on nodes the vehicle occupies the zone), force limits.
         vmax = np.full(N + 1, prm.speed_limit)
@@ -159,13 +163,16 @@ class VehicleModel:
                 on = (s >= z.entry - 1e-9) & (s <= z.exit + prm.length + 1e-9)
                 vmax[on] = np.minimum(vmax[on], z.speed_limit)
         self.v_max = vmax
-        self.lbx = np.r_[np.full(N, 0.5 * prm.min_speed**2), np.full(N, -prm.max_brake)]
-        self.ubx = np.r_[0.5 * vmax[1:] ** 2, np.full(N, prm.max_accel)]
+        self.lbx = np.r_[np.full(N, 0.5 * prm.min_speed**2), np.full(N, -prm.max_brake), np.full(N, -np.inf)]
+        self.ubx = np.r_[0.5 * vmax[1:] ** 2, np.full(N, prm.max_accel), np.full(N, np.inf)]
         span = max(prm.desired_arrival - prm.departure, prm.route_length / prm.speed_limit)
         v_guess = float(np.clip(prm.route_length / span, prm.min_speed, vmax.min()))
         e_guess = 0.5 * v_guess**2
-        self.x0 = np.r_[np.full(N, e_guess), np.full(N, self.roll + self.aero * e_guess)]
-        self.x_names = [f"e[{i + 1}]" for i in range(N)] + [f"a[{i}]" for i in range(N)]
+        v0 = np.r_[prm.initial_speed, np.full(N, v_guess)]
+        self.x0 = np.r_[np.full(N, e_guess), np.full(N, self.roll + self.aero * e_guess),
+                        prm.departure + np.cumsum(2 * ds / (v0[:-1] + v0[1:]))]  # the clock of that guess
+        self.x_names = ([f"e[{i + 1}]" for i in range(N)] + [f"a[{i}]" for i in range(N)]
+                        + [f"t[{i + 1}]" for i in range(N)])
 
         # Zone times as functions of x.
         zone_t = []
@@ -219,7 +226,7 @@ class VehicleModel:
 
     def fastest_arrival(self) -> float:
         """Earliest possible arrival time at the route end, in s (auxiliary solve)."""
-        obj = self.arrival + 1e-4 * ca.sumsqr(self.x[self.n_stages:])
+        obj = self.arrival + 1e-4 * ca.sumsqr(self.x[self.n_stages: 2 * self.n_stages])
         res = solve_aux("fastest", self._cache, self.x, obj, self.g_base, self.lbx, self.ubx, self.lbg_base,
                         self.ubg_base, self.x0)
         if not res.success:
@@ -323,9 +330,9 @@ class VehicleModel:
     def trajectory(self, result: Any) -> Mapping[str, np.ndarray]:
         """Node time series of a solve: time, position, speed, force (zero-order hold per stage), energy."""
         N = self.n_stages
-        x = np.asarray(result.x, dtype=float).ravel()[: 2 * N]  # without the slot slacks
+        x = np.asarray(result.x, dtype=float).ravel()[: 3 * N]  # without the slot slacks
         e = np.r_[0.5 * self.prm.initial_speed**2, x[:N]]
-        a = x[N:]
+        a = x[N: 2 * N]
         force = self.prm.total_mass * np.r_[a, a[-1]]
         return {
             "time_s": np.asarray(self.times(x)).ravel(),

@@ -5,8 +5,8 @@ Cases (every number invented):
 
 * ``crossing-N-sS``: ``negotiate generate --kind crossing --agents N --seed S`` (cars and heavy vehicles
   through the four quadrants of a crossing, 2-3 adjacent conflict zones each);
-* ``bridge-8-stagesK``: ``negotiate generate --kind bridge --agents 8`` with every truck discretised in K
-  stages (long horizons).
+* ``quarry-stagesK``: ``examples/quarry_bridge.toml`` (8 haul trucks, contended bridge) with every truck
+  discretised in K stages (long horizons).
 
 For each case and method: the build time per agent (its NLP, the free solve, the kinematic window), the
 coordination's status, rounds, agent solves and wall time (one process, no workers), and the centralized IPOPT
@@ -25,14 +25,17 @@ import argparse
 import dataclasses
 import time
 import tomllib
+from pathlib import Path
 
 from negotiate.coordination.centralized import solve_centralized
 from negotiate.coordination.engine import coordinate
 from negotiate.fleet.build import build_agents
-from negotiate.fleet.parse import parse_fleet
+from negotiate.fleet.parse import load_fleet, parse_fleet
 from negotiate.fleet.spec import FleetSpec
 from negotiate.resources.coupling import build_feasible_set, first_orders
 from negotiate.tools.generate import generate_fleet
+
+ROOT = Path(__file__).resolve().parents[1]
 
 
 def with_stages(spec: FleetSpec, stages: int) -> FleetSpec:
@@ -68,9 +71,9 @@ def run_case(name: str, spec: FleetSpec, methods: list[str], max_rounds: int) ->
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    ap.add_argument("--sizes", type=int, nargs="+", default=[16, 64], help="crossing fleet sizes")
+    ap.add_argument("--sizes", type=int, nargs="*", default=[16, 64], help="crossing fleet sizes")
     ap.add_argument("--seeds", type=int, nargs="+", default=[0], help="generator seeds")
-    ap.add_argument("--stages", type=int, nargs="+", default=[40, 120], help="stages of the 8-truck fleets")
+    ap.add_argument("--stages", type=int, nargs="*", default=[40, 120], help="stages of the quarry trucks")
     ap.add_argument("--methods", nargs="+", default=["bundle", "newton", "gradient"])
     ap.add_argument("--max-rounds", type=int, default=60)
     args = ap.parse_args()
@@ -80,8 +83,8 @@ def main() -> None:
             spec = parse_fleet(tomllib.loads(generate_fleet("crossing", n, seed)))
             run_case(f"crossing-{n}-s{seed}", spec, args.methods, args.max_rounds)
     for stages in args.stages:
-        spec = with_stages(parse_fleet(tomllib.loads(generate_fleet("bridge", 8, 0))), stages)
-        run_case(f"bridge-8-stages{stages}", spec, args.methods, args.max_rounds)
+        spec = with_stages(load_fleet(ROOT / "examples" / "quarry_bridge.toml"), stages)
+        run_case(f"quarry-stages{stages}", spec, args.methods, args.max_rounds)
 
 
 if __name__ == "__main__":

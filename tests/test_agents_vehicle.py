@@ -83,7 +83,7 @@ class TestPhysics:
         aero = 0.5 * 1.2 * 6.0 * v**2
         dyn = ca.Function("dyn", [model.x], [model.g_base[: model.n_stages]])
         N = model.n_stages
-        x = np.r_[np.full(N, 0.5 * v**2), np.zeros(N)]  # constant speed, no drive force
+        x = np.r_[np.full(N, 0.5 * v**2), np.zeros(N), np.zeros(N)]  # constant speed, no drive force (clock unused)
         residual = np.asarray(dyn(x)).ravel()
         # With a = 0 the residual of stage i is ds_i * (C_rr g + rho C_dA e / m): resistance force per mass.
         force = m * residual / model.ds
@@ -95,7 +95,7 @@ class TestPhysics:
         """The state e is kinetic energy per mass: m e = m v^2 / 2 for the speeds reported."""
         res = truck.problem.solve(truck.free_optimum)
         tr = truck.trajectory(res)
-        N = tr["time_s"].size - 1  # stages; x = (e[1..N], a[0..N-1], slot slacks)
+        N = tr["time_s"].size - 1  # stages; x = (e[1..N], a[0..N-1], t[1..N], slot slacks)
         m = VehicleParams().total_mass
         ke_state = m * np.r_[0.5 * VehicleParams().initial_speed ** 2, res.x[:N]]
         np.testing.assert_allclose(ke_state, 0.5 * m * tr["speed_m_per_s"] ** 2, rtol=1e-12)
@@ -108,7 +108,7 @@ class TestPhysics:
         assert res.success
         N, m, k, r = model.n_stages, prm.total_mass, model.aero, model.roll
         e = np.r_[0.5 * prm.initial_speed**2, res.x[:N]]
-        a = res.x[N:]
+        a = res.x[N: 2 * N]
         ds = model.ds
         work = np.sum(m * a * ds)  # traction (a > 0) plus braking (a < 0) work, J
         # Exact solution of the linear ODE de/ds = a - r - k e on each stage from the model's e_i
@@ -188,7 +188,7 @@ class TestWindow:
         model = VehicleModel(prm)
         lower = model.window()[0]
         i = vehicle_grid(prm)[1][0][mark]
-        obj = model.t_nodes[i] + 1e-8 * ca.sumsqr(model.x[model.n_stages:])
+        obj = model.t_nodes[i] + 1e-8 * ca.sumsqr(model.x[model.n_stages: 2 * model.n_stages])
         res = solve_aux("earliest", {}, model.x, obj, model.g_base, model.lbx, model.ubx, model.lbg_base,
                         model.ubg_base, model.x0)
         assert res.success, res.status
@@ -203,7 +203,7 @@ class TestWindow:
         model = VehicleModel(prm)
         lower, upper, A, b = model.window(margin=0.0)
         for sign in (1.0, -1.0):
-            obj = sign * model.arrival + 1e-6 * ca.sumsqr(model.x[model.n_stages:])
+            obj = sign * model.arrival + 1e-6 * ca.sumsqr(model.x[model.n_stages: 2 * model.n_stages])
             res = solve_aux("extreme", {}, model.x, obj, model.g_base, model.lbx, model.ubx, model.lbg_base,
                             model.ubg_base, model.x0)
             assert res.success, res.status
@@ -220,7 +220,7 @@ class TestWindow:
         res = truck.problem.solve(p)
         assert res.success, res.message
         i_en = vehicle_grid(VehicleParams())[1][0][0]
-        t_entry = float(model.times(res.x[: 2 * model.n_stages])[i_en])
+        t_entry = float(model.times(res.x[: 3 * model.n_stages])[i_en])
         miss = truck.slack(res)
         assert miss[0] == pytest.approx(t_entry - p[0], abs=1e-7)
         assert miss[0] > 10.0 - 1e-6
