@@ -24,7 +24,10 @@ from negotiate.coordination.engine import coordinate
 from negotiate.fleet.spec import CapacityResource, CoordinatorSettings
 
 # curvature a_i (cost per W^2), wanted draw c_i (W), window width (W): invented numbers of very different scale
-AGENTS = [(1e-6, 4.0e4, 1.0e5), (2e-1, 3.0e2, 1.0e3), (5e-5, 9.0e3, 2.0e4), (3e-3, 2.0e3, 5.0e3), (1e-8, 7.0e4, 2.0e5), (4e-2, 6.0e2, 2.0e3)]
+AGENTS = [
+    (1e-6, 4.0e4, 1.0e5), (2e-1, 3.0e2, 1.0e3), (5e-5, 9.0e3, 2.0e4),
+    (3e-3, 2.0e3, 5.0e3), (1e-8, 7.0e4, 2.0e5), (4e-2, 6.0e2, 2.0e3),
+]  # fmt: skip
 LIMIT = 1.0e5  # W; the draws add up to 121 900 W
 
 

@@ -28,8 +28,9 @@ When the nonsmooth guard flags an agent and its probes find several one-sided gr
 point, its gradient is not unique: the step is then a subgradient step on the local model
 ``sum_i w_i max_j g_ij . (p_i - x_i)`` (a proximal QP over the feasible set, so the direction is the
 constrained steepest descent over the generalised gradient) with a diminishing length ``alpha_k = alpha_0 /
-(1 + k)`` and no line search (a subgradient step need not descend); the best point seen is kept as the
-incumbent; in that step the measure is the decrease its local model promises for a step of unit length.
+(1 + k)`` and no line search (a subgradient step need not descend), started from the best point seen (a
+nonmonotone run may stand above it), which is kept as the incumbent; in that step the measure is the decrease
+its local model promises for a step of unit length.
 
 Stopping measure: the first-order criticality measure of Conn, Gould, Sartenaer & Toint (1993, "Global
 convergence of a class of trust region algorithms for optimization using inexact projections on convex
@@ -52,6 +53,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
+from scipy.optimize import linprog
 
 from negotiate.coordination.methods.base import AgentReport, Evaluation, Method, Proposal, option, register_method
 from negotiate.core.qp import solve_qp
@@ -165,6 +167,23 @@ class ProjectedGradient(Method):
         Pn = self.feasible.project(P - alpha * self.s**2 * g)
         return Pn, float(g @ (P - Pn))
 
+    def criticality(self, g: np.ndarray) -> float:
+        """``chi = max {-g_u . d : u_x + d feasible, |d| <= 1}`` in cost units (see the module docstring): the
+        decrease the linear model promises for a move of at most one window width in every parameter."""
+        assert self.x is not None
+        fs, s, P = self.feasible, self.s, self.x.P
+        gu = g * s
+        lo = np.minimum(np.maximum((fs.lower - P) / s, -1.0), 0.0)
+        hi = np.maximum(np.minimum((fs.upper - P) / s, 1.0), 0.0)
+        A = fs.A * s[None, :]
+        b = np.maximum(fs.b - fs.A @ P, 0.0)  # the point itself stays feasible (rounding)
+        res = linprog(gu, A_ub=A if A.shape[0] else None, b_ub=b if A.shape[0] else None,
+                      bounds=np.column_stack([lo, hi]), method="highs")  # fmt: skip
+        if res.status != 0 or res.x is None:
+            _P, pred = self.trial(g, 1.0 / max(float(np.max(np.abs(gu))), 1e-300))
+            return pred
+        return max(-float(res.fun), 0.0)
+
     def metric_step(self, g: np.ndarray) -> np.ndarray | None:
         """The scaled step ``d = argmin g_u.d + d.diag(D).d / 2`` over the feasible set (scaled units)."""
         assert self.x is not None
@@ -220,11 +239,10 @@ class ProjectedGradient(Method):
             Pn, pred = self.trial(g, self.alpha)
             d = (Pn - self.x.P) / self.s
         slope = float((g * self.s) @ d)
-        # The decrease the quadratic model with the observed curvature promises for the full step; a line
-        # search that shortens the step does not shrink it.
-        measure = max(-(slope + 0.5 * float(d @ (self.D * d))), 0.0) / scale
+        # Model-free: a metric grown large across a kink would make a model's predicted decrease vanish there.
+        measure = self.criticality(g) / scale
         if self.tolerance_reached(measure):
-            return Proposal(None, measure, True, "predicted decrease below tolerance")
+            return Proposal(None, measure, True, "criticality measure below tolerance")
         self.step_d = d
         self.t = 1.0
         self.pending = ("spg", g, -slope)
