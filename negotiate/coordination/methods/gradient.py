@@ -234,15 +234,15 @@ class ProjectedGradient(Method):
             self.pending = ("sub", g, pred)
             self.n_sub += 1
             return Proposal(Pn, measure, False, (note + " subgradient step").strip())
-        d = self.metric_step(g)
-        if d is None:
-            Pn, pred = self.trial(g, self.alpha)
-            d = (Pn - self.x.P) / self.s
-        slope = float((g * self.s) @ d)
         # Model-free: a metric grown large across a kink would make a model's predicted decrease vanish there.
         measure = self.criticality(g) / scale
         if self.tolerance_reached(measure):
             return Proposal(None, measure, True, "criticality measure below tolerance")
+        d = self.metric_step(g)
+        if d is None:
+            Pn, _pred = self.trial(g, self.alpha)
+            d = (Pn - self.x.P) / self.s
+        slope = float((g * self.s) @ d)
         self.step_d = d
         self.t = 1.0
         self.pending = ("spg", g, -slope)
