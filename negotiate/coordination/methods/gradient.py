@@ -1,22 +1,48 @@
-"""Projected gradient with Armijo backtracking and Barzilai-Borwein steps; subgradient fallback.
+"""Scaled spectral projected gradient with a nonmonotone line search; subgradient fallback.
 
 Works in scaled coordinates ``u = P / scale`` (scale: width of each parameter's reachable box) so that
-seconds and watts are comparable. A step is ``u+ = Proj(u - alpha * g_u)`` with ``g_u = scale * dF/dP``;
-it is accepted when the true total decreases by at least ``armijo * g . (P - P+)`` (Armijo along the
-projection arc, Bertsekas 1976), otherwise ``alpha`` is halved. After an accepted step ``alpha`` is the
-Barzilai-Borwein length ``s.s / s.y`` (Barzilai & Borwein 1988), clipped to a safe range.
+seconds and watts are comparable. The total ``F(P) = sum_i w_i V_i(p_i)`` is separable by agent (only the
+coupling polyhedron ties the agents together), so its Hessian is block diagonal. The step uses one observed
+curvature per agent, ``D_i = s_i . y_i / s_i . s_i`` (the Barzilai-Borwein quotient of that agent's block:
+``s_i`` its last accepted scaled step, ``y_i`` the change of its scaled gradient; Barzilai & Borwein 1988,
+"Two-point step size gradient methods", IMA J. Numer. Anal. 8:141-148), kept where it is positive and
+clipped to a safe range. A single step length for all agents, as plain Barzilai-Borwein gives, is set by
+the stiffest agent and leaves agents of small curvature or small gradient almost where they are; one
+length per agent does not. The direction is the scaled projected gradient step (a QP posed in the step)::
+
+    d = argmin_{u_x + d feasible}  g_u . d + 1/2 d^T diag(D) d,        g_u = scale * dF/dP,
+
+and the trial ``u_x + t d`` (``t = 1`` first; feasible for every ``0 < t <= 1``) is accepted by the
+nonmonotone test of Grippo, Lampariello & Lucidi (1986, "A nonmonotone line search technique for Newton's
+method", SIAM J. Numer. Anal. 23(4):707-716) ::
+
+    F(trial) <= max(F of the last ``memory`` accepted points) + armijo * t * g_u . d,
+
+otherwise ``t`` shrinks by safeguarded quadratic interpolation. This is the spectral projected gradient
+method of Birgin, Martinez & Raydan (2000, "Nonmonotone spectral projected gradient methods on convex
+sets", SIAM J. Optim. 10(4):1196-1211, algorithm SPG2) with a diagonal scaling as in the scaled gradient
+projection method of Bonettini, Zanella & Zanni (2009, Inverse Problems 25:015002). The best point seen is
+the incumbent (a nonmonotone run may accept a point above it).
 
 When the nonsmooth guard flags an agent and its probes find several one-sided gradients at the current
-point, its gradient is not unique: the step is then a
-subgradient step on the local model ``sum_i w_i max_j g_ij . (p_i - x_i)`` (a proximal QP over the
-feasible set, so the direction is the constrained steepest descent over the generalised gradient) with a
-diminishing length ``alpha_k = alpha_0 / (1 + k)`` and no line search (a subgradient step need not
-descend); the best point seen is kept as the incumbent. Stopping measure: the first-order predicted
-decrease ``g . (P - Proj(P - alpha scale^2 g))`` of a step of unit length in scaled units
-(``alpha = 1 / max|scale g|``; not the backtracked step), relative to ``max(1, |total|)``; in a
-subgradient step, the decrease its local model promises for a step of that length. Because the step is
-normalised by the largest entry, parameters with much smaller gradients move little in it: the test can
-stop early when one agent's gradient dominates (the bundle and Newton methods do not share this).
+point, its gradient is not unique: the step is then a subgradient step on the local model
+``sum_i w_i max_j g_ij . (p_i - x_i)`` (a proximal QP over the feasible set, so the direction is the
+constrained steepest descent over the generalised gradient) with a diminishing length ``alpha_k = alpha_0 /
+(1 + k)`` and no line search (a subgradient step need not descend), started from the best point seen (a
+nonmonotone run may stand above it), which is kept as the incumbent; in that step the measure is the decrease
+its local model promises for a step of unit length.
+
+Stopping measure: the first-order criticality measure of Conn, Gould, Sartenaer & Toint (1993, "Global
+convergence of a class of trust region algorithms for optimization using inexact projections on convex
+constraints", SIAM J. Optim. 3(1):164-221; Conn, Gould & Toint 2000, *Trust-Region Methods*, SIAM,
+section 12.1) ::
+
+    chi(P) = max { -g_u . d :  u_x + d feasible,  |d_j| <= 1 for every j }
+
+(a linear program), the decrease the linear model promises for a move of at most one window width in every
+parameter, relative to ``max(1, |total|)``. It vanishes exactly at a first-order critical point, every
+parameter counts in it by its own gradient (none is normalised by the largest one), and it does not shrink
+because a line search shortened the step.
 
 Options: :class:`GradientOptions` (``[coordinator.options]``; the table is in docs/methods.md).
 """
@@ -26,6 +52,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.sparse as sp
+from scipy.optimize import linprog
 
 from negotiate.coordination.methods.base import AgentReport, Evaluation, Method, Proposal, option, register_method
 from negotiate.core.qp import solve_qp
@@ -35,9 +63,14 @@ from negotiate.core.qp import solve_qp
 class GradientOptions:
     """Options of the projected gradient and projected Newton methods."""
 
-    armijo: float = option(1e-4, "sufficient-decrease constant of the backtracking (Armijo) test")
-    first_step: float = option(0.05, "length of the first step, in scaled units")
+    armijo: float = option(1e-4, "sufficient-decrease constant of the (nonmonotone) line search")
+    first_step: float = option(0.05, "length of each agent's first step, in scaled units")
     guard_fallback: bool = option(True, "take subgradient steps when the guard flags agents")
+    memory: int = option(10, "accepted totals the nonmonotone line search compares with (1: monotone Armijo)")
+
+
+CURVATURE_RANGE = 1e10
+"""Each agent's observed curvature is kept within this factor of its first-step metric, both ways."""
 
 
 @register_method
@@ -47,15 +80,34 @@ class ProjectedGradient(Method):
 
     def start(self, first: Evaluation) -> None:
         self.s = self.feasible.scale
+        self.lay = self.feasible.layout
         self.armijo = self.options["armijo"]
         self.first_step = self.options["first_step"]
         self.fallback = self.options["guard_fallback"]
+        self.memory = max(1, int(self.options["memory"]))
         self.x: Evaluation | None = first if first.ok else None
         self.incumbent = self.x
         self.alpha: float | None = None
         self.pending: tuple[str, np.ndarray, float] | None = None
         self.n_sub = 0
         self.alpha_sub0: float | None = None
+        self.recent: list[float] = []  # totals of the last accepted points (the nonmonotone reference)
+        self.D = np.ones(self.lay.n)  # per-entry metric: each agent's observed curvature, cost per scaled unit^2
+        self.D_ref = np.ones(self.lay.n)
+        self.t = 1.0
+        self.step_d = np.zeros(self.lay.n)
+        self.last_measure = float("inf")
+        if self.x is not None:
+            self.recent = [self.x.total]
+            gu = np.abs(self.x.gradient * self.s)
+            top = float(np.max(gu, initial=0.0))
+            for i in range(len(self.lay.names)):
+                sl = self.lay.slice(i)
+                # A first step of first_step window widths for each agent's largest entry (an agent with no
+                # gradient gets the fleet's largest, so that it stays put until its gradient says otherwise).
+                gi = float(np.max(gu[sl], initial=0.0))
+                self.D[sl] = (gi if gi > 0 else top if top > 0 else 1.0) / self.first_step
+            self.D_ref = self.D.copy()
 
     # -- helpers -----------------------------------------------------------------------------------
     def direction(self, ev: Evaluation) -> tuple[np.ndarray, bool]:
@@ -115,9 +167,58 @@ class ProjectedGradient(Method):
         Pn = self.feasible.project(P - alpha * self.s**2 * g)
         return Pn, float(g @ (P - Pn))
 
+    def criticality(self, g: np.ndarray) -> float:
+        """``chi = max {-g_u . d : u_x + d feasible, |d| <= 1}`` in cost units (see the module docstring): the
+        decrease the linear model promises for a move of at most one window width in every parameter."""
+        assert self.x is not None
+        fs, s, P = self.feasible, self.s, self.x.P
+        gu = g * s
+        lo = np.minimum(np.maximum((fs.lower - P) / s, -1.0), 0.0)
+        hi = np.maximum(np.minimum((fs.upper - P) / s, 1.0), 0.0)
+        A = fs.A * s[None, :]
+        b = np.maximum(fs.b - fs.A @ P, 0.0)  # the point itself stays feasible (rounding)
+        res = linprog(gu, A_ub=A if A.shape[0] else None, b_ub=b if A.shape[0] else None,
+                      bounds=np.column_stack([lo, hi]), method="highs")  # fmt: skip
+        if res.status != 0 or res.x is None:
+            _P, pred = self.trial(g, 1.0 / max(float(np.max(np.abs(gu))), 1e-300))
+            return pred
+        return max(-float(res.fun), 0.0)
+
+    def metric_step(self, g: np.ndarray) -> np.ndarray | None:
+        """The scaled step ``d = argmin g_u.d + d.diag(D).d / 2`` over the feasible set (scaled units)."""
+        assert self.x is not None
+        fs, s, P = self.feasible, self.s, self.x.P
+        lo, hi = (fs.lower - P) / s, (fs.upper - P) / s
+        lo, hi = np.minimum(lo, 0.0), np.maximum(hi, 0.0)
+        res = solve_qp(sp.diags_array(self.D), g * s, fs.A * s[None, :], np.full(fs.b.size, -np.inf),
+                       fs.b - fs.A @ P, lo, hi)  # fmt: skip
+        if not res.success:
+            return None
+        return (np.clip(P + res.z * s, fs.lower, fs.upper) - P) / s
+
+    def update_curvature(self, old: Evaluation, new: Evaluation) -> None:
+        """Each agent's Barzilai-Borwein quotient ``s_i.y_i / s_i.s_i`` from an accepted step (kept where positive)."""
+        su = (new.P - old.P) / self.s
+        yu = (new.gradient - old.gradient) * self.s
+        for i in range(len(self.lay.names)):
+            sl = self.lay.slice(i)
+            ss = float(su[sl] @ su[sl])
+            if ss <= 1e-24:
+                continue  # the agent did not move: nothing observed
+            q = float(su[sl] @ yu[sl]) / ss
+            if q > 0:
+                ref = self.D_ref[sl]
+                self.D[sl] = np.clip(q, ref / CURVATURE_RANGE, ref * CURVATURE_RANGE)
+
     def step_from_current(self, note: str = "") -> Proposal:
         assert self.x is not None
         g, sub = self.direction(self.x)
+        if sub and self.incumbent is not None and self.incumbent.total < self.x.total:
+            # A nonmonotone run may stand above its best point; the subgradient steps (no line search) start
+            # from the best point instead, and the nonmonotone memory starts afresh there.
+            self.x = self.incumbent
+            self.recent = [self.x.total]
+            g, sub = self.direction(self.x)
         gu = np.max(np.abs(g * self.s))
         if self.alpha is None:
             self.alpha = self.first_step / gu if gu > 0 else self.first_step  # (g = 0: any step stays put)
@@ -133,16 +234,20 @@ class ProjectedGradient(Method):
             self.pending = ("sub", g, pred)
             self.n_sub += 1
             return Proposal(Pn, measure, False, (note + " subgradient step").strip())
-        # The stopping measure uses a step of unit length in scaled units along the largest gradient entry
-        # (up to one window width, so the projection QP stays well scaled), so that it does not shrink just
-        # because the line search shortened the step (it would "converge" at a kink it cannot resolve).
-        _P_ref, pred_ref = self.trial(g, 1.0 / gu if gu > 0 else 1.0)
-        measure = pred_ref / scale
+        # Model-free: a metric grown large across a kink would make a model's predicted decrease vanish there.
+        measure = self.criticality(g) / scale
         if self.tolerance_reached(measure):
-            return Proposal(None, measure, True, "predicted decrease below tolerance")
-        Pn, pred = self.trial(g, self.alpha)
-        self.pending = ("armijo", g, pred)
-        return Proposal(Pn, measure, False, note)
+            return Proposal(None, measure, True, "criticality measure below tolerance")
+        d = self.metric_step(g)
+        if d is None:
+            Pn, _pred = self.trial(g, self.alpha)
+            d = (Pn - self.x.P) / self.s
+        slope = float((g * self.s) @ d)
+        self.step_d = d
+        self.t = 1.0
+        self.pending = ("spg", g, -slope)
+        self.last_measure = measure
+        return Proposal(self.x.P + d * self.s, measure, False, note)
 
     # -- protocol ----------------------------------------------------------------------------------
     def propose(self, latest: Evaluation) -> Proposal:
@@ -151,26 +256,35 @@ class ProjectedGradient(Method):
         if self.pending is None:
             return self.step_from_current()
         kind, g_old, pred = self.pending
-        self.pending = None
         if kind == "sub":
+            self.pending = None
             if latest.ok:
                 self.x = latest
+                self.recent = [*self.recent, latest.total][-self.memory :]
                 if latest.total < self.incumbent.total:  # type: ignore[union-attr]
                     self.incumbent = latest
             return self.step_from_current()
-        assert self.alpha is not None
-        if latest.ok and latest.total <= self.x.total - self.armijo * pred:
-            s = (latest.P - self.x.P) / self.s
-            g_new, _ = self.direction(latest)
-            y = (g_new - g_old) * self.s
-            sy = float(s @ y)
-            bb = float(s @ s) / sy if sy > 0 else 2.0 * self.alpha
-            self.alpha = float(np.clip(bb, 1e-3 * self.alpha, 1e3 * self.alpha))
+        reference = max([*self.recent, self.x.total])
+        if latest.ok and latest.total <= reference - self.armijo * self.t * pred:
+            self.pending = None
+            self.update_curvature(self.x, latest)
             self.x = latest
-            self.incumbent = latest
+            self.recent = [*self.recent, latest.total][-self.memory :]
+            if latest.total < self.incumbent.total:  # type: ignore[union-attr]
+                self.incumbent = latest
             return self.step_from_current("accepted")
-        self.alpha *= 0.5
-        reason = "agent failed, step halved" if not latest.ok else "backtracking"
-        if self.alpha < 1e-14 * max(1.0, self.alpha_sub0 or 1.0):
+        # Backtrack along the segment: the minimiser of the quadratic through F(x), the slope and F(trial),
+        # kept within [0.1, 0.5] of the current t (Birgin, Martinez & Raydan 2000, SPG2); halving when an
+        # agent failed there.
+        t = self.t
+        if latest.ok:
+            excess = latest.total - self.x.total + t * pred
+            t_new = 0.5 * t * t * pred / excess if excess > 0 else 0.5 * t
+            self.t = float(np.clip(t_new, 0.1 * t, 0.5 * t))
+        else:
+            self.t = 0.5 * t
+        reason = "agent failed, step shortened" if not latest.ok else "backtracking"
+        if self.t < 1e-10:
+            self.pending = None
             return Proposal(None, pred / max(1.0, abs(self.x.total)), False, "line search failed: step too small")
-        return self.step_from_current(reason)
+        return Proposal(self.x.P + self.t * self.step_d * self.s, self.last_measure, False, reason)
