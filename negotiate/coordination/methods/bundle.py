@@ -110,10 +110,14 @@ class ProximalBundle(Method):
             sl = self.lay.slice(i)
             u, g = rep.p / self.s[sl], ev.weights[i] * rep.gradient * self.s[sl]
             prev, self.last[i] = self.last[i], (u, g)
-            if self.use_hessian and rep.hessian is not None and not rep.flagged:
+            # The value Hessian holds wherever the gradient is unique: also for an agent flagged only because
+            # its active set changed since its last solve (the guard found no second one-sided gradient). Its
+            # eigenvalues are floored relative to the largest (and by 1e-8 of the first step's scale, not more:
+            # a floor set by the first gradient's size can exceed the true curvature and make steps crawl).
+            if self.use_hessian and rep.hessian is not None and len(rep.gradients) == 1:
                 Hu = ev.weights[i] * rep.hessian * np.outer(self.s[sl], self.s[sl])
                 lam, Q = np.linalg.eigh(0.5 * (Hu + Hu.T))
-                floor = max(1e-6 * float(np.max(np.abs(lam), initial=0.0)), 1e-3 * self.mu)
+                floor = max(1e-6 * float(np.max(np.abs(lam), initial=0.0)), 1e-8 * self.mu)
                 self.M[i] = (Q * np.clip(lam, floor, 1e8 * self.mu)) @ Q.T
                 continue
             if prev is None:
