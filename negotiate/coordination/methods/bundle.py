@@ -23,11 +23,15 @@ guard's one-sided gradients enter as extra cuts at the same point.
 
 The proximal term is a variable metric, one block per agent: ``kappa/2 sum_i (u_i - u_ci)^T M_i (u_i - u_ci)``,
 in the manner of the variable-metric bundle methods of Lemarechal & Sagastizabal (1997, Math. Programming
-76:393-410). Where agent i certifies ``smooth``, ``M_i`` is its value Hessian from the KKT sensitivity
-system, made positive definite (eigenvalues raised to a floor); elsewhere it is a damped BFGS estimate
-updated from successive gradients of that agent (Powell's damping keeps it positive definite where ``V_i``
-is not convex). The cutting planes still carry the kinks; the metric supplies the curvature that plain cuts
-need many rounds to learn on smooth pieces.
+76:393-410). Where agent i's gradient is unique (it certifies ``smooth``, or the guard flagged it only for a
+changed active set and found no second one-sided gradient), ``M_i`` is its value Hessian from the KKT
+sensitivity system, made positive definite (eigenvalues raised to 1e-6 of the largest, and to 1e-8 of the
+first step's scale: a floor set by the first gradient's size can exceed the true curvature and make the
+steps crawl); elsewhere it is a damped BFGS estimate updated from successive gradients of that agent
+(Powell's damping keeps it positive definite where ``V_i`` is not convex). A trial where an agent failed
+(or missed what it can reach) multiplies that agent's ``M_i`` by 4 until it solves again: its step was too
+long, whatever the others'. The cutting planes still carry the kinks; the metric supplies the curvature that
+plain cuts need many rounds to learn on smooth pieces.
 
 Serious step when the trial total is at most ``total(c) - m * delta`` (``delta`` = predicted decrease, the
 centre's total minus the model's value at the trial), null step otherwise. The proximity factor ``kappa``
@@ -65,7 +69,7 @@ class BundleOptions:
     max_cuts: int = option(25, "most cuts kept per agent")
     keep_cuts: int = option(6, "beyond this many (at least 2 n_i + 2), an agent keeps only its active and newest cuts")
     first_step: float = option(0.1, "length of the first step, in scaled units")
-    hessian_metric: bool = option(True, "use smooth agents' value Hessians as their proximal metric")
+    hessian_metric: bool = option(True, "use agents' value Hessians as their metric where the gradient is unique")
 
 
 @register_method
@@ -110,10 +114,7 @@ class ProximalBundle(Method):
             sl = self.lay.slice(i)
             u, g = rep.p / self.s[sl], ev.weights[i] * rep.gradient * self.s[sl]
             prev, self.last[i] = self.last[i], (u, g)
-            # The value Hessian holds wherever the gradient is unique: also for an agent flagged only because
-            # its active set changed since its last solve (the guard found no second one-sided gradient). Its
-            # eigenvalues are floored relative to the largest (and by 1e-8 of the first step's scale, not more:
-            # a floor set by the first gradient's size can exceed the true curvature and make steps crawl).
+            # the value Hessian wherever the gradient is unique (module docstring)
             if self.use_hessian and rep.hessian is not None and len(rep.gradients) == 1:
                 Hu = ev.weights[i] * rep.hessian * np.outer(self.s[sl], self.s[sl])
                 lam, Q = np.linalg.eigh(0.5 * (Hu + Hu.T))
@@ -245,7 +246,12 @@ class ProximalBundle(Method):
                 self.reset_since_serious = False
                 note = "serious"
             else:
-                if not latest.ok or latest.total > c.total:
+                if not latest.ok:
+                    # the agents that failed at the trial were asked to go too far: stiffen their metric
+                    for i, rep in enumerate(latest.reports):
+                        if not rep.ok:
+                            self.M[i] = 4.0 * self.M[i]
+                elif latest.total > c.total:
                     self.kappa *= 2.0
                 elif c.total - self.model_at(latest.P) >= self.m_tilde * self.delta:
                     # The new cuts, downshifted around the centre, leave the model at the trial nearly where it
