@@ -55,7 +55,8 @@ import itertools
 import math
 import os
 import sys
-from collections.abc import Callable, Iterator, Sequence
+import time
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -64,7 +65,7 @@ from scipy.optimize import Bounds, LinearConstraint, milp
 from scipy.sparse import coo_array
 
 from negotiate.coordination.methods.base import Evaluation
-from negotiate.coordination.orders import Incumbent, OrderTrial, order_key
+from negotiate.coordination.orders import Incumbent, OrderTrial, order_key, order_options
 from negotiate.core.agent import AgentModel
 from negotiate.errors import DeadlockError, InfeasibleOrdersError
 from negotiate.fleet.spec import Resource
@@ -80,12 +81,15 @@ __all__ = [
     "search_master",
 ]
 
-MASTER_BUDGET = 30
-"""Largest number of coordinations (order trials handed to the coordinator) the master loop spends."""
-SWAP_PASSES = 3
-"""Largest number of passes of adjacent swaps over the master's best order (as the ``swap`` rule's default)."""
-GAP_TOLERANCE = 1e-4
-"""The loop stops when best total - bound <= GAP_TOLERANCE * max(1, |best total|)."""
+_DEFAULTS = order_options("master", {})
+MASTER_BUDGET: int = _DEFAULTS["max_coordinations"]
+"""Default largest number of coordinations (order trials handed to the coordinator) the master loop spends
+(the option ``max_coordinations`` of :class:`~negotiate.coordination.orders.MasterOptions`)."""
+SWAP_PASSES: int = _DEFAULTS["swap_passes"]
+"""Default largest number of passes of adjacent swaps over the master's best order (option ``swap_passes``)."""
+GAP_TOLERANCE: float = _DEFAULTS["gap_tolerance"]
+"""Default tolerance: the loop stops when best total - bound <= GAP_TOLERANCE * max(1, |best total|)
+(option ``gap_tolerance``)."""
 CONVEXITY_RTOL = 1e-6
 """Relative slack of the convexity checks (the agents' solves are converged to about 1e-8; see the module
 docstring)."""
@@ -182,6 +186,11 @@ class OrderMaster:
         self.cuts: list[list[tuple[np.ndarray, float, np.ndarray]]] = [[] for _ in self.agents]
         self.floor = np.full(len(self.agents), -np.inf)
         self.nogoods: list[np.ndarray] = []
+        # The rows that never change (coupling, disjunctions, no cycle of three) are assembled once, on the
+        # first solve; a cut or a no-good adds its own row when it comes, so that a solve only stacks them.
+        self._static: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
+        self._added: list[tuple[np.ndarray, np.ndarray, float, float]] = []  # columns, values, lower, upper
+        self._seen: set[tuple[int, bytes, float, bytes]] = set()
 
     def _rows(self, res: Resource, order: Sequence[str]) -> list[_Row]:
         out = []
@@ -205,10 +214,17 @@ class OrderMaster:
         p, g = np.asarray(p, float).ravel(), np.asarray(gradient, float).ravel()
         if not (np.isfinite(value) and np.all(np.isfinite(p)) and np.all(np.isfinite(g))):
             return False
-        for q, v, h in self.cuts[i]:
-            if v == value and np.array_equal(q, p) and np.array_equal(h, g):
-                return False
+        key = (i, p.tobytes(), float(value), g.tobytes())
+        if key in self._seen:
+            return False
+        self._seen.add(key)
         self.cuts[i].append((p.copy(), float(value), g.copy()))
+        # theta_i - g.P_i >= V(p_k) - g.p_k, in the master's scaled parameters
+        sl = self.layout.slice(i)
+        cols = np.append(np.arange(sl.start, sl.stop), self.layout.n + i)
+        vals = np.append(-g * self.scale[sl], 1.0)
+        keep = vals != 0.0
+        self._added.append((cols[keep], vals[keep], float(value - g @ p), np.inf))
         return True
 
     def add_floor(self, i: int, value: float) -> None:
@@ -218,7 +234,11 @@ class OrderMaster:
 
     def exclude(self, y: np.ndarray) -> None:
         """A no-good cut: the binaries ``y`` (one order combination) are never proposed again."""
-        self.nogoods.append(np.round(np.asarray(y, float)).astype(int))
+        y0 = np.round(np.asarray(y, float)).astype(int)
+        self.nogoods.append(y0)
+        # sum_{y0=1} (1 - y) + sum_{y0=0} y >= 1
+        n, m, q = self.layout.n, len(self.agents), len(self.pairs)
+        self._added.append((n + m + np.arange(q), np.where(y0 > 0, -1.0, 1.0), 1.0 - float(y0.sum()), np.inf))
 
     def binaries(self, orders: dict[str, list[str]]) -> np.ndarray:
         """The binaries that spell ``orders``."""
@@ -241,11 +261,12 @@ class OrderMaster:
         return out
 
     # -- the MILP ---------------------------------------------------------------------------------------------
-    def solve(self, weights: np.ndarray, *, rel_gap: float = 1e-9, time_limit: float | None = None) -> MasterSolution:
-        """Solve the master for the agents' ``weights`` (dimensionless)."""
-        n, m, q = self.layout.n, len(self.agents), len(self.pairs)
+    def _static_rows(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """The rows that hold whatever the cuts (rows, columns, values, lower, upper), assembled once."""
+        if self._static is not None:
+            return self._static
+        n, m = self.layout.n, len(self.agents)
         s = self.scale
-        nv = n + m + q
         rows: list[int] = []
         cols: list[int] = []
         vals: list[float] = []
@@ -289,13 +310,25 @@ class OrderMaster:
                             entries[j] = entries.get(j, 0.0) - 1.0
                             const += 1.0
                     put(entries, -np.inf, 2.0 - const)
-        for i, cuts in enumerate(self.cuts):
-            sl = self.layout.slice(i)
-            idx = range(sl.start, sl.stop)
-            for pk, vk, gk in cuts:  # theta_i - g.P_i >= V(p_k) - g.p_k
-                put({**{j: -gj * s[j] for j, gj in zip(idx, gk, strict=True)}, n + i: 1.0}, vk - float(gk @ pk), np.inf)
-        for y0 in self.nogoods:  # sum_{y0=1} (1 - y) + sum_{y0=0} y >= 1
-            put({n + m + k: (-1.0 if y0[k] else 1.0) for k in range(q)}, 1.0 - float(y0.sum()), np.inf)
+        self._static = (
+            np.array(rows, dtype=np.int64), np.array(cols, dtype=np.int64), np.array(vals, dtype=float),
+            np.array(lo, dtype=float), np.array(hi, dtype=float),
+        )  # fmt: skip
+        return self._static
+
+    def solve(self, weights: np.ndarray, *, rel_gap: float = 1e-9, time_limit: float | None = None) -> MasterSolution:
+        """Solve the master for the agents' ``weights`` (dimensionless); ``time_limit`` is HiGHS's, s."""
+        n, m, q = self.layout.n, len(self.agents), len(self.pairs)
+        s = self.scale
+        nv = n + m + q
+        r0, c0, v0, lo0, hi0 = self._static_rows()
+        k0 = len(lo0)
+        sizes = np.array([len(c) for c, _, _, _ in self._added], dtype=np.int64)
+        rows = np.concatenate([r0, np.repeat(k0 + np.arange(len(self._added), dtype=np.int64), sizes)])
+        cols = np.concatenate([c0, *(c for c, _, _, _ in self._added)]) if self._added else c0
+        vals = np.concatenate([v0, *(v for _, v, _, _ in self._added)]) if self._added else v0
+        lo = np.concatenate([lo0, np.array([lb for _, _, lb, _ in self._added], dtype=float)])
+        hi = np.concatenate([hi0, np.array([ub for _, _, _, ub in self._added], dtype=float)])
 
         cost = np.zeros(nv)
         cost[n : n + m] = weights
@@ -306,9 +339,9 @@ class OrderMaster:
         if time_limit is not None:
             options["time_limit"] = time_limit
         constraints = []
-        if lo:
+        if len(lo):
             A = coo_array((vals, (rows, cols)), shape=(len(lo), nv)).tocsr()
-            constraints.append(LinearConstraint(A, np.array(lo), np.array(hi)))
+            constraints.append(LinearConstraint(A, lo, hi))
         with _quiet_stdout():
             res = milp(cost, integrality=integrality, bounds=Bounds(lb, ub), constraints=constraints, options=options)
         status = {0: "optimal", 1: "stopped", 2: "infeasible", 3: "unbounded"}.get(res.status, "failed")
@@ -395,10 +428,12 @@ def search_master(
     *,
     evaluations: list[Evaluation] | None = None,
     start: dict[str, list[str]] | None = None,
-    budget: int = MASTER_BUDGET,
-    tolerance: float = GAP_TOLERANCE,
+    options: Mapping[str, Any] | None = None,
+    budget: int | None = None,
+    tolerance: float | None = None,
     time_limit: float | None = None,
-    swap_passes: int = SWAP_PASSES,
+    swap_passes: int | None = None,
+    time_budget: float | None = None,
 ) -> tuple[object, dict[str, list[str]], list[OrderTrial]]:
     """Choose orders with the order master (see the module docstring).
 
@@ -414,15 +449,23 @@ def search_master(
         of them (without it, only the final evaluation of each coordination gives cuts).
     start : dict, optional
         The first orders (first-come-first-served when omitted).
-    budget : int
-        Largest number of coordinations.
-    tolerance : float
-        Relative gap at which the loop stops (relative to ``max(1, |best total|)``).
+    options : mapping, optional
+        The rule's options (:class:`~negotiate.coordination.orders.MasterOptions`: ``max_coordinations``,
+        ``gap_tolerance``, ``time_budget``, ``swap_passes``; defaults for those not given). The keyword
+        arguments below, when given, override them.
+    budget : int, optional
+        Largest number of coordinations (``max_coordinations``).
+    tolerance : float, optional
+        Relative gap at which the loop stops (relative to ``max(1, |best total|)``; ``gap_tolerance``).
     time_limit : float, optional
-        HiGHS's time limit per master solve, s.
-    swap_passes : int
+        HiGHS's time limit per master solve, s (also capped by what is left of ``time_budget``).
+    swap_passes : int, optional
         Largest number of passes of adjacent swaps over the best order after the loop (0: none); no pass is
         made when the loop ended with a certified gap within ``tolerance``.
+    time_budget : float, optional
+        Wall time of the whole search, s (0: none; ``time_budget``). No coordination is started after it (the
+        one under way finishes, bounded by the coordinator's ``max_rounds``); the best orders so far and
+        their schedule are returned, with the gap of the last bound the master computed.
 
     Returns
     -------
@@ -435,6 +478,14 @@ def search_master(
     DeadlockError, InfeasibleOrdersError
         When the first order admits no schedule.
     """
+    t0 = time.perf_counter()
+    opts = order_options("master", options or {})
+    budget = int(opts["max_coordinations"]) if budget is None else budget
+    tolerance = float(opts["gap_tolerance"]) if tolerance is None else tolerance
+    swap_passes = int(opts["swap_passes"]) if swap_passes is None else swap_passes
+    time_budget = float(opts["time_budget"]) if time_budget is None else time_budget
+    deadline = t0 + time_budget if time_budget > 0 else None
+    spent = f"the time budget of {time_budget:g} s is spent"
     master = OrderMaster(agents, resources)
     weights = np.array([a.weight for a in agents], dtype=float)
     convex = _Convexity([a.name for a in agents])
@@ -477,16 +528,33 @@ def search_master(
     tried = {order_key(orders)}
     coordinations = 1
     last = 0  # the trial whose bound the next master solve gives
+    known = -math.inf  # the best bound a master solve gave so far (every one is a bound: cuts only add rows)
+    known_reason = ""  # why that bound is not certified, besides convexity
     for _ in range(50 * max(1, budget)):  # no-good cuts may need several master solves per coordination
-        sol = master.solve(weights, rel_gap=min(1e-6, 0.1 * tolerance), time_limit=time_limit)
+        left = None if deadline is None else deadline - time.perf_counter()
+        if left is not None and left <= 0:
+            # no time for another master solve: the last bound stands, the gap follows the best total
+            reason = unsure or convex.reason or known_reason
+            gap = best_total - known
+            kind = "heuristic" if reason or not np.isfinite(gap) else "certified"
+            trials[last] = replace(trials[last], bound=known, gap=gap, gap_kind=kind, gap_reason=reason or spent)
+            break
+        limit = left if time_limit is None else (time_limit if left is None else min(time_limit, left))
+        sol = master.solve(weights, rel_gap=min(1e-6, 0.1 * tolerance), time_limit=limit)
         bound = sol.bound if sol.status in ("optimal", "stopped") else -math.inf
-        gap = best_total - bound
         reason = unsure or convex.reason
         if sol.status != "optimal":
             reason = reason or f"the master was not solved to optimality ({sol.status}: {sol.message})"
+        if not sol.orders and sol.status == "stopped" and known > bound:
+            bound, reason = known, unsure or convex.reason or known_reason  # stopped before it had anything
+        if bound > known:
+            known, known_reason = bound, reason
+        gap = best_total - bound
         kind = "heuristic" if reason or not np.isfinite(gap) else "certified"
         trials[last] = replace(trials[last], bound=bound, gap=gap, gap_kind=kind, gap_reason=reason)
         if sol.status not in ("optimal", "stopped") or not sol.orders:
+            if deadline is not None and time.perf_counter() >= deadline and not trials[last].gap_reason:
+                trials[last] = replace(trials[last], gap_reason=spent)
             break
         if gap <= tolerance * max(1.0, abs(best_total)):
             break
@@ -498,6 +566,10 @@ def search_master(
             note = f"the budget of {budget} coordinations is spent"
             if not reason:
                 trials[last] = replace(trials[last], gap_reason=note)
+            break
+        if deadline is not None and time.perf_counter() >= deadline:
+            if not reason:
+                trials[last] = replace(trials[last], gap_reason=spent)
             break
         cand = sol.orders
         tried.add(order_key(cand))
@@ -527,7 +599,8 @@ def search_master(
         return best, orders, trials
     first = len(trials)
     refine = Incumbent(
-        agents, resources, run, orders, best_total, best_P, best, trials, tried=tried, stage="swap", on_result=take
+        agents, resources, run, orders, best_total, best_P, best, trials, tried=tried, stage="swap", on_result=take,
+        deadline=deadline,
     )  # fmt: skip
     refine.swaps(swap_passes)
     # the master's bound covers every order whatever the swaps found; a better incumbent only shrinks the gap,
@@ -536,6 +609,8 @@ def search_master(
     for k in range(first, len(trials)):
         running = trials[k].total if trials[k].kept else running
         reason = end.gap_reason if end.gap_kind == "heuristic" else convex.reason or end.gap_reason
+        if refine.out_of_time and k == len(trials) - 1 and end.gap_kind != "heuristic" and not convex.reason:
+            reason = spent
         gap = running - end.bound
         kind = "heuristic" if end.gap_kind == "heuristic" or convex.reason or not np.isfinite(gap) else "certified"
         trials[k] = replace(trials[k], bound=end.bound, gap=gap, gap_kind=kind, gap_reason=reason)
