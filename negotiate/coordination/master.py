@@ -44,8 +44,16 @@ other evaluated points of its agent (a necessary condition of convexity), and ev
 coordination computed must have no eigenvalue below ``-CONVEXITY_RTOL`` times its largest magnitude. The
 gap (best total minus bound) is reported as ``"certified"`` when every check passes and as ``"heuristic"``
 otherwise, with the first failing check as the reason. A passed check is evidence, not proof: convexity
-between the evaluated points is not seen. Nothing is downshifted: a cut that fails the check stays in the
-master (it still guides the search), only the bound loses its certificate.
+between the evaluated points is not seen.
+
+Where a value function is not convex a cut can lie above the agent's values elsewhere, and the master would
+then cut off orders it has not seen and report a "bound" above the best total. Every cut is therefore shifted
+down by its largest excess over the agent's values at all its evaluated points (the downshift of nonconvex
+bundle methods, Kiwiel 1985 and Schramm and Zowe 1992), updated as points come in: each cut then lies below
+every value the agent reported, so the master's objective at the best schedule found is at most its total, and
+the reported bound never exceeds the best total (up to HiGHS's tolerances). For a convex value function the
+shifts are zero up to the solves' accuracy. The shifted cuts still guide the search; the bound stays heuristic
+(the check above names why), since between evaluated points a nonconvex function may dip below any cut.
 """
 
 from __future__ import annotations
@@ -189,8 +197,19 @@ class OrderMaster:
         # The rows that never change (coupling, disjunctions, no cycle of three) are assembled once, on the
         # first solve; a cut or a no-good adds its own row when it comes, so that a solve only stacks them.
         self._static: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
-        self._added: list[tuple[np.ndarray, np.ndarray, float, float]] = []  # columns, values, lower, upper
+        self._added: list[tuple[np.ndarray, np.ndarray, float]] = []  # columns, values, upper
+        self._lower: list[float] = []  # each added row's lower side (a cut's moves with its downshift)
         self._seen: set[tuple[int, bytes, float, bytes]] = set()
+        # per agent: its evaluated points and values, and its cuts (point, value, gradient, downshift, row)
+        nps = [self.layout.sizes[i] for i in range(len(self.agents))]
+        self._points = [np.zeros((0, k)) for k in nps]
+        self._values = [np.zeros(0) for _ in nps]
+        self._point_keys: list[set[bytes]] = [set() for _ in nps]
+        self._cp = [np.zeros((0, k)) for k in nps]
+        self._cv = [np.zeros(0) for _ in nps]
+        self._cg = [np.zeros((0, k)) for k in nps]
+        self._shift = [np.zeros(0) for _ in nps]
+        self._row = [np.zeros(0, dtype=np.int64) for _ in nps]
 
     def _rows(self, res: Resource, order: Sequence[str]) -> list[_Row]:
         out = []
@@ -219,13 +238,41 @@ class OrderMaster:
             return False
         self._seen.add(key)
         self.cuts[i].append((p.copy(), float(value), g.copy()))
-        # theta_i - g.P_i >= V(p_k) - g.p_k, in the master's scaled parameters
+        if p.tobytes() not in self._point_keys[i]:
+            # a new evaluated point: every cut of the agent that lies above its value there is shifted down
+            self._point_keys[i].add(p.tobytes())
+            self._points[i] = np.vstack([self._points[i], p[None, :]])
+            self._values[i] = np.append(self._values[i], float(value))
+            if len(self._cv[i]):
+                over = self._cv[i] + np.einsum("cn,cn->c", self._cg[i], p[None, :] - self._cp[i]) - float(value)
+                grow = over > self._shift[i]
+                if np.any(grow):
+                    self._shift[i] = np.where(grow, over, self._shift[i])
+                    for c in np.flatnonzero(grow):
+                        r = int(self._row[i][c])
+                        self._lower[r] = float(self._cv[i][c] - self._cg[i][c] @ self._cp[i][c] - self._shift[i][c])
+        # the new cut's own downshift: its largest excess over the values at the agent's evaluated points
+        shift = max(0.0, float(np.max(float(value) + (self._points[i] - p[None, :]) @ g - self._values[i],
+                                      initial=0.0)))  # fmt: skip
+        self._cp[i] = np.vstack([self._cp[i], p[None, :]])
+        self._cv[i] = np.append(self._cv[i], float(value))
+        self._cg[i] = np.vstack([self._cg[i], g[None, :]])
+        self._shift[i] = np.append(self._shift[i], shift)
+        self._row[i] = np.append(self._row[i], len(self._added))
+        # theta_i - g.P_i >= V(p_k) - g.p_k - shift, in the master's scaled parameters
         sl = self.layout.slice(i)
         cols = np.append(np.arange(sl.start, sl.stop), self.layout.n + i)
         vals = np.append(-g * self.scale[sl], 1.0)
         keep = vals != 0.0
-        self._added.append((cols[keep], vals[keep], float(value - g @ p), np.inf))
+        self._added.append((cols[keep], vals[keep], np.inf))
+        self._lower.append(float(value - g @ p - shift))
         return True
+
+    def downshift(self, i: int) -> np.ndarray:
+        """How far each cut of agent ``i`` (in the order of ``cuts[i]``) is shifted down, cost units: its
+        largest excess over the agent's values at its evaluated points (0 for a cut that lies below them all,
+        as every cut of a convex value function does)."""
+        return self._shift[i].copy()
 
     def add_floor(self, i: int, value: float) -> None:
         """``theta_i >= value`` (the agent's value at its free optimum, the least over its reachable set)."""
@@ -238,7 +285,8 @@ class OrderMaster:
         self.nogoods.append(y0)
         # sum_{y0=1} (1 - y) + sum_{y0=0} y >= 1
         n, m, q = self.layout.n, len(self.agents), len(self.pairs)
-        self._added.append((n + m + np.arange(q), np.where(y0 > 0, -1.0, 1.0), 1.0 - float(y0.sum()), np.inf))
+        self._added.append((n + m + np.arange(q), np.where(y0 > 0, -1.0, 1.0), np.inf))
+        self._lower.append(1.0 - float(y0.sum()))
 
     def binaries(self, orders: dict[str, list[str]]) -> np.ndarray:
         """The binaries that spell ``orders``."""
@@ -323,12 +371,12 @@ class OrderMaster:
         nv = n + m + q
         r0, c0, v0, lo0, hi0 = self._static_rows()
         k0 = len(lo0)
-        sizes = np.array([len(c) for c, _, _, _ in self._added], dtype=np.int64)
+        sizes = np.array([len(c) for c, _, _ in self._added], dtype=np.int64)
         rows = np.concatenate([r0, np.repeat(k0 + np.arange(len(self._added), dtype=np.int64), sizes)])
-        cols = np.concatenate([c0, *(c for c, _, _, _ in self._added)]) if self._added else c0
-        vals = np.concatenate([v0, *(v for _, v, _, _ in self._added)]) if self._added else v0
-        lo = np.concatenate([lo0, np.array([lb for _, _, lb, _ in self._added], dtype=float)])
-        hi = np.concatenate([hi0, np.array([ub for _, _, _, ub in self._added], dtype=float)])
+        cols = np.concatenate([c0, *(c for c, _, _ in self._added)]) if self._added else c0
+        vals = np.concatenate([v0, *(v for _, v, _ in self._added)]) if self._added else v0
+        lo = np.concatenate([lo0, np.array(self._lower, dtype=float)])
+        hi = np.concatenate([hi0, np.array([ub for _, _, ub in self._added], dtype=float)])
 
         cost = np.zeros(nv)
         cost[n : n + m] = weights
