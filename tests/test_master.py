@@ -359,3 +359,88 @@ class TestSwapRefinement:
         last = data["order_search"][-1]
         assert data["order_gap"] == last["gap"] and data["order_bound"] == data["order_search"][1]["bound"]
         np.testing.assert_allclose(data["order_gap"], data["total_cost"] - data["order_bound"], rtol=1e-12)
+
+
+# ---------------------------------------------------------------------------------------------------------
+# generated fleets (invented data) against full enumeration by the centralized solve
+
+
+def enumerate_central(spec, agents):
+    """Every combination of the orders of all exclusive resources jointly, each admitted one solved by the
+    centralized IPOPT solve (the monolithic NLP, negotiate.coordination.centralized): sorted totals."""
+    from negotiate.coordination.centralized import solve_centralized
+    from negotiate.resources.coupling import build_feasible_set
+
+    ordered = [r for r in spec.resources if r.needs_order]
+    users = {r.name: r.users(agents) for r in ordered}
+    totals = []
+    for combo in itertools.product(*(itertools.permutations(users[r.name]) for r in ordered)):
+        orders = {r.name: list(c) for r, c in zip(ordered, combo, strict=True)}
+        try:
+            check_orders(agents, spec.resources, orders)
+        except (DeadlockError, InfeasibleOrdersError):
+            continue
+        c = solve_centralized(agents, build_feasible_set(agents, spec.resources, orders))
+        assert c.success, (orders, c.message)  # every reference solve must converge
+        totals.append(c.total)
+    return sorted(totals)
+
+
+def convexity_violated(evaluations, rtol=1e-6):
+    """Whether the evaluations show a nonconvex value function, checked here on their own: a cut (value and
+    gradient at one point, the guard's one-sided gradients included) above the value at another point of the
+    same agent by more than rtol of the values' size, or a value Hessian with an eigenvalue below -rtol of its
+    largest magnitude (a convex function has neither: the first-order and second-order characterizations,
+    Boyd and Vandenberghe 2004, sections 3.1.3 and 3.1.4)."""
+    points: dict[int, list[tuple[np.ndarray, float, list[np.ndarray]]]] = {}
+    for ev in evaluations:
+        for i, rep in enumerate(ev.reports):
+            if not rep.gradients:
+                continue
+            points.setdefault(i, []).append((np.asarray(rep.p, float), float(rep.value), rep.gradients))
+            if rep.hessian is not None and np.size(rep.hessian):
+                eig = np.linalg.eigvalsh(0.5 * (rep.hessian + rep.hessian.T))
+                if eig[0] < -rtol * max(1.0, float(np.max(np.abs(eig)))):
+                    return True
+    for pts in points.values():
+        for p, v, grads in pts:
+            for q, w, _ in pts:
+                for g in grads:
+                    over = v + g @ (q - p) - w
+                    if over > rtol * max(1.0, abs(v), abs(w), float(np.abs(g) @ np.abs(q - p))):
+                        return True
+    return False
+
+
+class TestGeneratedFleets:
+    @pytest.mark.parametrize(("kind", "agents", "seed"), [("bridge", 4, 3), ("furnace", 4, 2)])
+    def test_master_equals_the_enumerated_best(self, kind, agents, seed):
+        """A generated bridge (one resource, 4! = 24 orders) and furnace (two resources, 4! * 4! = 576 order
+        combinations): the master's schedule total equals the best of every combination, each solved by the
+        centralized NLP, within 0.1 %; its bound lies below its total, and it is certified only when the
+        evaluations it saw show no sign of a nonconvex value function (checked here independently)."""
+        import dataclasses
+        import tomllib
+
+        from negotiate.fleet.build import build_agents
+        from negotiate.fleet.parse import parse_fleet
+        from negotiate.tools.generate import generate_fleet
+
+        spec = parse_fleet(tomllib.loads(generate_fleet(kind, agents, seed)), f"generated {kind}")
+        built = build_agents(spec)
+        best = enumerate_central(spec, built)[0]
+        # the fleet's own coordinator settings (bundle, tolerance 1e-6), with the order master
+        run, seen = runner(built, spec.resources, dataclasses.replace(spec.coordinator, order="master"))
+        result, _orders, trials = search_master(built, spec.resources, run, evaluations=seen)
+        # 0.1 %: the issue's target; both solves reach their fixed-order optimum to ~1e-6 relative
+        assert abs(result.total - best) <= 1e-3 * abs(best), (result.total, best)
+        last = [t for t in trials if t.gap_kind][-1]
+        assert last.bound <= result.total + 1e-9 * abs(result.total)  # a bound never above the incumbent
+        np.testing.assert_allclose(last.gap, result.total - last.bound, rtol=1e-12, atol=1e-9 * abs(best))
+        if convexity_violated(seen):
+            assert last.gap_kind == "heuristic" and "not convex" in last.gap_reason
+        if last.gap_kind == "certified":
+            assert not convexity_violated(seen)
+            assert last.bound <= best * (1 + 1e-6)  # a certified bound lies below the best of all orders
+        else:
+            assert last.gap_reason  # a heuristic gap always says why
