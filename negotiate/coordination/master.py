@@ -193,6 +193,10 @@ class OrderMaster:
                     )
         self.cuts: list[list[tuple[np.ndarray, float, np.ndarray]]] = [[] for _ in self.agents]
         self.floor = np.full(len(self.agents), -np.inf)
+        # The epigraph variables are theta_i / cost_scale: values of 1e8 next to binaries and scaled slot times
+        # otherwise leave HiGHS's tolerances too coarse (it then prunes the branch of the true optimum).
+        starts = [abs(a.start.value) for a in self.agents if a.start is not None and np.isfinite(a.start.value)]
+        self.cost_scale = max(1.0, float(np.median(starts))) if starts else 1.0
         self.nogoods: list[np.ndarray] = []
         # The rows that never change (coupling, disjunctions, no cycle of three) are assembled once, on the
         # first solve; a cut or a no-good adds its own row when it comes, so that a solve only stacks them.
@@ -250,7 +254,8 @@ class OrderMaster:
                     self._shift[i] = np.where(grow, over, self._shift[i])
                     for c in np.flatnonzero(grow):
                         r = int(self._row[i][c])
-                        self._lower[r] = float(self._cv[i][c] - self._cg[i][c] @ self._cp[i][c] - self._shift[i][c])
+                        lower = self._cv[i][c] - self._cg[i][c] @ self._cp[i][c] - self._shift[i][c]
+                        self._lower[r] = float(lower) / self.cost_scale
         # the new cut's own downshift: its largest excess over the values at the agent's evaluated points
         shift = max(0.0, float(np.max(float(value) + (self._points[i] - p[None, :]) @ g - self._values[i],
                                       initial=0.0)))  # fmt: skip
@@ -259,13 +264,13 @@ class OrderMaster:
         self._cg[i] = np.vstack([self._cg[i], g[None, :]])
         self._shift[i] = np.append(self._shift[i], shift)
         self._row[i] = np.append(self._row[i], len(self._added))
-        # theta_i - g.P_i >= V(p_k) - g.p_k - shift, in the master's scaled parameters
+        # theta_i - g.P_i >= V(p_k) - g.p_k - shift, in the master's scaled parameters and costs
         sl = self.layout.slice(i)
         cols = np.append(np.arange(sl.start, sl.stop), self.layout.n + i)
-        vals = np.append(-g * self.scale[sl], 1.0)
+        vals = np.append(-g * self.scale[sl] / self.cost_scale, 1.0)
         keep = vals != 0.0
         self._added.append((cols[keep], vals[keep], np.inf))
-        self._lower.append(float(value - g @ p - shift))
+        self._lower.append(float(value - g @ p - shift) / self.cost_scale)
         return True
 
     def downshift(self, i: int) -> np.ndarray:
@@ -364,8 +369,18 @@ class OrderMaster:
         )  # fmt: skip
         return self._static
 
-    def solve(self, weights: np.ndarray, *, rel_gap: float = 1e-9, time_limit: float | None = None) -> MasterSolution:
-        """Solve the master for the agents' ``weights`` (dimensionless); ``time_limit`` is HiGHS's, s."""
+    def solve(
+        self,
+        weights: np.ndarray,
+        *,
+        rel_gap: float = 1e-9,
+        time_limit: float | None = None,
+        orders: dict[str, list[str]] | None = None,
+    ) -> MasterSolution:
+        """Solve the master for the agents' ``weights`` (dimensionless); ``time_limit`` is HiGHS's, s. With
+        ``orders`` the binaries are fixed to spell them and the master is a linear program: its value is the
+        cut model's estimate of the best total for those orders (a lower bound where the value functions are
+        convex)."""
         n, m, q = self.layout.n, len(self.agents), len(self.pairs)
         s = self.scale
         nv = n + m + q
@@ -380,9 +395,12 @@ class OrderMaster:
 
         cost = np.zeros(nv)
         cost[n : n + m] = weights
-        lb = np.concatenate([self.lower / s, self.floor, np.zeros(q)])
+        lb = np.concatenate([self.lower / s, self.floor / self.cost_scale, np.zeros(q)])
         ub = np.concatenate([self.upper / s, np.full(m, np.inf), np.ones(q)])
         integrality = np.concatenate([np.zeros(n + m), np.ones(q)])
+        if orders is not None:
+            lb[n + m :] = ub[n + m :] = self.binaries(orders)
+            integrality[:] = 0
         options: dict[str, Any] = {"mip_rel_gap": rel_gap}
         if time_limit is not None:
             options["time_limit"] = time_limit
@@ -397,11 +415,15 @@ class OrderMaster:
             return MasterSolution(status, {}, np.zeros(n), math.inf, -math.inf, str(res.message))
         x = np.asarray(res.x)
         y = np.round(x[n + m :])
+        fun = float(res.fun) * self.cost_scale
         bound = getattr(res, "mip_dual_bound", None)
-        bound = float(res.fun) if bound is None or not np.isfinite(bound) else float(bound)
+        if bound is None or not np.isfinite(bound):
+            bound = fun if status == "optimal" else -math.inf  # a stopped solve without a dual bound has none
+        else:
+            bound = float(bound) * self.cost_scale
         if status == "optimal":
-            bound = min(bound, float(res.fun))
-        return MasterSolution(status, self._orders(y), x[:n] * s, float(res.fun), bound, str(res.message), y)
+            bound = min(bound, fun)
+        return MasterSolution(status, self._orders(y), x[:n] * s, fun, bound, str(res.message), y)
 
 
 # -- convexity checks ---------------------------------------------------------------------------------------
@@ -506,7 +528,8 @@ def search_master(
     tolerance : float, optional
         Relative gap at which the loop stops (relative to ``max(1, |best total|)``; ``gap_tolerance``).
     time_limit : float, optional
-        HiGHS's time limit per master solve, s (also capped by what is left of ``time_budget``).
+        HiGHS's time limit per master solve, s (``milp_time_limit``; also capped by what is left of
+        ``time_budget``).
     swap_passes : int, optional
         Largest number of passes of adjacent swaps over the best order after the loop (0: none); no pass is
         made when the loop ended with a certified gap within ``tolerance``.
@@ -532,6 +555,8 @@ def search_master(
     tolerance = float(opts["gap_tolerance"]) if tolerance is None else tolerance
     swap_passes = int(opts["swap_passes"]) if swap_passes is None else swap_passes
     time_budget = float(opts["time_budget"]) if time_budget is None else time_budget
+    if time_limit is None and opts["milp_time_limit"] > 0:
+        time_limit = float(opts["milp_time_limit"])
     deadline = t0 + time_budget if time_budget > 0 else None
     spent = f"the time budget of {time_budget:g} s is spent"
     master = OrderMaster(agents, resources)
@@ -591,7 +616,8 @@ def search_master(
         sol = master.solve(weights, rel_gap=min(1e-6, 0.1 * tolerance), time_limit=limit)
         bound = sol.bound if sol.status in ("optimal", "stopped") else -math.inf
         reason = unsure or convex.reason
-        if sol.status != "optimal":
+        if sol.status != "optimal" and not (sol.status == "stopped" and np.isfinite(bound)):
+            # (a solve stopped at its time limit still gives HiGHS's dual bound, a bound like any other)
             reason = reason or f"the master was not solved to optimality ({sol.status}: {sol.message})"
         if not sol.orders and sol.status == "stopped" and known > bound:
             bound, reason = known, unsure or convex.reason or known_reason  # stopped before it had anything
@@ -646,9 +672,17 @@ def search_master(
     if swap_passes <= 0 or (end.gap_kind == "certified" and end.gap <= tolerance * max(1.0, abs(best_total))):
         return best, orders, trials
     first = len(trials)
+
+    def screen(candidate: dict[str, list[str]], total: float) -> bool:
+        # the cut model's best total for the candidate's orders; with convex value functions a lower bound,
+        # so a candidate whose estimate is not below the best total cannot improve on it
+        left = None if deadline is None else max(1e-3, deadline - time.perf_counter())
+        est = master.solve(weights, orders=candidate, time_limit=left)
+        return est.status == "optimal" and est.objective >= total - 1e-9 * max(1.0, abs(total))
+
     refine = Incumbent(
         agents, resources, run, orders, best_total, best_P, best, trials, tried=tried, stage="swap", on_result=take,
-        deadline=deadline,
+        deadline=deadline, screen=screen if opts["screen_swaps"] else None,
     )  # fmt: skip
     refine.swaps(swap_passes)
     # the master's bound covers every order whatever the swaps found; a better incumbent only shrinks the gap,

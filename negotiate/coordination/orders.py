@@ -83,6 +83,14 @@ class MasterOptions:
     swap_passes: int = option(
         3, "largest number of passes of adjacent swaps over the master's best order (0: none)", Range(0, 1000)
     )
+    milp_time_limit: float = option(
+        20.0, "HiGHS's time limit per solve of the master, s (0: none); a stopped solve still proposes its best "
+        "orders and gives its dual bound", TIME_BUDGET,
+    )  # fmt: skip
+    screen_swaps: bool = option(
+        True, "pass over an adjacent swap whose cut-model estimate (the master as a linear program with those "
+        "orders fixed) is not below the best total; exact where the value functions are convex",
+    )  # fmt: skip
 
 
 ORDER_OPTIONS: dict[str, type | None] = {
@@ -179,6 +187,10 @@ class Incumbent:
     deadline : float, optional
         A :func:`time.perf_counter` reading after which no candidate is coordinated (a coordination under way
         finishes); :attr:`out_of_time` then turns True and the best orders so far stay the result.
+    screen : callable, optional
+        ``screen(candidate, total)`` is called for a candidate that admits a schedule before it is coordinated;
+        when it returns True the candidate is passed over (not coordinated, no trial, counted in
+        :attr:`screened`). The order master screens with its cut model.
     """
 
     def __init__(
@@ -196,6 +208,7 @@ class Incumbent:
         stage: str = "",
         on_result: Callable[[object], None] | None = None,
         deadline: float | None = None,
+        screen: Callable[[dict[str, list[str]], float], bool] | None = None,
     ) -> None:
         self.agents, self.resources, self.run = agents, resources, run
         self.orders, self.total, self.P, self.best = orders, total, P, best
@@ -203,6 +216,8 @@ class Incumbent:
         self.coordinations = 0  # candidates handed to ``run`` by this search
         self.deadline = deadline
         self.out_of_time = False
+        self.screen = screen
+        self.screened = 0  # candidates the screen passed over
 
     def attempt(self, candidate: dict[str, list[str]]) -> bool:
         """Check ``candidate`` (skipped as an infeasible trial when it admits no schedule), coordinate it warm-
@@ -212,16 +227,21 @@ class Incumbent:
             self.out_of_time = True
         if self.out_of_time:
             return False
-        if self.tried is not None:
-            key = order_key(candidate)
-            if key in self.tried:
-                return False
-            self.tried.add(key)
+        key = order_key(candidate)
+        if self.tried is not None and key in self.tried:
+            return False
         try:
             check_orders(self.agents, self.resources, candidate)
         except (DeadlockError, InfeasibleOrdersError) as exc:
+            if self.tried is not None:
+                self.tried.add(key)
             self.trials.append(OrderTrial(candidate, float("inf"), False, str(exc), stage=self.stage))
             return False
+        if self.screen is not None and self.screen(candidate, self.total):
+            self.screened += 1  # not marked as tried: a later screen, with more cuts, may let it through
+            return False
+        if self.tried is not None:
+            self.tried.add(key)
         total, P, result = self.run(candidate, self.P)
         self.coordinations += 1
         if self.on_result is not None:
