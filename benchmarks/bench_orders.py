@@ -162,7 +162,7 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--sizes", nargs="+", type=int, default=[4, 6, 8, 16, 32], help="agents per generated fleet")
     ap.add_argument("--seeds", nargs="+", type=int, default=[1], help="generator seeds")
     ap.add_argument("--rules", nargs="+", default=list(RULES), choices=list(RULES), help="order rules to run")
-    ap.add_argument("--enumerate-limit", type=int, default=800, help="largest number of combinations enumerated")
+    ap.add_argument("--enumerate-limit", type=int, default=600, help="largest number of combinations enumerated")
     ap.add_argument("--example", nargs="*", default=[str(ROOT / "examples" / "quarry_bridge.toml")],
                     help="fleet files to run as well (default: the quarry bridge)")  # fmt: skip
     ap.add_argument("--no-example", action="store_true", help="leave the example files out")

@@ -376,11 +376,14 @@ class OrderMaster:
         rel_gap: float = 1e-9,
         time_limit: float | None = None,
         orders: dict[str, list[str]] | None = None,
+        near: tuple[dict[str, list[str]], int] | None = None,
     ) -> MasterSolution:
         """Solve the master for the agents' ``weights`` (dimensionless); ``time_limit`` is HiGHS's, s. With
         ``orders`` the binaries are fixed to spell them and the master is a linear program: its value is the
         cut model's estimate of the best total for those orders (a lower bound where the value functions are
-        convex)."""
+        convex). With ``near = (orders, k)`` only order combinations within ``k`` flipped pairs of ``orders``
+        are allowed (a local-branching row, Fischetti and Lodi 2003): a quicker solve near an incumbent, whose
+        value is then no bound on all orders."""
         n, m, q = self.layout.n, len(self.agents), len(self.pairs)
         s = self.scale
         nv = n + m + q
@@ -392,6 +395,14 @@ class OrderMaster:
         vals = np.concatenate([v0, *(v for _, v, _ in self._added)]) if self._added else v0
         lo = np.concatenate([lo0, np.array(self._lower, dtype=float)])
         hi = np.concatenate([hi0, np.array([ub for _, _, ub in self._added], dtype=float)])
+        if near is not None:  # sum_{y0=1} (1 - y) + sum_{y0=0} y <= k
+            y0 = self.binaries(near[0])
+            k = len(lo)
+            rows = np.concatenate([rows, np.full(q, k, dtype=np.int64)])
+            cols = np.concatenate([cols, n + m + np.arange(q, dtype=np.int64)])
+            vals = np.concatenate([vals, np.where(y0 > 0.5, -1.0, 1.0)])
+            lo = np.append(lo, -np.inf)
+            hi = np.append(hi, float(near[1]) - float(y0.sum()))
 
         cost = np.zeros(nv)
         cost[n : n + m] = weights
@@ -601,8 +612,10 @@ def search_master(
     tried = {order_key(orders)}
     coordinations = 1
     last = 0  # the trial whose bound the next master solve gives
-    known = -math.inf  # the best bound a master solve gave so far (every one is a bound: cuts only add rows)
+    known = -math.inf  # the bound of the latest solve over all orders
     known_reason = ""  # why that bound is not certified, besides convexity
+    radius = int(opts["trust_radius"])
+    widen = radius <= 0  # the next solve is over all orders (else near the best order only)
     for _ in range(50 * max(1, budget)):  # no-good cuts may need several master solves per coordination
         left = None if deadline is None else deadline - time.perf_counter()
         if left is not None and left <= 0:
@@ -613,36 +626,53 @@ def search_master(
             trials[last] = replace(trials[last], bound=known, gap=gap, gap_kind=kind, gap_reason=reason or spent)
             break
         limit = left if time_limit is None else (time_limit if left is None else min(time_limit, left))
-        sol = master.solve(weights, rel_gap=min(1e-6, 0.1 * tolerance), time_limit=limit)
-        bound = sol.bound if sol.status in ("optimal", "stopped") else -math.inf
-        reason = unsure or convex.reason
-        if sol.status != "optimal" and not (sol.status == "stopped" and np.isfinite(bound)):
-            # (a solve stopped at its time limit still gives HiGHS's dual bound, a bound like any other)
-            reason = reason or f"the master was not solved to optimality ({sol.status}: {sol.message})"
-        if not sol.orders and sol.status == "stopped" and known > bound:
-            bound, reason = known, unsure or convex.reason or known_reason  # stopped before it had anything
-        if bound > known:
-            known, known_reason = bound, reason
-        gap = best_total - bound
-        kind = "heuristic" if reason or not np.isfinite(gap) else "certified"
-        trials[last] = replace(trials[last], bound=bound, gap=gap, gap_kind=kind, gap_reason=reason)
-        if sol.status not in ("optimal", "stopped") or not sol.orders:
-            if deadline is not None and time.perf_counter() >= deadline and not trials[last].gap_reason:
-                trials[last] = replace(trials[last], gap_reason=spent)
-            break
-        if gap <= tolerance * max(1.0, abs(best_total)):
-            break
-        if order_key(sol.orders) in tried:
-            note = "the master proposes an order already coordinated"
-            trials[last] = replace(trials[last], gap_kind="heuristic", gap_reason=reason or note)
-            break
+        if not widen:
+            # near the best order: a quick proposal, no bound; when the model sees nothing better there (or
+            # repeats itself), the next solve is over all orders, for the bound and a proposal from anywhere
+            sol = master.solve(weights, rel_gap=min(1e-6, 0.1 * tolerance), time_limit=limit, near=(orders, radius))
+            if (
+                sol.status not in ("optimal", "stopped") or not sol.orders or order_key(sol.orders) in tried
+                or sol.objective >= best_total - tolerance * max(1.0, abs(best_total))
+            ):  # fmt: skip
+                widen = True
+                continue
+            reason = unsure or convex.reason or known_reason
+            if not np.isfinite(known):
+                reason = reason or "no bound yet: the master searched near the best order only"
+            gap = best_total - known
+            kind = "heuristic" if reason or not np.isfinite(gap) else "certified"
+            trials[last] = replace(trials[last], bound=known, gap=gap, gap_kind=kind, gap_reason=reason)
+        else:
+            sol = master.solve(weights, rel_gap=min(1e-6, 0.1 * tolerance), time_limit=limit)
+            widen = radius <= 0
+            bound = sol.bound if sol.status in ("optimal", "stopped") else -math.inf
+            reason = unsure or convex.reason
+            if sol.status != "optimal" and not (sol.status == "stopped" and np.isfinite(bound)):
+                # (a solve stopped at its time limit still gives HiGHS's dual bound, a bound like any other)
+                reason = reason or f"the master was not solved to optimality ({sol.status}: {sol.message})"
+            if not sol.orders and sol.status == "stopped" and known > bound:
+                bound, reason = known, unsure or convex.reason or known_reason  # stopped before it had anything
+            known, known_reason = bound, reason  # the latest bound, from every cut so far
+            gap = best_total - bound
+            kind = "heuristic" if reason or not np.isfinite(gap) else "certified"
+            trials[last] = replace(trials[last], bound=bound, gap=gap, gap_kind=kind, gap_reason=reason)
+            if sol.status not in ("optimal", "stopped") or not sol.orders:
+                if deadline is not None and time.perf_counter() >= deadline and not trials[last].gap_reason:
+                    trials[last] = replace(trials[last], gap_reason=spent)
+                break
+            if gap <= tolerance * max(1.0, abs(best_total)):
+                break
+            if order_key(sol.orders) in tried:
+                note = "the master proposes an order already coordinated"
+                trials[last] = replace(trials[last], gap_kind="heuristic", gap_reason=reason or note)
+                break
         if coordinations >= budget:
             note = f"the budget of {budget} coordinations is spent"
-            if not reason:
+            if not trials[last].gap_reason:
                 trials[last] = replace(trials[last], gap_reason=note)
             break
         if deadline is not None and time.perf_counter() >= deadline:
-            if not reason:
+            if not trials[last].gap_reason:
                 trials[last] = replace(trials[last], gap_reason=spent)
             break
         cand = sol.orders

@@ -87,6 +87,11 @@ class MasterOptions:
         20.0, "HiGHS's time limit per solve of the master, s (0: none); a stopped solve still proposes its best "
         "orders and gives its dual bound", TIME_BUDGET,
     )  # fmt: skip
+    trust_radius: int = option(
+        0, "search near the best order first: a master solve allows at most this many pairs in the other "
+        "order (local branching); over all orders when it finds nothing better there (0: always all orders)",
+        Range(0, 1_000_000),
+    )  # fmt: skip
     screen_swaps: bool = option(
         True, "pass over an adjacent swap whose cut-model estimate (the master as a linear program with those "
         "orders fixed) is not below the best total; exact where the value functions are convex",
