@@ -27,13 +27,22 @@ logic-based form, Hooker and Ottosson 2003): solve the master, read the orders f
 coordination fails, is excluded by a no-good cut on its binaries), coordinate with those orders fixed (warm-
 started from the best schedule so far, as the neighbour-swap search does), add the new cuts, and again,
 until the master's lower bound meets the best total within the tolerance, the master repeats an order
-already coordinated, or the budget of coordinations is spent.
+already coordinated, or a budget is spent: coordinations, or the wall time of the whole search (the options of
+:class:`~negotiate.coordination.orders.MasterOptions`, ``[coordinator.order_options]``). No coordination is
+started once the wall time is spent; the best orders so far are what the search returns. The MILP's fixed rows
+are assembled once and each cut adds its row when it comes; every solve has HiGHS's time limit
+(``milp_time_limit``), and a solve stopped there still proposes its best orders and gives its dual bound. With
+``trust_radius`` the master first searches near the best order (a local-branching row, Fischetti and Lodi
+2003) and over all orders only when it finds nothing better there.
 
 When the loop stops short of a certified gap within the tolerance, adjacent swaps refine the best order (the
 step of the ``swap`` rule, :class:`~negotiate.coordination.orders.Incumbent`; each candidate checked, then
-coordinated warm with its orders fixed, an order already coordinated skipped). Their cuts enter the master and
-the convexity checks too; the bound stays the master's (it covers every order), so a better total only shrinks
-the gap, and a swap's cuts that show a non-convex value function make it heuristic.
+coordinated warm with its orders fixed, an order already coordinated skipped). Each candidate is first screened
+by the cut model (``screen_swaps``): the master as a linear program with the candidate's orders fixed; one whose
+estimate is not below the best total is passed over without a coordination (where the value functions are
+convex the estimate is a lower bound on that order's total, so nothing better is lost). Their cuts enter the
+master and the convexity checks too; the bound stays the master's (it covers every order), so a better total
+only shrinks the gap, and a swap's cuts that show a non-convex value function make it heuristic.
 
 The bound and its honesty
 -------------------------
