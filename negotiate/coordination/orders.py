@@ -78,14 +78,16 @@ class MasterOptions:
     )  # fmt: skip
     time_budget: float = option(
         0.0, "wall time of the whole order search (master loop and swaps), s (0: none); no coordination is "
-        "started after it, and the best order so far is what the run returns and writes", TIME_BUDGET,
+        "started after it, and the best order so far is what the run returns and writes (which one depends on "
+        "the machine's speed)", TIME_BUDGET,
     )  # fmt: skip
     swap_passes: int = option(
         3, "largest number of passes of adjacent swaps over the master's best order (0: none)", Range(0, 1000)
     )
     milp_time_limit: float = option(
-        20.0, "HiGHS's time limit per solve of the master, s (0: none); a stopped solve still proposes its best "
-        "orders and gives its dual bound", TIME_BUDGET,
+        0.0, "HiGHS's time limit per solve of the master, s (0: none); a stopped solve still proposes its best "
+        "orders and gives its dual bound, but what it found depends on the machine's speed (the same fleet may "
+        "then give another schedule)", TIME_BUDGET,
     )  # fmt: skip
     trust_radius: int = option(
         0, "search near the best order first: a master solve allows at most this many pairs in the other "
