@@ -36,7 +36,7 @@ from negotiate.coordination.engine import CoordinationResult, EngineState, Round
 from negotiate.coordination.master import search_master
 from negotiate.coordination.methods import Method, method_class, method_names, option_problems, register_method
 from negotiate.coordination.methods.base import Evaluation
-from negotiate.coordination.orders import OrderTrial, search_orders
+from negotiate.coordination.orders import OrderTrial, order_option_problems, search_orders
 from negotiate.core.agent import AgentModel
 from negotiate.core.files import write_atomic
 from negotiate.core.status import CoordinationStatus
@@ -109,12 +109,18 @@ def resolve_method(name: str) -> str:
 
 def check_method_options(spec: FleetSpec, method: str | None = None) -> None:
     """Refuse ``[coordinator.options]`` that the method (``method`` or the fleet's own, a registered name)
-    does not declare, or whose values have the wrong type: a :class:`~negotiate.errors.FleetError` naming
-    the fleet file, the key, what was expected and what was found (every such key at once)."""
+    does not declare, or whose values have the wrong type, and ``[coordinator.order_options]`` that the order
+    rule does not declare, or whose values have the wrong type or lie out of range: a
+    :class:`~negotiate.errors.FleetError` naming the fleet file, the table, the key, what was expected and
+    what was found (every such key at once)."""
     cls = method_class(method or spec.coordinator.method)
     problems = [
         Problem(spec.source, "coordinator.options", key, expected, describe(value))
         for key, expected, value in option_problems(cls, spec.coordinator.options)
+    ]
+    problems += [
+        Problem(spec.source, "coordinator.order_options", key, expected, describe(value))
+        for key, expected, value in order_option_problems(spec.coordinator.order, spec.coordinator.order_options)
     ]
     if problems:
         raise FleetError(problems)
@@ -234,8 +240,9 @@ def run_fleet(
     Raises
     ------
     FleetError
-        When ``[coordinator.options]`` holds a key the method does not declare or a value of the wrong type
-        (:func:`check_method_options`), before anything is built or solved; or when an agent cannot be built.
+        When ``[coordinator.options]`` holds a key the method does not declare or a value of the wrong type,
+        or ``[coordinator.order_options]`` one the order rule does not accept (:func:`check_method_options`),
+        before anything is built or solved; or when an agent cannot be built.
     DeadlockError, InfeasibleOrdersError
         When the first order (first-come-first-served) admits no schedule; later candidates of an order
         search that admit none are recorded as infeasible trials and skipped.
@@ -438,9 +445,11 @@ def _search(
         return total, r.P, r
 
     if master:
-        best, _orders, trials = search_master(agents, spec.resources, one, evaluations=seen)
+        best, _orders, trials = search_master(agents, spec.resources, one, evaluations=seen,
+                                              options=settings.order_options)  # fmt: skip
     else:
-        best, _orders, trials = search_orders(agents, spec.resources, settings.order, one)
+        best, _orders, trials = search_orders(agents, spec.resources, settings.order, one,
+                                              options=settings.order_options)  # fmt: skip
     assert isinstance(best, CoordinationResult)
     return best, list(trials)
 

@@ -359,3 +359,181 @@ class TestSwapRefinement:
         last = data["order_search"][-1]
         assert data["order_gap"] == last["gap"] and data["order_bound"] == data["order_search"][1]["bound"]
         np.testing.assert_allclose(data["order_gap"], data["total_cost"] - data["order_bound"], rtol=1e-12)
+
+
+# ---------------------------------------------------------------------------------------------------------
+# generated fleets (invented data) against full enumeration by the centralized solve
+
+
+def enumerate_central(spec, agents):
+    """Every combination of the orders of all exclusive resources jointly, each admitted one solved by the
+    centralized IPOPT solve (the monolithic NLP, negotiate.coordination.centralized): sorted totals."""
+    from negotiate.coordination.centralized import solve_centralized
+    from negotiate.resources.coupling import build_feasible_set
+
+    ordered = [r for r in spec.resources if r.needs_order]
+    users = {r.name: r.users(agents) for r in ordered}
+    totals = []
+    for combo in itertools.product(*(itertools.permutations(users[r.name]) for r in ordered)):
+        orders = {r.name: list(c) for r, c in zip(ordered, combo, strict=True)}
+        try:
+            check_orders(agents, spec.resources, orders)
+        except (DeadlockError, InfeasibleOrdersError):
+            continue
+        c = solve_centralized(agents, build_feasible_set(agents, spec.resources, orders))
+        assert c.success, (orders, c.message)  # every reference solve must converge
+        totals.append(c.total)
+    return sorted(totals)
+
+
+def convexity_violated(evaluations, rtol=1e-6):
+    """Whether the evaluations show a nonconvex value function, checked here on their own: a cut (value and
+    gradient at one point, the guard's one-sided gradients included) above the value at another point of the
+    same agent by more than rtol of the values' size, or a value Hessian with an eigenvalue below -rtol of its
+    largest magnitude (a convex function has neither: the first-order and second-order characterizations,
+    Boyd and Vandenberghe 2004, sections 3.1.3 and 3.1.4)."""
+    points: dict[int, list[tuple[np.ndarray, float, list[np.ndarray]]]] = {}
+    for ev in evaluations:
+        for i, rep in enumerate(ev.reports):
+            if not rep.gradients:
+                continue
+            points.setdefault(i, []).append((np.asarray(rep.p, float), float(rep.value), rep.gradients))
+            if rep.hessian is not None and np.size(rep.hessian):
+                eig = np.linalg.eigvalsh(0.5 * (rep.hessian + rep.hessian.T))
+                if eig[0] < -rtol * max(1.0, float(np.max(np.abs(eig)))):
+                    return True
+    for pts in points.values():
+        for p, v, grads in pts:
+            for q, w, _ in pts:
+                for g in grads:
+                    over = v + g @ (q - p) - w
+                    if over > rtol * max(1.0, abs(v), abs(w), float(np.abs(g) @ np.abs(q - p))):
+                        return True
+    return False
+
+
+class TestGeneratedFleets:
+    @pytest.mark.parametrize(("kind", "agents", "seed"), [("bridge", 4, 3), ("furnace", 4, 2)])
+    def test_master_equals_the_enumerated_best(self, kind, agents, seed):
+        """A generated bridge (one resource, 4! = 24 orders) and furnace (two resources, 4! * 4! = 576 order
+        combinations): the master's schedule total equals the best of every combination, each solved by the
+        centralized NLP, within 0.1 %; its bound lies below its total, and it is certified only when the
+        evaluations it saw show no sign of a nonconvex value function (checked here independently)."""
+        import dataclasses
+        import tomllib
+
+        from negotiate.fleet.build import build_agents
+        from negotiate.fleet.parse import parse_fleet
+        from negotiate.tools.generate import generate_fleet
+
+        spec = parse_fleet(tomllib.loads(generate_fleet(kind, agents, seed)), f"generated {kind}")
+        built = build_agents(spec)
+        best = enumerate_central(spec, built)[0]
+        # the fleet's own coordinator settings (bundle, tolerance 1e-6), with the order master
+        run, seen = runner(built, spec.resources, dataclasses.replace(spec.coordinator, order="master"))
+        result, _orders, trials = search_master(built, spec.resources, run, evaluations=seen)
+        # 0.1 %: the issue's target; both solves reach their fixed-order optimum to ~1e-6 relative
+        assert abs(result.total - best) <= 1e-3 * abs(best), (result.total, best)
+        last = [t for t in trials if t.gap_kind][-1]
+        assert last.bound <= result.total + 1e-9 * abs(result.total)  # a bound never above the incumbent
+        np.testing.assert_allclose(last.gap, result.total - last.bound, rtol=1e-12, atol=1e-9 * abs(best))
+        if convexity_violated(seen):
+            assert last.gap_kind == "heuristic" and "not convex" in last.gap_reason
+        if last.gap_kind == "certified":
+            assert not convexity_violated(seen)
+            assert last.bound <= best * (1 + 1e-6)  # a certified bound lies below the best of all orders
+        else:
+            assert last.gap_reason  # a heuristic gap always says why
+
+
+class TestOrderOptions:
+    """The order rules' budgets are declared options: typed, ranged, documented, refused by name when wrong."""
+
+    def test_fleet_file_refuses_unknown_mistyped_and_out_of_range_keys(self, tmp_path):
+        """[coordinator.order_options] with a misspelt key, a string for a number and a negative budget: one
+        FleetError naming the file, the table and each key, raised before any agent is built."""
+        from negotiate.errors import FleetError
+        from negotiate.run import check_method_options, load_fleet
+
+        path = tmp_path / "fleet.toml"
+        path.write_text(
+            '[resources.r]\nkind = "exclusive"\ngap = 1.0\n[coordinator]\norder = "master"\n'
+            '[coordinator.order_options]\nmax_coordinationz = 3\ngap_tolerance = "small"\ntime_budget = -1.0\n'
+            '[agents.a]\nmodel = "vehicle"\nroute_length = 1000.0\ndeparture = 0.0\ndesired_arrival = 100.0\n'
+            'latest_arrival = 300.0\n[[agents.a.zones]]\nresource = "r"\nentry = 400.0\nexit = 450.0\n'
+        )  # fmt: skip
+        spec = load_fleet(path)
+        with pytest.raises(FleetError) as err:
+            check_method_options(spec)
+        text = str(err.value)
+        assert text.count(f"{path}: [coordinator.order_options] key ") == 3
+        assert "key 'max_coordinationz': expected one of the 'master' order rule's options (max_coordinations" in text
+        assert "key 'gap_tolerance': expected a finite number within (0, 0.1), found \"small\"" in text
+        assert "key 'time_budget': expected a finite number within [0, 1e7], found -1.0" in text
+
+    def test_rules_without_options_refuse_any(self):
+        """fcfs takes no options: a key there is named as not expected."""
+        from negotiate.coordination.orders import order_option_problems
+
+        assert order_option_problems("fcfs", {"max_passes": 2}) == [
+            ("max_passes", "no key: order = 'fcfs' takes no options", 2)
+        ]
+        assert order_option_problems("swap", {"max_passes": 2, "time_budget": 5}) == []  # an integer is a number
+
+    def test_python_settings_warn_and_keep_the_default(self):
+        """From Python a wrong option warns, naming it, and the default is used."""
+        from negotiate.coordination.orders import order_options
+
+        with pytest.warns(UserWarning, match="'swap_passes' expected an integer within"):
+            opts = order_options("master", {"swap_passes": -1})
+        assert opts["swap_passes"] == 3
+
+    @pytest.mark.parametrize("rule", ["swap", "master"])
+    def test_docs_show_the_declared_options(self, rule):
+        """docs/methods.md holds the table generated from each rule's declaration."""
+        from pathlib import Path
+
+        from negotiate.coordination.orders import order_options_table
+
+        docs = (Path(__file__).parents[1] / "docs" / "methods.md").read_text()
+        assert order_options_table(rule) in docs
+
+
+class TestTimeBudget:
+    """A spent wall-time budget stops the search between coordinations; finished work is kept."""
+
+    def test_master_keeps_the_first_order_and_its_bound(self):
+        """With a budget that is spent once the first coordination is done (1e-9 s) no other order is tried;
+        the first order's result is returned as it is, with the master's bound if one was computed, and the
+        reason names the budget. A search without a budget goes on to the better order (test above)."""
+        agents = [
+            slot_agent("soft", 0.0, 10.0, 0.01, ["r", "s"], earliest=0.0),
+            slot_agent("stiff", 2.0, 10.0, 10.0, ["r", "s"], earliest=2.0),
+        ]
+        resources = [ExclusiveResource("r", gap=1.0), ExclusiveResource("s", gap=1.0)]
+        run, seen = runner(agents, resources)
+        fcfs, first, _ = search_orders(agents, resources, "fcfs", run)
+        run, seen = runner(agents, resources)
+        best, orders, trials = search_master(agents, resources, run, evaluations=seen, options={"time_budget": 1e-9})
+        assert orders == first and len(trials) == 1
+        np.testing.assert_array_equal(best.P, fcfs.P)  # the same coordination, kept as it finished
+        assert "time budget of 1e-09 s is spent" in trials[-1].gap_reason
+        assert not trials[-1].bound > best.total  # no bound at all (-inf) or one below the total
+
+    def test_swap_stops_and_run_writes_the_best_so_far(self, tmp_path):
+        """order = "swap" with a spent budget coordinates only the first order; run_fleet writes that schedule
+        (the first-come-first-served one, read back from schedule.csv)."""
+        import csv
+
+        agents = [
+            slot_agent("soft", 0.0, 10.0, 0.01, ["r"], earliest=0.0),
+            slot_agent("stiff", 2.0, 10.0, 10.0, ["r"], earliest=2.0),
+        ]
+        resources = (ExclusiveResource("r", gap=1.0),)
+        settings = CoordinatorSettings(order="swap", tolerance=1e-10, order_options={"time_budget": 1e-9})
+        result = run_fleet(FleetSpec("two", resources, (), settings), agents, out=tmp_path / "run")
+        assert len(result.order_trials) == 1 and result.coordination.orders == {"r": ["soft", "stiff"]}
+        with open(tmp_path / "run" / "schedule.csv", newline="") as fh:
+            rows = {r["agent"]: float(r["enter"]) for r in csv.DictReader(fh)}
+        P = result.coordination.params()
+        assert rows == {a: pytest.approx(float(P[a][0]), abs=1e-6) for a in rows}  # 6 decimals in the file

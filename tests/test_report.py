@@ -736,3 +736,79 @@ class TestSpaceTime:
         assert not load_run(copy).trajectories
         assert cli.main(["report", str(copy)]) == 0
         assert "time-space diagram" not in (copy / "report.html").read_text(encoding="utf-8")
+
+
+# ---------------------------------------------------------------------------------------------------------
+# the order's gap beside the time-space diagram
+
+
+@pytest.fixture(scope="module")
+def master_folder() -> Path:
+    """Three generated trucks (invented data) on one bridge, orders by the order master, written to a folder."""
+    import dataclasses
+    import tomllib
+
+    from negotiate.fleet.parse import parse_fleet
+    from negotiate.tools.generate import generate_fleet
+
+    spec = parse_fleet(tomllib.loads(generate_fleet("bridge", 3, 5)), "generated")
+    spec = dataclasses.replace(spec, coordinator=dataclasses.replace(spec.coordinator, order="master"))
+    root = Path(tempfile.mkdtemp(prefix="negotiate-master-"))
+    atexit.register(shutil.rmtree, root, ignore_errors=True)
+    run_fleet(spec, out=root / "run")
+    return root / "run"
+
+
+def _beside(html: str, resource: str) -> str:
+    """The text beside the time-space diagram of ``resource`` (the paragraph in the same box as the image)."""
+    box = re.search(r'<div class="beside"><img [^>]*alt="time-space diagram of ' + re.escape(resource)
+                    + r'"[^>]*><p class="order-gap">(.*?)</p></div>', html)  # fmt: skip
+    assert box is not None, "no order gap beside the diagram"
+    import html as html_module
+
+    return html_module.unescape(box.group(1))
+
+
+class TestOrderGapBesideTheDiagram:
+    """The order's gap is written next to each time-space diagram: certified or heuristic, and why."""
+
+    def test_master_run_shows_its_bound_and_gap(self, master_folder: Path) -> None:
+        """The figure beside the diagram repeats run.json's bound, total and gap; the relative gap is recomputed
+        here by hand, gap / max(1, |total|), and printed to two significant digits."""
+        import json
+
+        from negotiate.output.report import order_gap_text
+
+        data = json.loads((master_folder / "run.json").read_text())
+        assert data["settings"]["order"] == "master" and data["order_gap_kind"] in ("certified", "heuristic")
+        assert data["order_bound"] <= data["total_cost"] * (1 + 1e-9)  # a bound below the best total found
+        text = _beside((master_folder / "report.html").read_text(encoding="utf-8"), "bridge")
+        assert text == order_gap_text(data)
+        rel = data["order_gap"] / max(1.0, abs(data["total_cost"]))
+        assert f"({100 * rel:.2g} %)" in text
+        assert _cost(data["order_bound"]) in text and _cost(data["total_cost"]) in text
+        assert text.startswith(f"Order gap ({data['order_gap_kind']}):")
+        if data["order_gap_kind"] == "certified":
+            assert "passed the convexity checks" in text
+        else:
+            assert f"Heuristic: {data['order_gap_reason']}" in text
+
+    def test_heuristic_gap_names_its_reason(self, master_folder: Path, tmp_path: Path) -> None:
+        """A heuristic gap in run.json (edited here) is shown as heuristic with its reason, never as certified."""
+        import json
+
+        copy = tmp_path / "run"
+        shutil.copytree(master_folder, copy)
+        data = json.loads((copy / "run.json").read_text())
+        data.update(order_gap_kind="heuristic", order_gap_reason="agent 'truck-02': a value Hessian has the "
+                    "eigenvalue -0.5 < 0 (its value function is not convex there)")  # fmt: skip
+        (copy / "run.json").write_text(json.dumps(data))
+        assert cli.main(["report", str(copy)]) == 0
+        text = _beside((copy / "report.html").read_text(encoding="utf-8"), "bridge")
+        assert text.startswith("Order gap (heuristic):") and "certified" not in text.lower()
+        assert text.endswith("Heuristic: " + data["order_gap_reason"] + ".")
+
+    def test_other_rules_say_no_gap_was_computed(self, quarry_folder: Path) -> None:
+        """The quarry example orders by swaps, which compute no bound: the figure says so and names the rule."""
+        text = _beside((quarry_folder / "report.html").read_text(encoding="utf-8"), "bridge")
+        assert text.startswith("Order gap: not computed (orders by swap)")

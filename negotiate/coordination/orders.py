@@ -17,20 +17,118 @@ from __future__ import annotations
 
 import itertools
 import math
-from collections.abc import Callable, Sequence
+import time
+import warnings
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
+from negotiate.coordination.methods.base import declared_problems, declared_table, declared_values, option
 from negotiate.core.agent import AgentModel
+from negotiate.core.ranges import Range
 from negotiate.errors import DeadlockError, InfeasibleOrdersError
 from negotiate.fleet.spec import Resource
 from negotiate.resources.coupling import check_orders, first_orders
 
-__all__ = ["EXHAUSTIVE_LIMIT", "Incumbent", "OrderTrial", "order_key", "search_orders"]
+__all__ = [
+    "EXHAUSTIVE_LIMIT",
+    "ORDER_OPTIONS",
+    "Incumbent",
+    "MasterOptions",
+    "OrderTrial",
+    "SwapOptions",
+    "order_key",
+    "order_option_problems",
+    "order_options",
+    "order_options_table",
+    "search_orders",
+]
 
 EXHAUSTIVE_LIMIT = 7
 """Largest number of users of one resource for which every order is tried (7! = 5040 orders)."""
+
+TIME_BUDGET = Range(0.0, 1e7)
+"""Allowed wall-time budget of an order search, s (0: none)."""
+
+
+@dataclass(frozen=True)
+class SwapOptions:
+    """Options of ``order = "swap"`` (``[coordinator.order_options]``)."""
+
+    max_passes: int = option(3, "largest number of passes over all neighbours", Range(1, 1000))
+    time_budget: float = option(
+        0.0, "wall time of the order search, s (0: none); no candidate is started after it, the best "
+        "order so far is kept", TIME_BUDGET,
+    )  # fmt: skip
+
+
+@dataclass(frozen=True)
+class MasterOptions:
+    """Options of ``order = "master"`` (``[coordinator.order_options]``; :mod:`negotiate.coordination.master`)."""
+
+    max_coordinations: int = option(
+        30, "largest number of coordinations of the master loop (the first order included; the swaps "
+        "after it are not counted)", Range(1, 100_000),
+    )  # fmt: skip
+    gap_tolerance: float = option(
+        1e-4, "the loop stops when best total - bound <= gap_tolerance * max(1, |best total|)",
+        Range(0.0, 0.1, lo_open=True, hi_open=True),
+    )  # fmt: skip
+    time_budget: float = option(
+        0.0, "wall time of the whole order search (master loop and swaps), s (0: none); no coordination is "
+        "started after it, and the best order so far is what the run returns and writes (which one depends on "
+        "the machine's speed)", TIME_BUDGET,
+    )  # fmt: skip
+    swap_passes: int = option(
+        3, "largest number of passes of adjacent swaps over the master's best order (0: none)", Range(0, 1000)
+    )
+    milp_time_limit: float = option(
+        0.0, "HiGHS's time limit per solve of the master, s (0: none); a stopped solve still proposes its best "
+        "orders and gives its dual bound, but what it found depends on the machine's speed (the same fleet may "
+        "then give another schedule)", TIME_BUDGET,
+    )  # fmt: skip
+    trust_radius: int = option(
+        0, "search near the best order first: a master solve allows at most this many pairs in the other "
+        "order (local branching); over all orders when it finds nothing better there (0: always all orders)",
+        Range(0, 1_000_000),
+    )  # fmt: skip
+    screen_swaps: bool = option(
+        True, "pass over an adjacent swap whose cut-model estimate (the master as a linear program with those "
+        "orders fixed) is not below the best total; exact where the value functions are convex",
+    )  # fmt: skip
+
+
+ORDER_OPTIONS: dict[str, type | None] = {
+    "fcfs": None, "swap": SwapOptions, "exhaustive": None, "master": MasterOptions
+}  # fmt: skip
+"""The options dataclass of each order rule (``None``: the rule takes no options)."""
+
+
+def order_option_problems(rule: str, given: Mapping[str, Any]) -> list[tuple[str, str, Any]]:
+    """The keys of ``given`` (``[coordinator.order_options]``) that the order ``rule`` does not accept, as
+    ``(key, expected, found value)``: unknown keys, mistyped values and numbers out of range."""
+    options = ORDER_OPTIONS.get(rule)
+    if options is None:
+        return [(key, f"no key: order = {rule!r} takes no options", value) for key, value in given.items()]
+    return declared_problems(options, f"the {rule!r} order rule's", given)
+
+
+def order_options(rule: str, given: Mapping[str, Any]) -> dict[str, Any]:
+    """Every option of the order ``rule`` (defaults filled in); what :func:`order_option_problems` refuses is
+    dropped with a warning (from Python; a fleet file's are refused before the run starts)."""
+    options = ORDER_OPTIONS.get(rule)
+    if options is None:
+        for key in given:
+            warnings.warn(f"order rule {rule!r} takes no options: {key!r} ignored", UserWarning, stacklevel=2)
+        return {}
+    return declared_values(options, f"order rule {rule!r}", given, stacklevel=4)
+
+
+def order_options_table(rule: str) -> str:
+    """The Markdown table of the order ``rule``'s options, as docs/methods.md shows it."""
+    return declared_table(ORDER_OPTIONS.get(rule), f"{rule!r} order rule")
 
 
 @dataclass(frozen=True)
@@ -93,6 +191,13 @@ class Incumbent:
         The :attr:`OrderTrial.stage` of the trials this search appends.
     on_result : callable, optional
         Called with every coordination's result (the order master takes its cuts from it).
+    deadline : float, optional
+        A :func:`time.perf_counter` reading after which no candidate is coordinated (a coordination under way
+        finishes); :attr:`out_of_time` then turns True and the best orders so far stay the result.
+    screen : callable, optional
+        ``screen(candidate, total)`` is called for a candidate that admits a schedule before it is coordinated;
+        when it returns True the candidate is passed over (not coordinated, no trial, counted in
+        :attr:`screened`). The order master screens with its cut model.
     """
 
     def __init__(
@@ -109,25 +214,41 @@ class Incumbent:
         tried: set[tuple[tuple[str, tuple[str, ...]], ...]] | None = None,
         stage: str = "",
         on_result: Callable[[object], None] | None = None,
+        deadline: float | None = None,
+        screen: Callable[[dict[str, list[str]], float], bool] | None = None,
     ) -> None:
         self.agents, self.resources, self.run = agents, resources, run
         self.orders, self.total, self.P, self.best = orders, total, P, best
         self.trials, self.tried, self.stage, self.on_result = trials, tried, stage, on_result
         self.coordinations = 0  # candidates handed to ``run`` by this search
+        self.deadline = deadline
+        self.out_of_time = False
+        self.screen = screen
+        self.screened = 0  # candidates the screen passed over
 
     def attempt(self, candidate: dict[str, list[str]]) -> bool:
         """Check ``candidate`` (skipped as an infeasible trial when it admits no schedule), coordinate it warm-
-        started from the best schedule so far and keep it when it lowers the total; True when kept."""
-        if self.tried is not None:
-            key = order_key(candidate)
-            if key in self.tried:
-                return False
-            self.tried.add(key)
+        started from the best schedule so far and keep it when it lowers the total; True when kept. After the
+        deadline nothing is tried (False)."""
+        if self.deadline is not None and time.perf_counter() >= self.deadline:
+            self.out_of_time = True
+        if self.out_of_time:
+            return False
+        key = order_key(candidate)
+        if self.tried is not None and key in self.tried:
+            return False
         try:
             check_orders(self.agents, self.resources, candidate)
         except (DeadlockError, InfeasibleOrdersError) as exc:
+            if self.tried is not None:
+                self.tried.add(key)
             self.trials.append(OrderTrial(candidate, float("inf"), False, str(exc), stage=self.stage))
             return False
+        if self.screen is not None and self.screen(candidate, self.total):
+            self.screened += 1  # not marked as tried: a later screen, with more cuts, may let it through
+            return False
+        if self.tried is not None:
+            self.tried.add(key)
         total, P, result = self.run(candidate, self.P)
         self.coordinations += 1
         if self.on_result is not None:
@@ -152,7 +273,7 @@ class Incumbent:
                     seq[k], seq[k + 1] = seq[k + 1], seq[k]
                     improved |= self.attempt(cand)
                     k += 1
-            if not improved:
+            if not improved or self.out_of_time:
                 break
 
 
@@ -162,13 +283,17 @@ def search_orders(
     rule: str,
     run: Callable[[dict[str, list[str]], np.ndarray | None], tuple[float, np.ndarray, object]],
     *,
-    max_passes: int = 3,
+    max_passes: int | None = None,
     start: dict[str, list[str]] | None = None,
+    options: Mapping[str, Any] | None = None,
 ) -> tuple[object, dict[str, list[str]], list[OrderTrial]]:
     """Choose orders by ``rule`` ("fcfs", "swap" or "exhaustive").
 
     ``run(orders, start_P) -> (total, P, result)`` coordinates for fixed orders. Returns the best result,
-    its orders and the list of trials (infeasible candidates included, with their reason).
+    its orders and the list of trials (infeasible candidates included, with their reason). ``options`` are
+    the rule's (:class:`SwapOptions` for "swap"; :func:`order_options` fills in the defaults); ``max_passes``,
+    when given, overrides the option of that name. With a ``time_budget`` no candidate is started after it
+    (the one under way finishes) and the best orders so far are returned.
 
     Raises
     ------
@@ -178,15 +303,21 @@ def search_orders(
     """
     if rule == "master":
         raise ValueError('order = "master" is run by negotiate.coordination.master.search_master')
+    if rule not in ORDER_OPTIONS:
+        raise ValueError(f"unknown order rule {rule!r}; expected 'fcfs', 'swap' or 'exhaustive'")
+    opts = order_options(rule, options or {})
+    t0 = time.perf_counter()
+    budget = float(opts.get("time_budget", 0.0))
     orders = {k: list(v) for k, v in (start or first_orders(agents, resources)).items()}
     check_orders(agents, resources, orders)
     best_total, best_P, best = run(orders, None)
     trials = [OrderTrial({k: list(v) for k, v in orders.items()}, best_total, True)]
     if rule == "fcfs":
         return best, orders, trials
-    search = Incumbent(agents, resources, run, orders, best_total, best_P, best, trials)
+    search = Incumbent(agents, resources, run, orders, best_total, best_P, best, trials,
+                       deadline=t0 + budget if budget > 0 else None)  # fmt: skip
     if rule == "swap":
-        search.swaps(max_passes)
+        search.swaps(max_passes if max_passes is not None else int(opts["max_passes"]))
     elif rule == "exhaustive":
         for name in (r.name for r in resources if r.needs_order):
             users = list(search.orders[name])

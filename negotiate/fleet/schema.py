@@ -130,6 +130,9 @@ _COORDINATOR_KEYS = (
     ),
     _Key("options", "table", "-", {},
          "the method's own options (docs/methods.md); a key it does not declare, or a mistyped value, is refused"),
+    _Key("order_options", "table", "-", {},
+         "the order rule's options, e.g. the order master's budgets (docs/methods.md); a key the rule does not "
+         "declare, or a mistyped or out-of-range value, is refused"),
 )
 _AGENT_KEYS = (
     _Key(

@@ -68,6 +68,9 @@ class CoordinatorSettings:
         Whether the nonsmooth guard is on (one-sided gradients where weakly active constraints are reported).
     options : dict
         Method-specific options (documented with each method).
+    order_options : dict
+        Options of the order rule (``[coordinator.order_options]``: budgets of the order search, documented
+        with each rule in docs/methods.md).
     """
 
     method: str = "bundle"
@@ -76,6 +79,7 @@ class CoordinatorSettings:
     order: Literal["fcfs", "swap", "exhaustive", "master"] = "fcfs"
     guard: bool = True
     options: dict[str, Any] = field(default_factory=dict)
+    order_options: dict[str, Any] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         rounds_ok = isinstance(self.max_rounds, int) and self.max_rounds in MAX_ROUNDS

@@ -15,7 +15,7 @@ from __future__ import annotations
 import base64
 import html
 import math
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -27,7 +27,15 @@ from negotiate.output import plots
 from negotiate.output.results import PriceRow, RunFiles, load_run
 from negotiate.resources import KINDS
 
-__all__ = ["CAUTION", "MAX_TRAJECTORIES", "SpaceTimeLine", "render_report", "space_time_lines", "write_report"]
+__all__ = [
+    "CAUTION",
+    "MAX_TRAJECTORIES",
+    "SpaceTimeLine",
+    "order_gap_text",
+    "render_report",
+    "space_time_lines",
+    "write_report",
+]
 
 SLOT_ROWS = 30
 """Users per slot chart (a longer queue is split into several charts)."""
@@ -66,6 +74,9 @@ span.verdict-smooth { color: #006B4F; }
 span.verdict-nonsmooth { color: #A34400; font-weight: 600; }
 img { max-width: 100%; height: auto; display: block; margin: 6px 0 14px; }
 nav a { margin-right: 14px; color: #0072B2; }
+div.beside { display: flex; gap: 14px; align-items: flex-start; }
+div.beside img { max-width: 72%; }
+p.order-gap { font-size: 0.9em; border-left: 4px solid #0072B2; padding: 4px 10px; margin: 12px 0; }
 code { font-size: 0.92em; }
 small.share { color: #666; }
 """
@@ -255,6 +266,33 @@ def space_time_lines(files: RunFiles, resource: str) -> list[SpaceTimeLine]:
     return out
 
 
+def order_gap_text(summary: Mapping[str, object]) -> str:
+    """The order's gap in plain words, as the report shows it beside each time-space diagram.
+
+    From run.json's keys (``total_cost``, ``order_bound``, ``order_gap``, ``order_gap_kind``,
+    ``order_gap_reason``; cost units): the bound on the best order's total, the gap of this schedule's total
+    to it, absolute and relative to ``max(1, |total|)``, and whether it is ``certified`` or ``heuristic`` and
+    why. A run whose order rule computes no bound says so.
+    """
+    kind = summary.get("order_gap_kind")
+    if kind not in ("certified", "heuristic"):
+        settings = summary.get("settings")
+        rule = settings.get("order", "") if isinstance(settings, dict) else ""
+        return (f"Order gap: not computed (orders by {rule}); the order master (order = \"master\") bounds the "
+                "best order's total from below.")  # fmt: skip
+    total, bound, gap = _f(summary.get("total_cost")), _f(summary.get("order_bound")), _f(summary.get("order_gap"))
+    rel = gap / max(1.0, abs(total)) if math.isfinite(gap) and math.isfinite(total) else math.nan
+    reason = str(summary.get("order_gap_reason") or "")
+    text = (f"Order gap ({kind}): no order's total is below {_cost(bound)}; this schedule's total {_cost(total)} is "
+            f"{_cost(gap)} above that bound ({'–' if not math.isfinite(rel) else f'{100 * rel:.2g} %'}).")  # fmt: skip
+    if kind == "certified":
+        text += " Certified: every agent's value cuts passed the convexity checks, so the bound holds for every order"
+        text += f" ({reason})." if reason else "."
+    else:
+        text += f" Heuristic: {reason or 'the bound is not finite'}."
+    return text
+
+
 def _space_time(f: RunFiles, resource: str, gap: float, users: int) -> str:
     """The time-space diagram of one exclusive resource and its note; empty without vehicle users."""
     lines = space_time_lines(f, resource)
@@ -268,7 +306,8 @@ def _space_time(f: RunFiles, resource: str, gap: float, users: int) -> str:
             "entry and exit times.")  # fmt: skip
     if left:
         note += f" Not drawn: {left} user{'s' * (left != 1)} without a position along a route."
-    return _img(plots.png(fig), f"time-space diagram of {resource}") + f'<p class="note">{note}</p>'
+    return (f'<div class="beside">{_img(plots.png(fig), f"time-space diagram of {resource}")}'
+            f'<p class="order-gap">{_e(order_gap_text(f.summary))}</p></div><p class="note">{note}</p>')
 
 
 def _schedule(f: RunFiles) -> str:

@@ -25,7 +25,7 @@ import networkx as nx
 import numpy as np
 
 from negotiate.coordination.methods import method_names
-from negotiate.errors import FleetError, Problem
+from negotiate.errors import FleetError, Problem, describe
 from negotiate.fleet.build import BuiltAgent, build_report
 from negotiate.fleet.parse import load_fleet, parse_fleet
 from negotiate.fleet.spec import CapacityResource, FleetSpec
@@ -242,11 +242,15 @@ def _check_spec(spec: FleetSpec, build: bool) -> CheckResult:
 
 def _option_problems(spec: FleetSpec) -> list[Problem]:
     """``[coordinator.options]`` the fleet's method does not declare (a built-in method; a user method named
-    by "module:Class" is not imported by a check)."""
+    by "module:Class" is not imported by a check) and ``[coordinator.order_options]`` the order rule does not
+    accept."""
+    from negotiate.coordination.orders import order_option_problems
     from negotiate.run import check_method_options
 
     if spec.coordinator.method not in method_names():
-        return []
+        c = spec.coordinator
+        return [Problem(spec.source, "coordinator.order_options", key, expected, describe(value))
+                for key, expected, value in order_option_problems(c.order, c.order_options)]  # fmt: skip
     try:
         check_method_options(spec)
     except FleetError as exc:

@@ -15,6 +15,7 @@ import numpy as np
 from negotiate.core.guard import GuardReport
 from negotiate.core.kkt import Certificate
 from negotiate.core.nlp import LocalResult
+from negotiate.core.ranges import Range
 from negotiate.core.status import Status
 from negotiate.fleet.spec import CoordinatorSettings
 from negotiate.resources.coupling import FeasibleSet
@@ -24,6 +25,9 @@ __all__ = [
     "Evaluation",
     "Method",
     "Proposal",
+    "declared_problems",
+    "declared_table",
+    "declared_values",
     "method_options",
     "option",
     "option_problems",
@@ -140,9 +144,13 @@ class Method(ABC):
         return measure <= self.settings.tolerance
 
 
-def option(default: Any, doc: str) -> Any:
-    """A field of a method's ``Options`` dataclass: its default and one line saying what it does."""
-    return field(default=default, metadata={"doc": doc})
+def option(default: Any, doc: str, allowed: Range | None = None) -> Any:
+    """A field of an ``Options`` dataclass (a method's or an order rule's): its default, one line saying what
+    it does and, for a number, the values it may take (a :class:`~negotiate.core.ranges.Range`)."""
+    meta: dict[str, Any] = {"doc": doc}
+    if allowed is not None:
+        meta["range"] = allowed
+    return field(default=default, metadata=meta)
 
 
 _TYPE_NAMES = {bool: "true or false", int: "an integer", float: "a finite number", str: "a string"}
@@ -166,39 +174,44 @@ def _fits(t: type, value: Any) -> bool:
     return isinstance(value, t)
 
 
-def option_problems(cls: type[Method], given: Mapping[str, Any]) -> list[tuple[str, str, Any]]:
-    """The keys of ``given`` that ``cls`` does not accept, as ``(key, expected, found value)``: unknown keys
-    and values of the wrong type (``true``/``false`` for a switch, an integer for a count, a finite number
-    for a real). Empty when ``cls.Options`` is ``None``."""
-    if cls.Options is None:
+def _expected(f: Any) -> str:
+    rng = f.metadata.get("range")
+    return _TYPE_NAMES[_option_type(f)] + (f" {rng}" if rng is not None else "")
+
+
+def declared_problems(options: type | None, owner: str, given: Mapping[str, Any]) -> list[tuple[str, str, Any]]:
+    """The keys of ``given`` that the ``options`` dataclass does not accept, as ``(key, expected, found
+    value)``: unknown keys, values of the wrong type (``true``/``false`` for a switch, an integer for a count,
+    a finite number for a real) and numbers outside the option's range. ``owner`` names whose options they
+    are in the message ("the bundle method's"). Empty when ``options`` is ``None``."""
+    if options is None:
         return []
-    declared = {f.name: f for f in fields(cls.Options)}
+    declared = {f.name: f for f in fields(options)}
     out: list[tuple[str, str, Any]] = []
     for key, value in given.items():
         f = declared.get(key)
         if f is None:
             names = ", ".join(declared) or "none"
-            out.append((key, f"one of the {cls.name} method's options ({names})", value))
-        elif not _fits(_option_type(f), value):
-            out.append((key, _TYPE_NAMES[_option_type(f)], value))
+            out.append((key, f"one of {owner} options ({names})", value))
+        elif not _fits(_option_type(f), value) or (f.metadata.get("range") is not None
+                                                    and value not in f.metadata["range"]):  # fmt: skip
+            out.append((key, _expected(f), value))
     return out
 
 
-def method_options(cls: type[Method], given: Mapping[str, Any]) -> dict[str, Any]:
-    """Every option of ``cls`` (defaults filled in) as a plain dict; what :func:`option_problems` refuses
-    is dropped with a warning. A method without ``Options`` gets ``given`` unchanged."""
-    if cls.Options is None:
+def declared_values(options: type | None, owner: str, given: Mapping[str, Any], stacklevel: int = 4) -> dict[str, Any]:
+    """Every option of the ``options`` dataclass (defaults filled in) as a plain dict; what
+    :func:`declared_problems` refuses is dropped with a warning naming ``owner``. Without ``options``,
+    ``given`` unchanged."""
+    if options is None:
         return dict(given)
-    bad = option_problems(cls, given)
+    bad = declared_problems(options, f"the {owner}'s", given)
     for key, expected, value in bad:
-        warnings.warn(
-            f"coordination method {cls.name!r}: option {key!r} expected {expected}, got {value!r}; ignored",
-            UserWarning,
-            stacklevel=4,
-        )
+        warnings.warn(f"{owner}: option {key!r} expected {expected}, got {value!r}; ignored", UserWarning,
+                      stacklevel=stacklevel)  # fmt: skip
     refused = {key for key, _, _ in bad}
     out = {}
-    for f in fields(cls.Options):
+    for f in fields(options):
         if f.name in given and f.name not in refused:
             value = given[f.name]
             out[f.name] = float(value) if _option_type(f) is float else value
@@ -207,20 +220,45 @@ def method_options(cls: type[Method], given: Mapping[str, Any]) -> dict[str, Any
         elif f.default_factory is not MISSING:
             out[f.name] = f.default_factory()
         else:
-            raise TypeError(f"option {f.name!r} of {cls.__name__}.Options has no default: give it one")
+            raise TypeError(f"option {f.name!r} of {options.__name__} has no default: give it one")
     return out
 
 
-def options_table(cls: type[Method]) -> str:
-    """The Markdown table of a method's options (key, type, default, meaning), as docs/methods.md shows it."""
-    if cls.Options is None:
-        return f"The {cls.name} method declares no options."
-    rows = ["| key | type | default | meaning |", "|---|---|---|---|"]
-    for f in fields(cls.Options):
+def declared_table(options: type | None, owner: str) -> str:
+    """The Markdown table of an ``Options`` dataclass (key, type, default, meaning; and the allowed values
+    when an option declares a range)."""
+    if options is None or not fields(options):
+        return f"The {owner} declares no options."
+    ranged = any(f.metadata.get("range") is not None for f in fields(options))  # an "allowed" column
+    rows = ["| key | type | default | allowed | meaning |", "|---|---|---|---|---|"] if ranged else [
+        "| key | type | default | meaning |", "|---|---|---|---|"]  # fmt: skip
+    for f in fields(options):
         t = _option_type(f)
         default = ("true" if f.default else "false") if t is bool else repr(f.default)
-        rows.append(f"| `{f.name}` | {t.__name__} | {default} | {f.metadata.get('doc', '')} |")
+        rng = f.metadata.get("range")
+        allowed = f" {rng.interval if rng is not None else ''} |" if ranged else ""
+        rows.append(f"| `{f.name}` | {t.__name__} | {default} |{allowed} {f.metadata.get('doc', '')} |")
     return "\n".join(rows)
+
+
+def option_problems(cls: type[Method], given: Mapping[str, Any]) -> list[tuple[str, str, Any]]:
+    """The keys of ``given`` that ``cls`` does not accept, as ``(key, expected, found value)``
+    (:func:`declared_problems` of ``cls.Options``). Empty when ``cls.Options`` is ``None``."""
+    return declared_problems(cls.Options, f"the {cls.name} method's", given)
+
+
+def method_options(cls: type[Method], given: Mapping[str, Any]) -> dict[str, Any]:
+    """Every option of ``cls`` (defaults filled in) as a plain dict; what :func:`option_problems` refuses
+    is dropped with a warning. A method without ``Options`` gets ``given`` unchanged."""
+    return declared_values(cls.Options, f"coordination method {cls.name!r}", given, stacklevel=5)
+
+
+def options_table(cls: type[Method]) -> str:
+    """The Markdown table of a method's options (key, type, default, allowed values, meaning), as
+    docs/methods.md shows it."""
+    if cls.Options is None:
+        return f"The {cls.name} method declares no options."
+    return declared_table(cls.Options, f"{cls.name} method")
 
 
 _METHODS: dict[str, type[Method]] = {}
