@@ -32,10 +32,9 @@ from typing import Any
 import numpy as np
 
 from negotiate.coordination.centralized import solve_centralized
-from negotiate.coordination.engine import CoordinationResult, EngineState, RoundRecord, coordinate
+from negotiate.coordination.engine import CoordinationResult, RoundRecord, coordinate
 from negotiate.coordination.master import search_master
 from negotiate.coordination.methods import Method, method_class, method_names, option_problems, register_method
-from negotiate.coordination.methods.base import Evaluation
 from negotiate.coordination.orders import OrderTrial, order_option_problems, search_orders
 from negotiate.core.agent import AgentModel
 from negotiate.core.files import write_atomic
@@ -403,7 +402,6 @@ def _search(
     ``stop`` non-empty (a signal came) ends the run with :class:`KeyboardInterrupt` after a round."""
     coordinated = 0  # order trials handed to the coordinator so far
     master = settings.order == "master"
-    seen: list[Evaluation] = []  # every evaluation of every coordination: the order master's cuts
 
     def one(
         orders: dict[str, list[str]], start: np.ndarray | None
@@ -424,17 +422,7 @@ def _search(
                 if progress is not None:
                     progress(replace(rec, trial=trial))
 
-        saving = book.hook(k, orders) if book is not None else None
-        hook = saving
-        if master:
-
-            def collect(state: EngineState) -> None:
-                seen.append(state.latest)
-                if saving is not None:
-                    saving(state)
-
-            hook = collect
-
+        hook = book.hook(k, orders) if book is not None else None
         r = coordinate(
             agents, spec.resources, settings, orders=orders, start=start, executor=executor, progress=tell,
             checkpoint=hook, resume=book.engine_state(k, orders) if book is not None else None,
@@ -445,8 +433,9 @@ def _search(
         return total, r.P, r
 
     if master:
-        best, _orders, trials = search_master(agents, spec.resources, one, evaluations=seen,
-                                              options=settings.order_options)  # fmt: skip
+        # The master's cuts come from each coordination's final evaluation, which a checkpoint keeps with the
+        # finished trial: a resumed run then gives the master the same cuts as the uninterrupted one.
+        best, _orders, trials = search_master(agents, spec.resources, one, options=settings.order_options)
     else:
         best, _orders, trials = search_orders(agents, spec.resources, settings.order, one,
                                               options=settings.order_options)  # fmt: skip

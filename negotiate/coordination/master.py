@@ -661,6 +661,8 @@ def search_master(
                 reason = reason or f"the master was not solved to optimality ({sol.status}: {sol.message})"
             if not sol.orders and sol.status == "stopped" and known > bound:
                 bound, reason = known, unsure or convex.reason or known_reason  # stopped before it had anything
+            if best_total < bound <= best_total + 1e-12 * max(1.0, abs(best_total)):
+                bound = best_total  # equal up to the rounding of the sums (a bound never exceeds a total)
             known, known_reason = bound, reason  # the latest bound, from every cut so far
             gap = best_total - bound
             kind = "heuristic" if reason or not np.isfinite(gap) else "certified"
