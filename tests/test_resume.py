@@ -86,6 +86,27 @@ class TestResume:
         assert res.coordination.evaluation.reports[0].result.sensitivity().available  # re-attached
         assert sorted(os.listdir(tmp_path)) == [FILENAME]  # no temporary file left behind
 
+    def test_order_master_resumes_exactly(self, cell, tmp_path):
+        """With order = "master" (cuts from every finished coordination's final evaluation), a run stopped in
+        its third coordination and resumed proposes the same orders and ends at the same schedule."""
+        spec, agents, _ = cell
+        spec = replace(spec, coordinator=replace(spec.coordinator, order="master"))
+        ref = run_fleet(spec, agents)
+        assert len(ref.order_trials) >= 3
+        trials = []
+
+        def progress(rec):
+            if rec.trial == 2:
+                raise Interrupt
+            trials.append(rec.trial)
+
+        with pytest.raises(Interrupt):
+            run_fleet(spec, build_agents(spec), checkpoint_dir=tmp_path, progress=progress)
+        assert max(trials) == 1  # two coordinations finished, the third started
+        res = run_fleet(spec, build_agents(spec), checkpoint_dir=tmp_path, resume=True)
+        assert [t.orders for t in res.order_trials] == [t.orders for t in ref.order_trials]
+        assert _rel(res.coordination.P, ref.coordination.P) <= 1e-12
+
     def test_finished_run_resumes_without_solving(self, cell, tmp_path):
         """Resuming a finished run redoes no trial and gives the same schedule."""
         spec, agents, ref = cell

@@ -541,6 +541,9 @@ class RunBook:
             ) from None
         self._best = float("inf")
         self._next = 0
+        # The order master takes its cuts from every finished coordination's final evaluation, so a master run
+        # keeps each trial's result (without its round history); other rules need the best trial's only.
+        self._keep_all = spec.coordinator.order == "master"
         self.unsaved: str | None = None
         """Why rounds are not being saved (None while they are)."""
 
@@ -604,11 +607,16 @@ class RunBook:
         first = not self.state.trials
         if first or rec.total < self._best - 1e-9 * max(1.0, abs(self._best)):
             for old in self.state.trials:
-                old.result = None
+                old.result = self._former(old.result)
             self._best = rec.total
         else:
-            rec = replace(rec, result=None)
+            rec = replace(rec, result=self._former(rec.result))
         self.state.trials.append(rec)
+
+    def _former(self, result: CoordinationResult | None) -> CoordinationResult | None:
+        """What is kept of a trial that is not the best: nothing, or for the order master its result without
+        the round history (its final evaluation gives the master its cuts when the run is resumed)."""
+        return replace(result, history=()) if self._keep_all and result is not None else None
 
 
 def describe(state: RunState) -> dict[str, Any]:
