@@ -193,3 +193,16 @@ class TestScaleAwareness:
         res = solve({"x": x, "p": p, "f": (x - 1e6 + 0.5 - p) ** 2}, [0.0], ubx=1e6)
         assert res.certificate.polished and not res.certificate.active
         assert res.certificate.verdict == "smooth"
+
+    def test_large_cost_does_not_excuse_an_active_row(self):
+        """With a cost of 1e9 an active row is still polished onto its bound in its own units."""
+        # min 1e9 ((x1 - 400)^2 + (x2 - 300)^2) s.t. x1^2 + x2^2 <= 62500: the projection of (400, 300) onto
+        # the circle of radius 250 is (200, 150) (closed form), and the multiplier follows from
+        # grad f + 2 lam x = 0: lam = 1e9 (400/200 - 1) = 1e9, so dV/dr^2 = -1e9 with r^2 = p * 62500.
+        x, p = ca.SX.sym("x", 2), ca.SX.sym("p")
+        f = 1e9 * ((x[0] - 400) ** 2 + (x[1] - 300) ** 2)
+        res = solve({"x": x, "p": p, "f": f, "g": x[0] ** 2 + x[1] ** 2 - 62500 * p}, [1.0], ubg=0)
+        assert res.certificate.polished
+        np.testing.assert_allclose(res.x[0] ** 2 + res.x[1] ** 2, 62500, rtol=1e-13)  # on the row, to round-off
+        np.testing.assert_allclose(res.x, [200, 150], rtol=1e-12)
+        np.testing.assert_allclose(res.gradient, [-1e9 * 62500], rtol=1e-9)

@@ -349,9 +349,13 @@ def polish(pt: Point, bnd: Bounds, evaluate: Evaluate, tol: Tolerances, max_newt
         cur = replace(pt, lam_g=lam[:m].copy(), lam_x=lam[m:].copy())
         for _ in range(max_newton):
             C = cur.rows()[A]
-            r = np.concatenate([cur.grad_lagrangian(), cur.values[A] - target])
-            if np.max(np.abs(r), initial=0.0) <= 1e-13 * max(1.0, float(np.max(np.abs(cur.grad_f), initial=0))):
+            stat, rows = cur.grad_lagrangian(), cur.values[A] - target
+            # Each half in its own units: stationarity against the objective's gradient, a row against its
+            # bound (a cost of 1e9 must not let a row of 6e4 m^2 stop 1e-4 short of its bound).
+            if np.max(np.abs(stat), initial=0.0) <= 1e-13 * max(1.0, float(np.max(np.abs(cur.grad_f), initial=0))) \
+                    and np.all(np.abs(rows) <= 1e-13 * np.maximum(1.0, np.abs(target))):
                 break
+            r = np.concatenate([stat, rows])
             step = _solve_kkt(cur.H, C, -r)
             if not np.all(np.isfinite(step)):
                 return pt, False
