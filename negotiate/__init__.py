@@ -13,7 +13,7 @@ Sensitivity
     dx*/dp, multiplier derivatives and the value Hessian, where the certificate allows them.
 Status, CoordinationStatus
     Outcome of a solve (``converged``, ``inaccurate``, ``infeasible``, ...), and why a coordination stopped
-    (``converged``, ``max-rounds``, ``failed``) with whether its schedule is usable.
+    (``converged``, ``max-rounds``, ``stalled``, ``failed``, ``unreachable``) with whether its schedule is usable.
 AgentModel, SlotParam, ReachableSet
     What a model builder hands to the coordinator.
 load_fleet, build_agents

@@ -15,6 +15,7 @@ from negotiate.coordination.centralized import solve_centralized
 from negotiate.coordination.engine import coordinate
 from negotiate.coordination.methods import Evaluation, Method, Proposal, register_method
 from negotiate.coordination.orders import search_orders
+from negotiate.core.status import CoordinationStatus
 from negotiate.errors import DeadlockError, InfeasibleOrdersError
 from negotiate.fleet.spec import CapacityResource, CoordinatorSettings, ExclusiveResource
 from negotiate.resources.coupling import build_feasible_set, check_orders
@@ -387,6 +388,20 @@ class HalvingGradient(Method):
         return Proposal(nxt, measure, converged=measure < self.settings.tolerance)
 
 
+
+@register_method
+class GivingUp(HalvingGradient):
+    """The same steps, but the method gives up (no point) after its fifth proposal, as a line search can."""
+
+    name = "test-giving-up"
+
+    def propose(self, latest: Evaluation) -> Proposal:
+        self.calls = getattr(self, "calls", 0) + 1
+        if self.calls > 5:
+            return Proposal(None, 1.0, False, "line search failed: step too small")
+        return super().propose(latest)
+
+
 class TestUserMethods:
     def test_registered_method_runs_through_the_same_engine(self):
         """A Method subclass registered by name coordinates like a built-in one."""
@@ -396,6 +411,14 @@ class TestUserMethods:
         )
         np.testing.assert_allclose(res.P, TestClosedForm().expected(), atol=1e-3)
         assert res.method == "test-halving"
+
+    def test_giving_up_with_a_usable_incumbent_is_stalled_not_failed(self):
+        """A method that stops without a point keeps a usable schedule when every agent converged there."""
+        agents = [quadratic_share_agent(f"a{i}", t, c) for i, (t, c) in enumerate([(4, 1), (3, 2), (5, 0.5)])]
+        res = coordinate(agents, [CapacityResource("grid", (9.0,))], settings("test-giving-up", max_rounds=50))
+        assert res.status is CoordinationStatus.STALLED and res.status.usable
+        assert res.message == "line search failed: step too small" and res.evaluation.ok
+        assert res.rounds == 5 and np.isfinite(res.total)
 
     def test_unknown_method_is_named(self):
         """An unknown method name lists the known ones."""
@@ -467,8 +490,10 @@ class TestCoordinationStatus:
         from negotiate.core.status import CoordinationStatus
 
         assert not CoordinationStatus.FAILED.usable and not CoordinationStatus.ERROR.usable
-        assert {str(s) for s in CoordinationStatus} == {"converged", "max-rounds", "failed", "unreachable", "error"}
-        assert not CoordinationStatus.UNREACHABLE.usable
+        assert {str(s) for s in CoordinationStatus} == {
+            "converged", "max-rounds", "stalled", "failed", "unreachable", "error"
+        }
+        assert not CoordinationStatus.UNREACHABLE.usable and CoordinationStatus.STALLED.usable
 
 
 def _elastic_agent(name: str, penalty: float, window: tuple[float, float] = (0.0, 10.0)) -> AgentModel:

@@ -96,8 +96,8 @@ class CoordinationResult:
     evaluation : Evaluation
         All agents' reports there.
     status : CoordinationStatus
-        ``converged``, ``max-rounds``, ``failed`` or ``unreachable`` (a string enum; ``status.usable`` says
-        whether the schedule is one where every agent converged and meets its parameters).
+        ``converged``, ``max-rounds``, ``stalled``, ``failed`` or ``unreachable`` (a string enum;
+        ``status.usable`` says whether the schedule is one where every agent converged and meets its parameters).
     message : str
         Why it stopped.
     rounds : int
@@ -449,7 +449,9 @@ def coordinate(
             status, message = CoordinationStatus.CONVERGED, prop.note or "stopping test met"
             break
         if prop.point is None:
-            status, message = CoordinationStatus.FAILED, prop.note or "the method produced no point"
+            stuck = method.incumbent is not None and method.incumbent.ok
+            status = CoordinationStatus.STALLED if stuck else CoordinationStatus.FAILED
+            message = prop.note or "the method produced no point"
             break
         if k == settings.max_rounds:
             break

@@ -39,6 +39,9 @@ class CoordinationStatus(StrEnum):
     """The method's stopping test was met: the schedule is its answer."""
     MAX_ROUNDS = "max-rounds"
     """The round limit came first: the best schedule found, every agent converged there, not certified."""
+    STALLED = "stalled"
+    """The method could go no further before its stopping test was met (e.g. its line search shortened the step
+    to nothing): the best schedule found, every agent converged there, not certified."""
     FAILED = "failed"
     """No point where every agent converged (or the method produced none): no usable schedule."""
     UNREACHABLE = "unreachable"
@@ -54,7 +57,7 @@ class CoordinationStatus(StrEnum):
     @property
     def usable(self) -> bool:
         """Whether the schedule is one where every agent's solve converged."""
-        return self in (CoordinationStatus.CONVERGED, CoordinationStatus.MAX_ROUNDS)
+        return self in (CoordinationStatus.CONVERGED, CoordinationStatus.MAX_ROUNDS, CoordinationStatus.STALLED)
 
 
 SOLUTION_PRESENT = frozenset({Status.CONVERGED})
