@@ -188,17 +188,22 @@ def _run(args: argparse.Namespace) -> int:
             return 1
     bars: list[Any] = []  # the progress bar, once the agents are built
     trial = [0]
+    plain = not args.quiet and not sys.stderr.isatty()  # a log file gets a line now and then, not a bar
 
     def built(spec: FleetSpec, agents: list[AgentModel], settings: CoordinatorSettings) -> None:
         print(f"fleet {spec.name}: {len(agents)} agents, {len(spec.resources)} resources; method {settings.method}, "
               f"orders {settings.order}")  # fmt: skip
-        if not args.quiet:
+        if not args.quiet and not plain:
             from tqdm import tqdm
 
             bars.append(tqdm(total=None, unit="round", file=sys.stderr, dynamic_ncols=True, leave=False,
                              desc="order 1"))  # fmt: skip
 
     def progress(rec: RoundRecord) -> None:
+        if plain and (rec.round % 25 == 0 or rec.trial != trial[0]):
+            trial[0] = rec.trial
+            print(f"order {rec.trial + 1}, round {rec.round}: total {_fmt(rec.best_total, 9)}  measure "
+                  f"{rec.measure:.1e}  flagged {len(rec.flagged)}  failed {len(rec.failed)}", file=sys.stderr)
         for bar in bars:
             if rec.trial != trial[0]:  # a new order of the search: its rounds count from 0 again
                 trial[0] = rec.trial

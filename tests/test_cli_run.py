@@ -95,6 +95,13 @@ class TestRun:
         assert header[:5] == ["agent", "resource", "enter", "leave", "value"]
         assert "not a safety controller" in text
 
+    def test_progress_to_a_log_is_plain_lines(self, tmp_path, capsys):
+        """Progress written to a non-terminal (pytest's capture) is whole lines, no carriage returns."""
+        code = main(["run", str(EXAMPLES / "charging_depot.toml"), "--out", str(tmp_path / "d")])
+        err = capsys.readouterr().err
+        assert code == 0, err
+        assert "\r" not in err and "order 1, round 0: total " in err
+
     def test_user_method_from_a_file(self, tmp_path, capsys):
         """--method path.py:Class imports a user Method and runs it through the same outputs."""
         fleet = (EXAMPLES / "charging_depot.toml").read_text().replace("max_rounds = 60", "max_rounds = 15")
